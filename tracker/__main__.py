@@ -1,0 +1,7 @@
+"""``python -m tracker`` runs the command line."""
+
+import sys
+
+from tracker.cli import main
+
+sys.exit(main())
