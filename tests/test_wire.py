@@ -1,0 +1,301 @@
+"""Wire contract v1: decoding, validation errors, topics and deterministic encoding."""
+
+from __future__ import annotations
+
+import json
+from datetime import UTC, datetime
+from typing import Any
+
+import pytest
+
+from tracker.wire import (
+    MAX_ERROR_PAYLOAD,
+    AlertMessage,
+    BinMessage,
+    ControlMessage,
+    ErrorMessage,
+    FillMessage,
+    OrderMessage,
+    StatusMessage,
+    TargetMessage,
+    Tick,
+    WireError,
+    decode,
+    encode,
+    payload_text,
+    topic_of,
+)
+
+TS = "2026-03-02T14:35:00Z"
+
+ORDER: dict[str, Any] = {
+    "type": "order",
+    "action": "new",
+    "order_id": "ZEPH-1",
+    "symbol": "ZEPH",
+    "side": "buy",
+    "quantity": 40_000,
+    "start": "2026-03-02T14:30:00Z",
+    "end": "2026-03-02T21:00:00Z",
+    "ts": TS,
+}
+FILL: dict[str, Any] = {
+    "type": "fill",
+    "fill_id": "f-1",
+    "order_id": "ZEPH-1",
+    "quantity": 500,
+    "price": 20.5,
+    "ts": TS,
+}
+BIN: dict[str, Any] = {
+    "type": "bin",
+    "symbol": "ZEPH",
+    "start": "2026-03-02T14:30:00Z",
+    "end": "2026-03-02T14:35:00Z",
+    "volume": 12_000,
+    "vwap": 20.4,
+    "open": 20.3,
+    "high": 20.6,
+    "low": 20.2,
+    "close": 20.5,
+    "spread": 0.02,
+    "ts": TS,
+}
+CONTROL: dict[str, Any] = {"type": "control", "command": "halt", "ts": TS}
+
+
+def with_(base: dict[str, Any], **changes: Any) -> str:
+    """The JSON text of ``base`` with fields changed (a value of ... removes the field)."""
+    data = {**base, **changes}
+    return json.dumps({key: value for key, value in data.items() if value is not ...})
+
+
+VALID = [
+    ("tracker/orders/ZEPH-1", json.dumps(ORDER), OrderMessage),
+    ("tracker/fills/ZEPH-1", json.dumps(FILL), FillMessage),
+    ("tracker/bins/ZEPH", json.dumps(BIN), BinMessage),
+    ("tracker/control", json.dumps(CONTROL), ControlMessage),
+    ("tracker/tick", json.dumps({"type": "tick", "ts": TS}), Tick),
+]
+
+
+@pytest.mark.parametrize(
+    ("topic", "payload", "kind"), VALID, ids=["order", "fill", "bin", "control", "tick"]
+)
+def test_valid_messages_decode_to_their_model(topic: str, payload: str, kind: type) -> None:
+    """Each valid inbound message decodes to its frozen model."""
+    assert kind is type(decode(topic, payload))
+
+
+def test_times_are_normalised_to_utc() -> None:
+    """A time with a non-UTC offset is stored as the same instant in UTC."""
+    message = decode("tracker/fills/ZEPH-1", with_(FILL, ts="2026-03-02T09:35:00-05:00"))
+    assert datetime(2026, 3, 2, 14, 35, tzinfo=UTC) == message.ts
+
+
+def test_models_are_frozen() -> None:
+    """Decoded messages cannot be changed afterwards."""
+    message = decode("tracker/fills/ZEPH-1", json.dumps(FILL))
+    with pytest.raises(Exception):  # noqa: B017 - pydantic raises its ValidationError
+        message.quantity = 1  # type: ignore[misc]
+
+
+def test_parsed_mapping_payload_is_accepted() -> None:
+    """A payload already parsed into a mapping decodes like its JSON text."""
+    assert decode("tracker/fills/ZEPH-1", json.dumps(FILL)) == decode("tracker/fills/ZEPH-1", FILL)
+
+
+INVALID = [
+    ("tracker/fills/ZEPH-1", "{not json", "not valid JSON"),
+    ("tracker/fills/ZEPH-1", b"\xff\xfe", "not UTF-8"),
+    ("tracker/fills/ZEPH-1", "[1, 2]", "must be a JSON object"),
+    ("tracker/fills/ZEPH-1", with_(FILL, type=...), "type: is required"),
+    ("tracker/fills/ZEPH-1", with_(FILL, type="trade"), "unknown message type 'trade'"),
+    ("tracker/orders/ZEPH-1", json.dumps(FILL), "publish fill messages to tracker/fills/"),
+    ("tracker/fills/ZEPH-1", with_(FILL, quantity=-5), "quantity: must be greater than 0"),
+    ("tracker/fills/ZEPH-1", with_(FILL, quantity=0), "quantity: must be greater than 0"),
+    ("tracker/fills/ZEPH-1", with_(FILL, quantity=2.5), "whole shares"),
+    ("tracker/fills/ZEPH-1", with_(FILL, quantity="500"), "must be a JSON number"),
+    ("tracker/fills/ZEPH-1", with_(FILL, quantity=True), "must be a JSON number"),
+    ("tracker/fills/ZEPH-1", with_(FILL, quantity=float("nan")), "NaN is not valid JSON"),
+    ("tracker/fills/ZEPH-1", with_(FILL, price=float("inf")), "Infinity is not valid JSON"),
+    ("tracker/fills/ZEPH-1", with_(FILL, price=0), "price: must be greater than 0"),
+    ("tracker/fills/ZEPH-1", with_(FILL, ts="2026-03-02T14:35:00"), "must carry a UTC offset"),
+    ("tracker/fills/ZEPH-1", with_(FILL, ts="yesterday"), "ts: must be an ISO 8601 time"),
+    ("tracker/fills/ZEPH-1", with_(FILL, fill_id=...), "fill_id: is required"),
+    ("tracker/fills/ZEPH-1", with_(FILL, venue="HLX"), "venue: is not a field"),
+    ("tracker/fills/ZEPH-2", json.dumps(FILL), "payload says 'ZEPH-1' but the topic says"),
+    ("tracker/fills/ZEPH-1", with_(FILL, order_id="ZEPH 1"), "order_id: must be 1 to 64"),
+    ("tracker/fills/ZEPH-1", with_(FILL, side="short"), "side: must be 'buy' or 'sell'"),
+    ("tracker/orders/ZEPH-1", with_(ORDER, side=...), "missing: side"),
+    ("tracker/orders/ZEPH-1", with_(ORDER, action="replace"), "action: must be"),
+    ("tracker/orders/ZEPH-1", with_(ORDER, end=ORDER["start"]), "end must be after start"),
+    ("tracker/orders/ZEPH-1", with_(ORDER, max_participation=1.5), "fraction in (0, 1]"),
+    ("tracker/orders/ZEPH-1", with_(ORDER, limit_price=-1), "limit_price: must be greater"),
+    ("tracker/orders/ZEPH-1", with_(ORDER, urgency="asap"), "urgency: must be"),
+    (
+        "tracker/orders/ZEPH-1",
+        json.dumps({"type": "order", "action": "amend", "order_id": "ZEPH-1", "ts": TS}),
+        "an amend must change at least one of",
+    ),
+    (
+        "tracker/orders/ZEPH-1",
+        with_(ORDER, action="cancel", start=...),
+        "a cancel carries only order_id",
+    ),
+    ("tracker/bins/ZEPH", with_(BIN, high=20.0), "high (20.0) must be at least low"),
+    ("tracker/bins/ZEPH", with_(BIN, close=21.0), "close (21.0) must lie between"),
+    ("tracker/bins/ZEPH", with_(BIN, volume=-1), "volume: must be 0 or more"),
+    ("tracker/bins/ZEPH", with_(BIN, vwap=None), "vwap is required when volume > 0"),
+    ("tracker/bins/ZEPH", with_(BIN, spread=-0.01), "spread: must be 0 or more"),
+    ("tracker/control", with_(CONTROL, command="pause"), "command: must be 'halt' or 'resume'"),
+    ("tracker/bins", json.dumps(BIN), "is not an inbound topic"),
+    ("other/bins/ZEPH", json.dumps(BIN), "outside the root 'tracker'"),
+    ("tracker/targets/ZEPH-1", json.dumps(FILL), "is not an inbound topic"),
+]
+
+
+@pytest.mark.parametrize(
+    ("topic", "payload", "expected"),
+    INVALID,
+    ids=[
+        "not-json",
+        "not-utf8",
+        "not-object",
+        "no-type",
+        "unknown-type",
+        "wrong-topic-for-type",
+        "negative-quantity",
+        "zero-quantity",
+        "fractional-quantity",
+        "string-quantity",
+        "bool-quantity",
+        "nan-quantity",
+        "infinite-price",
+        "zero-price",
+        "naive-time",
+        "bad-time",
+        "missing-fill-id",
+        "unknown-field",
+        "topic-id-mismatch",
+        "bad-id-characters",
+        "bad-side",
+        "new-without-side",
+        "unknown-action",
+        "end-before-start",
+        "participation-above-one",
+        "negative-limit",
+        "unknown-urgency",
+        "empty-amend",
+        "cancel-with-fields",
+        "high-below-low",
+        "close-outside-range",
+        "negative-volume",
+        "missing-vwap",
+        "negative-spread",
+        "unknown-command",
+        "bins-without-symbol",
+        "foreign-root",
+        "outbound-topic",
+    ],
+)
+def test_invalid_message_raises_wire_error_with_reason(
+    topic: str, payload: str | bytes, expected: str
+) -> None:
+    """Each invalid inbound message raises WireError whose reason says what to fix."""
+    with pytest.raises(WireError) as info:
+        decode(topic, payload)
+    assert expected in info.value.reason
+    assert topic == info.value.topic
+
+
+def test_custom_root_is_honoured() -> None:
+    """Topics are checked against the configured root."""
+    assert isinstance(decode("desk7/fills/ZEPH-1", json.dumps(FILL), root="desk7"), FillMessage)
+
+
+def test_amend_null_limit_removes_the_limit() -> None:
+    """An amend with "limit_price": null is an explicit removal of the limit."""
+    payload = {"type": "order", "action": "amend", "order_id": "A", "limit_price": None, "ts": TS}
+    message = decode("tracker/orders/A", payload)
+    assert isinstance(message, OrderMessage)
+    assert message.removes_limit
+
+
+def test_encode_is_deterministic_and_rounded() -> None:
+    """Encoding rounds floats, sorts nested keys, writes UTC with Z, and never writes -0.0."""
+    ts = datetime(2026, 3, 2, 14, 35, tzinfo=UTC)
+    alert = AlertMessage(
+        order_id="A",
+        code="behind_plan",
+        severity="warning",
+        message="m",
+        details={"z": 1.23456789, "a": -1e-9},
+        ts=ts,
+    )
+    expected = (
+        b'{"type":"alert","order_id":"A","symbol":null,"code":"behind_plan","severity":"warning",'
+        b'"state":"raised","message":"m","details":{"a":0.0,"z":1.234568},'
+        b'"ts":"2026-03-02T14:35:00Z"}'
+    )
+    assert expected == encode(alert)
+
+
+def test_topics_of_outbound_messages() -> None:
+    """Every outbound message goes to its documented topic."""
+    ts = datetime(2026, 3, 2, 14, 35, tzinfo=UTC)
+    target = TargetMessage(
+        order_id="A",
+        symbol="ZEPH",
+        side="buy",
+        bin_start=ts,
+        bin_end=ts,
+        quantity=1,
+        cumulative_target=1,
+        remaining=1,
+        max_quantity=None,
+        plan_version=1,
+        ts=ts,
+    )
+    status = StatusMessage(
+        order_id="A",
+        symbol="ZEPH",
+        side="buy",
+        state="working",
+        quantity=1,
+        filled=0,
+        remaining=1,
+        progress_pct=0.0,
+        planned_filled=0,
+        deviation_shares=0,
+        deviation_pct=0.0,
+        deviation_bins=None,
+        average_price=None,
+        arrival_price=None,
+        limit_price=None,
+        volume_scale=None,
+        expected_cost=None,
+        expected_cost_bps=None,
+        plan_version=1,
+        ts=ts,
+    )
+    order_alert = AlertMessage(order_id="A", code="c", severity="info", message="m", ts=ts)
+    symbol_alert = AlertMessage(
+        order_id=None, symbol="ZEPH", code="c", severity="info", message="m", ts=ts
+    )
+    error = ErrorMessage(reason="r", topic="t", payload="p", ts=ts)
+    expected = [
+        "r/targets/A",
+        "r/status/A",
+        "r/alerts/A",
+        "r/alerts",
+        "r/errors",
+    ]
+    actual = [topic_of(m, "r") for m in (target, status, order_alert, symbol_alert, error)]
+    assert expected == actual
+
+
+def test_error_payload_is_truncated() -> None:
+    """Raw payloads kept for error records are cut to the documented length."""
+    expected = MAX_ERROR_PAYLOAD
+    assert expected == len(payload_text("x" * 5_000))

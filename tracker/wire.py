@@ -1,0 +1,632 @@
+"""Wire contract v1: the JSON messages tracker reads and writes over MQTT (and in replay files).
+
+Theory of operation: every payload crosses the boundary exactly once, in :func:`decode`, which
+parses the JSON, checks that the topic fits the payload (kind and id) and validates every field
+into a frozen pydantic model. Inside the package nothing re-checks what was checked here. Anything
+wrong becomes a :class:`WireError` whose ``reason`` names the field and says what is allowed, so a
+person can fix the sender. Outbound messages are frozen models too; :func:`encode` turns them into
+deterministic bytes (fields in declaration order, nested keys sorted, floats rounded to
+:data:`FLOAT_DECIMALS` decimals, times in UTC with a ``Z``), so two runs on the same input write
+byte-identical output.
+
+Topics (``root`` defaults to ``tracker``)::
+
+    inbound   {root}/orders/{order_id}  {root}/fills/{order_id}  {root}/bins/{symbol}
+              {root}/control            {root}/tick   (injected by the shells, never by users)
+    outbound  {root}/targets/{order_id} {root}/alerts/{order_id} {root}/status/{order_id}
+              {root}/alerts  (alerts about a symbol or the engine, not one order)
+              {root}/errors
+
+Quantities are whole shares, always positive on the wire: the side lives in the order. Inbound
+messages accept exactly the v1 fields: an unknown field is rejected by name (a typo such as
+``limit_prise`` must not silently drop a limit).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+from collections.abc import Mapping
+from datetime import UTC, datetime
+from typing import Annotated, Any, Literal
+
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    PlainSerializer,
+    ValidationError,
+    model_validator,
+)
+
+from tracker.errors import InputError
+
+#: Version of the wire contract these models implement.
+WIRE_VERSION = 1
+
+#: Default topic root.
+DEFAULT_ROOT = "tracker"
+
+#: Floats in encoded output are rounded to this many decimals (determinism across platforms).
+FLOAT_DECIMALS = 6
+
+#: Raw payloads kept in error records are truncated to this many characters.
+MAX_ERROR_PAYLOAD = 2_000
+
+_ID_PATTERN = re.compile(r"[A-Za-z0-9._-]{1,64}")
+_ID_RULE = "1 to 64 characters of A-Z, a-z, 0-9, '.', '_' or '-'"
+
+
+class WireError(InputError):
+    """An inbound message that cannot be accepted.
+
+    Attributes:
+        reason: A sentence saying what is wrong and what is allowed.
+        topic: The topic the message arrived on.
+        order_id: The order the message names, when it could be read.
+    """
+
+    def __init__(
+        self,
+        reason: str,
+        *,
+        topic: str,
+        field: str | None = None,
+        order_id: str | None = None,
+    ) -> None:
+        super().__init__(reason, field=field)
+        self.reason = reason
+        self.topic = topic
+        self.order_id = order_id
+
+
+# --------------------------------------------------------------------------------------------
+# Field types
+# --------------------------------------------------------------------------------------------
+
+
+def _check_id(value: Any) -> str:
+    if not isinstance(value, str):
+        raise ValueError(f"must be a string of {_ID_RULE}; got {type(value).__name__}")
+    if not _ID_PATTERN.fullmatch(value):
+        raise ValueError(f"must be {_ID_RULE}; got {value!r}")
+    return value
+
+
+def _whole_shares(value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise ValueError(f"must be a JSON number of whole shares; got {type(value).__name__}")
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            raise ValueError(f"must be a finite number of whole shares; got {value!r}")
+        if not value.is_integer():
+            raise ValueError(f"must be whole shares (an integer); got {value!r}")
+        value = int(value)
+    return value
+
+
+def _finite_number(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise ValueError(f"must be a JSON number; got {type(value).__name__}")
+    number = float(value)
+    if not math.isfinite(number):
+        raise ValueError(f"must be a finite number; got {value!r}")
+    return number
+
+
+def _aware_time(value: Any) -> datetime:
+    if isinstance(value, datetime):
+        moment = value
+    elif isinstance(value, str):
+        try:
+            moment = datetime.fromisoformat(value)
+        except ValueError:
+            raise ValueError(
+                f"must be an ISO 8601 time with an offset, e.g. 2026-03-02T14:30:00Z; got {value!r}"
+            ) from None
+    else:
+        raise ValueError(f"must be an ISO 8601 time string; got {type(value).__name__}")
+    if moment.tzinfo is None or moment.utcoffset() is None:
+        raise ValueError(f"must carry a UTC offset (e.g. 'Z' or '+00:00'); got {value!r}")
+    return moment.astimezone(UTC)
+
+
+def _format_time(value: datetime) -> str:
+    return value.astimezone(UTC).isoformat().replace("+00:00", "Z")
+
+
+def _positive(value: float) -> float:
+    if value <= 0:
+        raise ValueError(f"must be greater than 0; got {value!r}")
+    return value
+
+
+def _non_negative(value: float) -> float:
+    if value < 0:
+        raise ValueError(f"must be 0 or more; got {value!r}")
+    return value
+
+
+Id = Annotated[str, BeforeValidator(_check_id)]
+Time = Annotated[datetime, BeforeValidator(_aware_time), PlainSerializer(_format_time)]
+Shares = Annotated[int, BeforeValidator(_whole_shares), AfterValidator(_positive)]
+NonNegativeShares = Annotated[int, BeforeValidator(_whole_shares), AfterValidator(_non_negative)]
+Price = Annotated[float, BeforeValidator(_finite_number), AfterValidator(_positive)]
+NonNegative = Annotated[float, BeforeValidator(_finite_number), AfterValidator(_non_negative)]
+Side = Literal["buy", "sell"]
+Severity = Literal["info", "warning", "critical"]
+
+
+def _participation(value: float) -> float:
+    if not 0 < value <= 1:
+        raise ValueError(f"must be a fraction in (0, 1], e.g. 0.1 for 10 %; got {value!r}")
+    return value
+
+
+Participation = Annotated[float, BeforeValidator(_finite_number), AfterValidator(_participation)]
+
+
+class _Inbound(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+class _Outbound(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+# --------------------------------------------------------------------------------------------
+# Inbound
+# --------------------------------------------------------------------------------------------
+
+_NEW_FIELDS = ("symbol", "side", "quantity", "start", "end")
+_AMENDABLE = ("quantity", "end", "limit_price", "max_participation", "urgency", "preferences")
+
+
+class OrderMessage(_Inbound):
+    """A parent order: ``new`` creates it, ``amend`` changes it, ``cancel`` stops it.
+
+    ``new`` needs symbol, side, quantity, start and end. ``amend`` carries only what changes
+    (quantity, end, limit_price, max_participation, urgency, preferences); ``"limit_price": null``
+    in an amend removes the limit. ``cancel`` needs only the order id. Symbol and side, when an
+    amend or cancel carries them, must match the order.
+    """
+
+    type: Literal["order"] = "order"
+    action: Literal["new", "amend", "cancel"]
+    order_id: Id
+    symbol: Id | None = None
+    side: Side | None = None
+    quantity: Shares | None = None
+    start: Time | None = None
+    end: Time | None = None
+    limit_price: Price | None = None
+    max_participation: Participation | None = None
+    urgency: Literal["low", "medium", "high"] | None = None
+    preferences: dict[str, float | str | bool] | None = None
+    arrival_price: Price | None = None
+    ts: Time
+
+    @model_validator(mode="after")
+    def _action_fields(self) -> OrderMessage:
+        if self.action == "new":
+            missing = [name for name in _NEW_FIELDS if getattr(self, name) is None]
+            if missing:
+                raise ValueError(
+                    f"a new order needs {', '.join(_NEW_FIELDS)}; missing: {', '.join(missing)}"
+                )
+        if self.action == "amend":
+            changes = [name for name in _AMENDABLE if name in self.model_fields_set]
+            if not changes:
+                raise ValueError(f"an amend must change at least one of {', '.join(_AMENDABLE)}")
+            if self.start is not None:
+                raise ValueError("start cannot be amended; cancel and send a new order")
+        if self.action == "cancel":
+            extra = [name for name in _AMENDABLE if getattr(self, name) is not None]
+            if extra:
+                raise ValueError(
+                    f"a cancel carries only order_id (and optionally symbol, side); "
+                    f"remove: {', '.join(extra)}"
+                )
+        if self.start is not None and self.end is not None and self.end <= self.start:
+            raise ValueError(f"end must be after start; got start {self.start}, end {self.end}")
+        return self
+
+    @property
+    def removes_limit(self) -> bool:
+        """True for an amend that explicitly sends ``"limit_price": null``."""
+        return self.limit_price is None and "limit_price" in self.model_fields_set
+
+
+class FillMessage(_Inbound):
+    """An execution against a parent order (shares are positive; the order has the side)."""
+
+    type: Literal["fill"] = "fill"
+    fill_id: Id
+    order_id: Id
+    quantity: Shares
+    price: Price
+    side: Side | None = None
+    ts: Time
+
+
+class BinMessage(_Inbound):
+    """One closed market bin of a symbol: volume, prices and the average quoted spread.
+
+    ``spread`` is in currency per share (like the prices). ``vwap`` may be null only when the
+    bin had no volume.
+    """
+
+    type: Literal["bin"] = "bin"
+    symbol: Id
+    start: Time
+    end: Time
+    volume: NonNegativeShares
+    vwap: Price | None = None
+    open: Price
+    high: Price
+    low: Price
+    close: Price
+    spread: NonNegative
+    ts: Time
+
+    @model_validator(mode="after")
+    def _consistent(self) -> BinMessage:
+        if self.end <= self.start:
+            raise ValueError(f"end must be after start; got start {self.start}, end {self.end}")
+        if self.high < self.low:
+            raise ValueError(f"high ({self.high}) must be at least low ({self.low})")
+        for name in ("open", "close"):
+            value = getattr(self, name)
+            if not self.low <= value <= self.high:
+                raise ValueError(
+                    f"{name} ({value}) must lie between low ({self.low}) and high ({self.high})"
+                )
+        if self.vwap is None and self.volume > 0:
+            raise ValueError("vwap is required when volume > 0")
+        return self
+
+
+class ControlMessage(_Inbound):
+    """Halt or resume one order (``order_id``) or every order (no ``order_id``)."""
+
+    type: Literal["control"] = "control"
+    command: Literal["halt", "resume"]
+    order_id: Id | None = None
+    ts: Time
+
+
+class Tick(_Inbound):
+    """The passage of time, injected by the shells (live timer, replay); carries only ``ts``."""
+
+    type: Literal["tick"] = "tick"
+    ts: Time
+
+
+# --------------------------------------------------------------------------------------------
+# Outbound
+# --------------------------------------------------------------------------------------------
+
+
+class TargetMessage(_Outbound):
+    """What to trade in the next bin for one order.
+
+    ``quantity`` is the shares for the bin ``[bin_start, bin_end)``; ``cumulative_target`` the
+    shares the order should have filled by ``bin_end``; ``remaining`` the shares still to fill;
+    ``max_quantity`` the participation cap for the bin (null when uncapped).
+    """
+
+    type: Literal["target"] = "target"
+    order_id: str
+    symbol: str
+    side: Side
+    bin_start: Time | None
+    bin_end: Time | None
+    quantity: int
+    cumulative_target: int
+    remaining: int
+    max_quantity: int | None
+    plan_version: int
+    ts: Time
+
+
+class AlertMessage(_Outbound):
+    """A condition the desk should know about; raised once and cleared once (hysteresis).
+
+    ``state`` is ``"raised"`` or ``"cleared"`` (one-shot events such as a fill anomaly are
+    ``"raised"`` only). ``order_id`` is null for alerts about a symbol as a whole.
+    """
+
+    type: Literal["alert"] = "alert"
+    order_id: str | None
+    symbol: str | None = None
+    code: str
+    severity: Severity
+    state: Literal["raised", "cleared"] = "raised"
+    message: str
+    details: dict[str, Any] = Field(default_factory=dict)
+    ts: Time
+
+
+class StatusMessage(_Outbound):
+    """Where an order stands (retained per order on the wire)."""
+
+    type: Literal["status"] = "status"
+    order_id: str
+    symbol: str
+    side: Side
+    state: str
+    quantity: int
+    filled: int
+    remaining: int
+    progress_pct: float
+    planned_filled: int
+    deviation_shares: int
+    deviation_pct: float
+    deviation_bins: float | None
+    average_price: float | None
+    arrival_price: float | None
+    limit_price: float | None
+    volume_scale: float | None
+    expected_cost: float | None
+    expected_cost_bps: float | None
+    plan_version: int
+    ts: Time
+
+
+class ErrorMessage(_Outbound):
+    """One rejected inbound message, with a reason a person can act on."""
+
+    type: Literal["error"] = "error"
+    reason: str
+    topic: str
+    payload: str
+    ts: Time | None
+    line: int | None = None
+    order_id: str | None = None
+
+
+Inbound = OrderMessage | FillMessage | BinMessage | ControlMessage | Tick
+Outbound = TargetMessage | AlertMessage | StatusMessage | ErrorMessage
+
+_MODELS: dict[str, type[_Inbound]] = {
+    "order": OrderMessage,
+    "fill": FillMessage,
+    "bin": BinMessage,
+    "control": ControlMessage,
+    "tick": Tick,
+}
+
+# Topic kind -> (message type, payload field that must equal the topic's last level).
+_TOPIC_KINDS: dict[str, tuple[str, str | None]] = {
+    "orders": ("order", "order_id"),
+    "fills": ("fill", "order_id"),
+    "bins": ("bin", "symbol"),
+    "control": ("control", None),
+    "tick": ("tick", None),
+}
+_TOPIC_OF_TYPE = {
+    "order": "{root}/orders/{{order_id}}",
+    "fill": "{root}/fills/{{order_id}}",
+    "bin": "{root}/bins/{{symbol}}",
+    "control": "{root}/control",
+    "tick": "{root}/tick",
+}
+
+
+# --------------------------------------------------------------------------------------------
+# Decode / encode
+# --------------------------------------------------------------------------------------------
+
+
+def payload_text(payload: bytes | str | Mapping[str, Any]) -> str:
+    """The payload as text for an error record, truncated to :data:`MAX_ERROR_PAYLOAD` chars."""
+    if isinstance(payload, bytes):
+        text = payload.decode("utf-8", errors="replace")
+    elif isinstance(payload, str):
+        text = payload
+    else:
+        try:
+            text = json.dumps(payload, sort_keys=True, default=str, allow_nan=True)
+        except (TypeError, ValueError):
+            text = repr(payload)
+    return text[:MAX_ERROR_PAYLOAD]
+
+
+def _reject_constant(name: str) -> Any:
+    raise ValueError(f"{name} is not valid JSON; send a finite number")
+
+
+def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, Any]:
+    if isinstance(payload, Mapping):
+        return dict(payload)
+    if isinstance(payload, bytes):
+        try:
+            text = payload.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise WireError(
+                f"payload is not UTF-8 text (byte {exc.start}); send a JSON object in UTF-8",
+                topic=topic,
+            ) from None
+    else:
+        text = payload
+    try:
+        data = json.loads(text, parse_constant=_reject_constant)
+    except ValueError as exc:
+        raise WireError(
+            f"payload is not valid JSON ({exc}); send one JSON object", topic=topic
+        ) from None
+    except RecursionError:
+        raise WireError(
+            "payload is nested too deeply; send one flat JSON object", topic=topic
+        ) from None
+    if not isinstance(data, dict):
+        raise WireError(
+            f"payload must be a JSON object, got a JSON {type(data).__name__}", topic=topic
+        )
+    return data
+
+
+def _split_topic(topic: str, root: str) -> tuple[str, str | None]:
+    """Return (kind, last level or None) of an inbound topic, or raise WireError."""
+    allowed = (
+        f"{root}/orders/{{order_id}}, {root}/fills/{{order_id}}, {root}/bins/{{symbol}}, "
+        f"{root}/control or {root}/tick"
+    )
+    prefix = f"{root}/"
+    if not topic.startswith(prefix):
+        raise WireError(f"topic {topic!r} is outside the root {root!r}; use {allowed}", topic=topic)
+    levels = topic[len(prefix) :].split("/")
+    kind = levels[0]
+    if kind in ("control", "tick") and len(levels) == 1:
+        return kind, None
+    if kind in ("orders", "fills", "bins") and len(levels) == 2 and levels[1]:
+        return kind, levels[1]
+    raise WireError(f"topic {topic!r} is not an inbound topic; use {allowed}", topic=topic)
+
+
+def _describe(exc: ValidationError) -> tuple[str, str | None]:
+    """A one-sentence reason (and the first field) from a pydantic error."""
+    parts: list[str] = []
+    first: str | None = None
+    for error in exc.errors(include_url=False):
+        loc = ".".join(str(item) for item in error["loc"] if not isinstance(item, int))
+        message = str(error["msg"])
+        message = message.removeprefix("Value error, ")
+        kind = error["type"]
+        if kind == "missing":
+            message = "is required"
+        elif kind == "extra_forbidden":
+            message = "is not a field of this message (wire contract v1); remove it"
+        elif kind == "literal_error":
+            message = message.replace("Input should be", "must be")
+        if loc and first is None:
+            first = loc
+        parts.append(f"{loc}: {message}" if loc else message)
+    return "; ".join(parts), first
+
+
+def decode(
+    topic: str, payload: bytes | str | Mapping[str, Any], *, root: str = DEFAULT_ROOT
+) -> Inbound:
+    """Validate one inbound message.
+
+    Args:
+        topic: The MQTT topic it arrived on.
+        payload: Raw bytes or text of a JSON object, or an already parsed object.
+        root: The topic root.
+
+    Returns:
+        The frozen message model.
+
+    Raises:
+        WireError: the topic, the JSON or a field is wrong; ``reason`` says what to fix.
+    """
+    kind, last = _split_topic(topic, root)
+    data = _parse(topic, payload)
+    order_id = data.get("order_id") if isinstance(data.get("order_id"), str) else None
+    message_type = data.get("type")
+    if message_type is None:
+        raise WireError(
+            f"type: is required; one of {', '.join(sorted(_MODELS))}",
+            topic=topic,
+            field="type",
+            order_id=order_id,
+        )
+    if not isinstance(message_type, str) or message_type not in _MODELS:
+        raise WireError(
+            f"type: unknown message type {message_type!r}; one of {', '.join(sorted(_MODELS))}",
+            topic=topic,
+            field="type",
+            order_id=order_id,
+        )
+    expected_type, id_field = _TOPIC_KINDS[kind]
+    if message_type != expected_type:
+        where = _TOPIC_OF_TYPE[message_type].format(root=root)
+        raise WireError(
+            f"a {message_type} message arrived on topic {topic!r}, which takes {expected_type} "
+            f"messages; publish {message_type} messages to {where}",
+            topic=topic,
+            field="type",
+            order_id=order_id,
+        )
+    try:
+        message = _MODELS[message_type].model_validate(data)
+    except ValidationError as exc:
+        reason, field = _describe(exc)
+        raise WireError(reason, topic=topic, field=field, order_id=order_id) from None
+    if id_field is not None and getattr(message, id_field) != last:
+        raise WireError(
+            f"{id_field}: payload says {getattr(message, id_field)!r} but the topic says "
+            f"{last!r}; they must match",
+            topic=topic,
+            field=id_field,
+            order_id=order_id,
+        )
+    return message  # type: ignore[return-value]
+
+
+def topic_of(message: Outbound, root: str = DEFAULT_ROOT) -> str:
+    """The topic an outbound message is published on."""
+    if isinstance(message, TargetMessage):
+        return f"{root}/targets/{message.order_id}"
+    if isinstance(message, StatusMessage):
+        return f"{root}/status/{message.order_id}"
+    if isinstance(message, AlertMessage):
+        if message.order_id is None:
+            return f"{root}/alerts"
+        return f"{root}/alerts/{message.order_id}"
+    return f"{root}/errors"
+
+
+def _rounded(value: Any) -> Any:
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            return None
+        rounded = round(value, FLOAT_DECIMALS)
+        return 0.0 if rounded == 0 else rounded  # no "-0.0"
+    if isinstance(value, dict):
+        return {key: _rounded(value[key]) for key in sorted(value)}
+    if isinstance(value, list | tuple):
+        return [_rounded(item) for item in value]
+    return value
+
+
+def to_json_object(message: Outbound | Inbound) -> dict[str, Any]:
+    """The JSON object of a message, floats rounded, nested mapping keys sorted."""
+    # Top level keeps the declared field order (readable: "type" first); nested keys are sorted.
+    return {key: _rounded(item) for key, item in message.model_dump(mode="json").items()}
+
+
+def encode(message: Outbound | Inbound) -> bytes:
+    """Deterministic compact JSON bytes of a message (UTF-8, no NaN)."""
+    return json.dumps(
+        to_json_object(message), separators=(",", ":"), ensure_ascii=False, allow_nan=False
+    ).encode("utf-8")
+
+
+__all__ = [
+    "DEFAULT_ROOT",
+    "FLOAT_DECIMALS",
+    "MAX_ERROR_PAYLOAD",
+    "WIRE_VERSION",
+    "AlertMessage",
+    "BinMessage",
+    "ControlMessage",
+    "ErrorMessage",
+    "FillMessage",
+    "Inbound",
+    "OrderMessage",
+    "Outbound",
+    "StatusMessage",
+    "TargetMessage",
+    "Tick",
+    "WireError",
+    "decode",
+    "encode",
+    "payload_text",
+    "to_json_object",
+    "topic_of",
+]
