@@ -1,0 +1,410 @@
+"""Replay: line-level checks, error records with line numbers, redelivery, ticks, determinism.
+
+The recordings here are invented: order ORD1 on the made-up symbol ZEPH of the made-up venue Harbour
+Lane Exchange (HLX).
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from tracker.errors import InputError
+from tracker.records import Record
+from tracker.replay import (
+    OUTPUT_FILES,
+    BadLine,
+    Replayer,
+    dumps_summary,
+    read_input,
+    read_jsonl,
+    replay,
+    write_outputs,
+)
+from tracker.wire import (
+    ErrorMessage,
+    FillMessage,
+    Inbound,
+    OrderMessage,
+    Outbound,
+    Tick,
+    payload_text,
+)
+
+
+class _InterimEngine:
+    """Until tracker.engine lands: accepts orders, counts fills, rejects fills of unknown orders."""
+
+    def __init__(self) -> None:
+        self.filled: dict[str, int] = {}
+        self.fill_ids: set[str] = set()
+
+    def handle(self, event: Inbound) -> list[Outbound]:
+        if isinstance(event, OrderMessage) and event.action == "new":
+            self.filled[event.order_id] = 0
+        if isinstance(event, FillMessage):
+            if event.order_id not in self.filled:
+                return [
+                    ErrorMessage(
+                        reason=f"fill for unknown order {event.order_id!r}",
+                        topic=f"tracker/fills/{event.order_id}",
+                        payload=event.model_dump_json(),
+                        ts=event.ts,
+                    )
+                ]
+            if event.fill_id not in self.fill_ids:
+                self.fill_ids.add(event.fill_id)
+                self.filled[event.order_id] += event.quantity
+        return []
+
+    def reject(self, topic: str, payload: bytes | str, reason: str, ts: datetime) -> ErrorMessage:
+        return ErrorMessage(reason=reason, topic=topic, payload=payload_text(payload), ts=ts)
+
+    def summary(self) -> dict[str, Any]:
+        return {
+            "orders": [
+                {
+                    "order_id": k,
+                    "filled": v,
+                    "quantity": 0,
+                    "average_price": None,
+                    "arrival_price": None,
+                }
+                for k, v in sorted(self.filled.items())
+            ]
+        }
+
+
+def make_engine() -> Any:
+    """A fresh engine."""
+    try:
+        from tracker.engine import Engine
+    except ImportError:
+        return _InterimEngine()
+    return Engine()
+
+
+T0 = datetime(2026, 3, 10, 14, 35, tzinfo=UTC)  # 09:35 in New York, a Tuesday
+
+
+def at(seconds: float) -> str:
+    """An ISO time ``seconds`` after T0."""
+    return (T0 + timedelta(seconds=seconds)).isoformat().replace("+00:00", "Z")
+
+
+def order(seconds: float = 0.0, order_id: str = "ORD1", **changes: Any) -> dict[str, Any]:
+    """A new-order line for 100,000 ZEPH to buy over the rest of the morning."""
+    payload: dict[str, Any] = {
+        "type": "order",
+        "action": "new",
+        "order_id": order_id,
+        "symbol": "ZEPH",
+        "side": "buy",
+        "quantity": 100_000,
+        "start": at(0),
+        "end": at(3 * 3600),
+        "arrival_price": 20.0,
+        "ts": at(seconds),
+    }
+    payload.update(changes)
+    return {"topic": f"tracker/orders/{order_id}", "payload": payload, "ts": at(seconds)}
+
+
+def fill(fill_id: str, quantity: Any, seconds: float, order_id: str = "ORD1") -> dict[str, Any]:
+    """A fill line."""
+    payload = {
+        "type": "fill",
+        "fill_id": fill_id,
+        "order_id": order_id,
+        "quantity": quantity,
+        "price": 20.01,
+        "ts": at(seconds),
+    }
+    return {"topic": f"tracker/fills/{order_id}", "payload": payload, "ts": at(seconds)}
+
+
+def write(tmp_path: Path, lines: list[Mapping[str, Any] | str], name: str = "in.jsonl") -> Path:
+    """Write lines (objects or raw text) as a JSON Lines file."""
+    path = tmp_path / name
+    text = [line if isinstance(line, str) else json.dumps(line) for line in lines]
+    path.write_text("\n".join(text) + "\n", encoding="utf-8")
+    return path
+
+
+def filled(result_summary: Mapping[str, Any], order_id: str = "ORD1") -> int:
+    """Shares filled on an order, from the replay summary."""
+    for entry in result_summary["orders"]:
+        if entry["order_id"] == order_id:
+            return int(entry["filled"])
+    raise AssertionError(f"{order_id} not in summary")
+
+
+def run_file(path: Path) -> tuple[list[ErrorMessage], dict[str, Any]]:
+    """Replay a file on a fresh engine; return the errors and the summary."""
+    result = replay(read_input(path), make_engine())
+    return result.errors, result.summary
+
+
+def _fill_payload_text(**changes: Any) -> str:
+    payload = fill("F9", 300, 120)["payload"]
+    payload.update(changes)
+    return json.dumps(payload)
+
+
+# One row per kind of bad line: (the bad line placed at line 3, a phrase its reason must hold).
+# Lines 1, 2 and 4 are a new order and two good fills (100 and 200 shares).
+MALFORMED = [
+    pytest.param('{"topic": "tracker/fills/ORD1", "payload": {', "not JSON", id="not-json"),
+    pytest.param("[1, 2, 3]", "not an object", id="line-not-object"),
+    pytest.param(
+        {"payload": fill("F9", 300, 120)["payload"], "ts": at(120)}, "'topic'", id="no-topic"
+    ),
+    pytest.param({"topic": "tracker/fills/ORD1", "ts": at(120)}, "'payload'", id="no-payload"),
+    pytest.param({**fill("F9", 300, 120), "payload": 42}, "'payload'", id="payload-number"),
+    pytest.param({**fill("F9", 300, 120), "ts": "yesterday"}, "ISO 8601", id="bad-line-ts"),
+    pytest.param(
+        {"topic": "tracker/fills/ORD1", "payload": '{"type": "fill", "fill_id": ', "ts": at(120)},
+        "not valid JSON",
+        id="payload-text-not-json",
+    ),
+    pytest.param(
+        {
+            **fill("F9", 300, 120),
+            "payload": {k: v for k, v in fill("F9", 300, 120)["payload"].items() if k != "price"},
+        },
+        "price",
+        id="missing-field",
+    ),
+    pytest.param(fill("F9", "300", 120), "quantity", id="wrong-type"),
+    pytest.param(fill("F9", -300, 120), "quantity", id="negative-quantity"),
+    pytest.param(
+        {
+            "topic": "tracker/fills/ORD1",
+            "payload": _fill_payload_text(quantity=float("nan")),
+            "ts": at(120),
+        },
+        "NaN",
+        id="nan-quantity",
+    ),
+    pytest.param(
+        {**fill("F9", 300, 120), "payload": {**fill("F9", 300, 120)["payload"], "type": "trade"}},
+        "unknown message type",
+        id="unknown-type",
+    ),
+    pytest.param(
+        {**fill("F9", 300, 120), "topic": "tracker/orders/ORD1"}, "topic", id="wrong-topic"
+    ),
+    pytest.param(
+        {**fill("F9", 300, 120), "topic": "tracker/fills/ORD2"},
+        "must match",
+        id="topic-id-mismatch",
+    ),
+    pytest.param(fill("F9", 300, 120, order_id="ORD9"), "ORD9", id="unknown-order"),
+    pytest.param(fill("F9", 300, 30), "backwards", id="time-backwards"),
+]
+
+
+@pytest.mark.parametrize(("bad", "phrase"), MALFORMED)
+def test_bad_line_gives_one_error_with_its_line(
+    tmp_path: Path, bad: Mapping[str, Any] | str, phrase: str
+) -> None:
+    """Each kind of bad line gives exactly one error record, for its own line, saying why."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60), bad, fill("F2", 200, 180)])
+    errors, _ = run_file(path)
+    expected = [3]
+    assert expected == [error.line for error in errors]
+    assert phrase.lower() in errors[0].reason.lower()
+
+
+@pytest.mark.parametrize(("bad", "phrase"), MALFORMED)
+def test_bad_line_leaves_valid_lines_in_effect(
+    tmp_path: Path, bad: Mapping[str, Any] | str, phrase: str
+) -> None:
+    """The valid lines around a bad line still take effect (both fills count)."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60), bad, fill("F2", 200, 180)])
+    _, summary = run_file(path)
+    expected = 300
+    assert expected == filled(summary)
+
+
+def test_error_record_keeps_topic_and_raw_payload(tmp_path: Path) -> None:
+    """The error record carries the topic and the raw text, so the sender can find the message."""
+    raw = '{"type": "fill", "fill_id": '
+    path = write(tmp_path, [order(0), {"topic": "tracker/fills/ORD1", "payload": raw, "ts": at(5)}])
+    errors, _ = run_file(path)
+    assert ("tracker/fills/ORD1", raw) == (errors[0].topic, errors[0].payload)
+
+
+def test_blank_lines_are_skipped_without_error(tmp_path: Path) -> None:
+    """Blank lines are not messages: no error, and line numbers still count them."""
+    path = write(tmp_path, [order(0), "", "   ", fill("F1", 100, 60), "{"])
+    errors, summary = run_file(path)
+    expected = ([5], 100)
+    assert expected == ([error.line for error in errors], filled(summary))
+
+
+def test_redelivery_changes_nothing(tmp_path: Path) -> None:
+    """An exact copy of an accepted fill (a broker redelivery) changes no output file."""
+    lines: list[Mapping[str, Any] | str] = [order(0), fill("F1", 100, 60), fill("F2", 200, 180)]
+    once = write(tmp_path, lines, "once.jsonl")
+    twice = write(tmp_path, [*lines[:2], lines[1], lines[2]], "twice.jsonl")
+    write_outputs(replay(read_input(once), make_engine()), tmp_path / "once")
+    write_outputs(replay(read_input(twice), make_engine()), tmp_path / "twice")
+    differing = [
+        name
+        for name in OUTPUT_FILES[:-1]
+        if (tmp_path / "once" / name).read_bytes() != (tmp_path / "twice" / name).read_bytes()
+    ]
+    expected = []
+    assert expected == differing
+
+
+def test_redelivery_is_counted_not_rejected(tmp_path: Path) -> None:
+    """A redelivered line is counted as such in the summary, and is not an error."""
+    line = fill("F1", 100, 60)
+    path = write(tmp_path, [order(0), line, line])
+    errors, summary = run_file(path)
+    expected = ([], 1, 100)
+    assert expected == (errors, summary["replay"]["redelivered"], filled(summary))
+
+
+def test_copy_of_a_rejected_line_is_rejected_again(tmp_path: Path) -> None:
+    """Only accepted messages count as redelivered: a repeated bad fill is two errors."""
+    line = fill("F1", 100, 60, order_id="ORD9")
+    path = write(tmp_path, [order(0), line, line])
+    errors, _ = run_file(path)
+    expected = [2, 3]
+    assert expected == [error.line for error in errors]
+
+
+def test_two_replays_are_byte_identical(tmp_path: Path) -> None:
+    """Two runs on the same input write byte-identical files."""
+    path = write(
+        tmp_path, [order(0), fill("F1", 100, 60), "oops", fill("F2", 200, 180), fill("F3", 7, 9)]
+    )
+    for name in ("a", "b"):
+        write_outputs(replay(read_input(path), make_engine()), tmp_path / name)
+    assert [(tmp_path / "a" / n).read_bytes() for n in OUTPUT_FILES] == [
+        (tmp_path / "b" / n).read_bytes() for n in OUTPUT_FILES
+    ]
+
+
+class Spy:
+    """Wraps an engine and keeps every event it was given."""
+
+    def __init__(self) -> None:
+        self.engine = make_engine()
+        self.events: list[Inbound] = []
+
+    def handle(self, event: Inbound) -> list[Outbound]:
+        self.events.append(event)
+        return self.engine.handle(event)
+
+    def reject(self, topic: str, payload: bytes | str, reason: str, ts: datetime) -> ErrorMessage:
+        return self.engine.reject(topic, payload, reason, ts)
+
+    def summary(self) -> dict[str, Any]:
+        return self.engine.summary()
+
+
+def tick_times(events: list[Inbound]) -> list[str]:
+    """The times of the ticks among events, as ISO text."""
+    return [at((e.ts - T0).total_seconds()) for e in events if isinstance(e, Tick)]
+
+
+def test_ticks_are_derived_on_whole_intervals_between_lines(tmp_path: Path) -> None:
+    """With no tick lines, ticks come at each whole second after one line and up to the next."""
+    path = write(tmp_path, [order(0.5), fill("F1", 100, 3.0)])
+    spy = Spy()
+    replay(read_input(path), spy)
+    assert [at(1), at(2), at(3)] == tick_times(spy.events)
+
+
+def test_derived_tick_comes_before_a_line_at_the_same_time(tmp_path: Path) -> None:
+    """A derived tick at exactly a line's time is handled before that line."""
+    path = write(tmp_path, [order(0.5), fill("F1", 100, 2.0)])
+    spy = Spy()
+    replay(read_input(path), spy)
+    expected = ["order", "tick", "tick", "fill"]
+    assert expected == [e.type for e in spy.events]
+
+
+def test_tick_interval_is_a_parameter(tmp_path: Path) -> None:
+    """tick_seconds sets the interval of derived ticks."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 25)])
+    spy = Spy()
+    replay(read_input(path), spy, tick_seconds=10)
+    assert [at(10), at(20)] == tick_times(spy.events)
+
+
+def test_recorded_ticks_are_not_doubled(tmp_path: Path) -> None:
+    """When the input holds tick lines, only those ticks reach the engine."""
+    tick = {"topic": "tracker/tick", "payload": {"type": "tick", "ts": at(7)}, "ts": at(7)}
+    path = write(tmp_path, [order(0), tick, fill("F1", 100, 25)])
+    spy = Spy()
+    replay(read_input(path), spy)
+    assert [at(7)] == tick_times(spy.events)
+
+
+def test_rejected_line_does_not_move_time(tmp_path: Path) -> None:
+    """A line rejected before the engine sees it derives no ticks."""
+    path = write(tmp_path, [order(0), fill("F1", -1, 5)])
+    spy = Spy()
+    replay(read_input(path), spy)
+    expected = []
+    assert expected == tick_times(spy.events)
+
+
+def test_line_without_ts_uses_the_message_time(tmp_path: Path) -> None:
+    """A line recorded without ts is ordered by the message's own ts."""
+    late = fill("F1", 100, 60)
+    early = fill("F2", 100, 30)
+    del late["ts"], early["ts"]
+    path = write(tmp_path, [order(0), late, early])
+    errors, _ = run_file(path)
+    expected = [3]
+    assert expected == [error.line for error in errors]
+
+
+def test_reader_keeps_raw_text_payload() -> None:
+    """A line whose payload is text hands the text on as it is (it may be malformed)."""
+    lines = list(read_jsonl_text('{"topic": "tracker/control", "payload": "{nope", "ts": null}'))
+    assert [Record(line=1, topic="tracker/control", payload="{nope", ts=None)] == lines
+
+
+def read_jsonl_text(text: str) -> list[Record | BadLine]:
+    """parse lines of text as read_jsonl would."""
+    from tracker.replay import parse_line
+
+    return [parse_line(n, line) for n, line in enumerate(text.splitlines(), start=1)]
+
+
+def test_reader_flags_invalid_utf8(tmp_path: Path) -> None:
+    """A line that is not UTF-8 is a bad line naming the encoding."""
+    path = tmp_path / "in.jsonl"
+    path.write_bytes(b'{"topic": "tracker/control", "payload": "\xff"}\n')
+    (line,) = list(read_jsonl(path))
+    assert isinstance(line, BadLine) and "UTF-8" in line.reason
+
+
+def test_missing_input_is_an_input_error(tmp_path: Path) -> None:
+    """A missing input file is an InputError naming the file."""
+    with pytest.raises(InputError, match=r"nothing\.jsonl"):
+        read_input(tmp_path / "nothing.jsonl")
+
+
+def test_replayer_rejects_a_bad_tick_interval() -> None:
+    """tick_seconds must be positive."""
+    with pytest.raises(InputError, match="tick_seconds"):
+        Replayer(make_engine(), tick_seconds=0)
+
+
+def test_summary_writes_nan_as_null() -> None:
+    """summary.json never holds NaN (not JSON): it becomes null."""
+    expected = '{\n  "x": null\n}\n'
+    assert expected == dumps_summary({"x": float("nan")})

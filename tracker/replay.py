@@ -1,0 +1,592 @@
+"""Replay: run the engine on recorded messages, deterministically, and keep what it said.
+
+Theory of operation
+-------------------
+A recording is a sequence of :class:`~tracker.records.Record` -- the lines of a JSON Lines file
+(``{"topic": ..., "payload": ..., "ts": ...}`` per line) or the rows of the daemon's SQLite journal.
+:class:`Replayer` feeds them, one at a time, through the same edge the live shell uses and hands
+each accepted message to :meth:`Engine.handle`. Every line ends in exactly one of three ways:
+
+* **accepted** -- it decoded, it is in time order, and the engine took it; its outputs are kept.
+* **redelivered** -- it is an exact copy (same topic, same decoded message) of a line accepted
+  earlier, as an MQTT broker re-sends a QoS 1 message whose acknowledgement was lost. It changes
+  nothing and is not an error; it is counted in the summary.
+* **rejected** -- exactly one :class:`~tracker.wire.ErrorMessage` with ``line`` set to the input's
+  1-based line number and a reason a person can act on. The checks, in order:
+
+  1. line level (ours): not UTF-8, not JSON, not an object, no ``topic``, no ``payload``, a ``ts``
+     that is not ISO 8601 with an offset;
+  2. message level: :func:`tracker.wire.decode` (bad JSON in a raw payload, missing field, wrong
+     type, negative or NaN quantity, unknown type, wrong topic for the payload);
+  3. time order: a line whose time is earlier than the latest time already replayed;
+  4. the engine's own verdict (a fill for an unknown order, ...): every ErrorMessage the engine
+     returns while handling a line gets that line's number.
+
+  The line's *time* is its recorded ``ts`` (when the shell received it); a line recorded without one
+  uses the message's own ``ts``.
+
+Ticks (the rule)
+----------------
+The live daemon injects a :class:`~tracker.wire.Tick` every ``tick_seconds`` of its clock so that
+the engine can judge stale market data and expired orders with no message arriving; it journals
+those ticks like any message. So:
+
+* if the recording holds at least one line on ``{root}/tick`` (a journal always does), its ticks are
+  replayed as recorded and none are invented -- doubling them would change what the engine saw;
+* if it holds none (a hand-made or simulated file), the replayer derives them: before a line of
+  time ``t``, it injects a tick at every whole multiple of ``tick_seconds`` since the Unix epoch
+  that lies after the previous line's time and at or before ``t`` (a tick at exactly ``t`` comes
+  before the line). No tick comes before the first line or after the last one. The engine then
+  sees time move in the same steps as live, to within one tick interval.
+
+Determinism: nothing here reads the clock or iterates over an unordered container, so the same input
+gives the same outputs, and :func:`write_outputs` writes them byte for byte the same.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import sys
+from collections.abc import Callable, Iterable, Iterator, Mapping
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any, Protocol
+
+from tracker.errors import InputError
+from tracker.records import Record
+from tracker.wire import (
+    AlertMessage,
+    ErrorMessage,
+    Inbound,
+    Outbound,
+    StatusMessage,
+    TargetMessage,
+    Tick,
+    WireError,
+    decode,
+    encode,
+    payload_text,
+)
+
+__all__ = [
+    "DEFAULT_TICK_SECONDS",
+    "SQLITE_HEADER",
+    "BadLine",
+    "ReplayResult",
+    "Replayer",
+    "read_input",
+    "read_jsonl",
+    "replay",
+    "write_outputs",
+]
+
+#: Interval of derived ticks, in seconds (the live daemon's default tick interval).
+DEFAULT_TICK_SECONDS = 1.0
+
+#: The first 16 bytes of every SQLite database file.
+SQLITE_HEADER = b"SQLite format 3\x00"
+
+#: Output files, in the order :func:`write_outputs` writes them.
+OUTPUT_FILES = ("targets.jsonl", "alerts.jsonl", "status.jsonl", "errors.jsonl", "summary.json")
+
+_EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
+
+
+@dataclass(frozen=True, slots=True)
+class BadLine:
+    """A line of a JSON Lines recording that is not a record at all.
+
+    Attributes:
+        line: 1-based line number in the file.
+        raw: The line's text (as far as it could be decoded).
+        reason: What is wrong and how to fix it.
+        topic: The line's topic, when it had a usable one; else ``""``.
+        ts: The line's recorded time, when it had a usable one.
+    """
+
+    line: int
+    raw: str
+    reason: str
+    topic: str = ""
+    ts: str | None = None
+
+
+class EngineLike(Protocol):
+    """What the replayer needs from the engine (:class:`tracker.engine.Engine` has it)."""
+
+    def handle(self, event: Inbound) -> list[Outbound]: ...
+
+    def reject(
+        self, topic: str, payload: bytes | str, reason: str, ts: datetime
+    ) -> ErrorMessage: ...
+
+    def summary(self) -> dict[str, Any]: ...
+
+
+# --------------------------------------------------------------------------------------------------
+# Reading recordings
+
+
+def read_jsonl(path: str | Path) -> Iterator[Record | BadLine]:
+    """Read a JSON Lines recording, one :class:`Record` per line.
+
+    Blank lines are skipped (they carry nothing). A line that cannot be a record -- not UTF-8, not
+    a JSON object, no ``topic`` string, no ``payload`` object or string, a ``ts`` that is not a
+    string -- comes out as a :class:`BadLine` so the caller can report it and go on.
+
+    Args:
+        path: The file.
+
+    Yields:
+        A :class:`Record` (payload: the parsed object, or the raw text when the line holds text) or
+        a :class:`BadLine`, in file order.
+
+    Raises:
+        InputError: The file cannot be opened.
+    """
+    try:
+        handle = open(path, "rb")  # noqa: SIM115 -- closed by the ``with`` below
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}", field="INPUT") from exc
+    with handle:
+        for number, raw_bytes in enumerate(handle, start=1):
+            if not raw_bytes.strip():
+                continue
+            yield parse_line(number, raw_bytes)
+
+
+def parse_line(number: int, raw_bytes: bytes | str) -> Record | BadLine:
+    """Turn one line of a JSON Lines recording into a :class:`Record` or a :class:`BadLine`."""
+    if isinstance(raw_bytes, bytes):
+        try:
+            text = raw_bytes.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            return BadLine(
+                number,
+                raw_bytes.decode("utf-8", errors="replace").rstrip("\r\n"),
+                f"the line is not valid UTF-8 (byte {exc.start}); re-save the file as UTF-8",
+            )
+    else:
+        text = raw_bytes
+    text = text.rstrip("\r\n")
+    try:
+        obj = json.loads(text)
+    except (json.JSONDecodeError, RecursionError) as exc:
+        reason = getattr(exc, "msg", "nesting too deep")
+        column = getattr(exc, "colno", 0)
+        return BadLine(
+            number,
+            text,
+            f"the line is not JSON ({reason} at column {column}); each line must be one object "
+            '{"topic": ..., "payload": ..., "ts": ...}',
+        )
+    if not isinstance(obj, dict):
+        return BadLine(
+            number,
+            text,
+            f"the line is a JSON {_json_kind(obj)}, not an object; each line must be one object "
+            '{"topic": ..., "payload": ..., "ts": ...}',
+        )
+    topic = obj.get("topic")
+    ts = obj.get("ts")
+    usable_ts = ts if isinstance(ts, str) else None
+    if not isinstance(topic, str) or not topic:
+        what = "has no" if topic is None else "has an empty" if topic == "" else "has a non-string"
+        return BadLine(
+            number,
+            text,
+            f"the line {what} 'topic'; give the MQTT topic the message arrived on, "
+            "e.g. tracker/fills/ORDER_ID",
+            ts=usable_ts,
+        )
+    if ts is not None and not isinstance(ts, str):
+        return BadLine(
+            number,
+            text,
+            f"'ts' is a JSON {_json_kind(ts)}; give the receive time as an ISO 8601 string with an "
+            "offset, e.g. 2026-03-10T14:30:00Z, or leave it out",
+            topic=topic,
+        )
+    if "payload" not in obj or obj["payload"] is None:
+        return BadLine(
+            number,
+            text,
+            "the line has no 'payload'; give the message object, or its raw text as a string",
+            topic=topic,
+            ts=usable_ts,
+        )
+    payload = obj["payload"]
+    if not isinstance(payload, dict | str):
+        return BadLine(
+            number,
+            text,
+            f"'payload' is a JSON {_json_kind(payload)}; give the message object, or its raw text "
+            "as a string",
+            topic=topic,
+            ts=usable_ts,
+        )
+    return Record(line=number, topic=topic, payload=payload, ts=usable_ts)
+
+
+def read_input(path: str | Path) -> Iterator[Record | BadLine]:
+    """Read a recording: a SQLite journal of the daemon, or else a JSON Lines file.
+
+    The kind is told by the file's first bytes (SQLite's header ``SQLite format 3\\0``), not by its
+    name.
+
+    Raises:
+        InputError: The file cannot be read, or it is a journal and the journal reader is missing.
+    """
+    path = Path(path)
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(len(SQLITE_HEADER))
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}", field="INPUT") from exc
+    if head == SQLITE_HEADER:
+        try:
+            from tracker.journal import read_journal
+        except ImportError as exc:
+            raise InputError(
+                f"{path} is a SQLite journal, and reading journals needs tracker.journal, which "
+                "this installation lacks; export the journal to JSON Lines or update tracker",
+                field="INPUT",
+            ) from exc
+        return iter(read_journal(path))
+    return read_jsonl(path)
+
+
+def _json_kind(value: object) -> str:
+    if isinstance(value, bool):
+        return "boolean"
+    if isinstance(value, int | float):
+        return "number"
+    if isinstance(value, str):
+        return "string"
+    if isinstance(value, list):
+        return "array"
+    if value is None:
+        return "null"
+    return "object"
+
+
+# --------------------------------------------------------------------------------------------------
+# Feeding the engine
+
+
+@dataclass
+class ReplayResult:
+    """Everything a replay produced, in the order the engine produced it.
+
+    Attributes:
+        targets, alerts, status, errors: The engine's outputs by kind (errors also hold the lines
+            the replayer rejected), each ErrorMessage with ``line`` set.
+        summary: :meth:`Engine.summary` after the last line, plus a ``replay`` block of counts.
+    """
+
+    targets: list[TargetMessage] = field(default_factory=list)
+    alerts: list[AlertMessage] = field(default_factory=list)
+    status: list[StatusMessage] = field(default_factory=list)
+    errors: list[ErrorMessage] = field(default_factory=list)
+    summary: dict[str, Any] = field(default_factory=dict)
+
+    def add(self, outputs: Iterable[Outbound]) -> None:
+        """File each output under its kind."""
+        for message in outputs:
+            if isinstance(message, TargetMessage):
+                self.targets.append(message)
+            elif isinstance(message, AlertMessage):
+                self.alerts.append(message)
+            elif isinstance(message, StatusMessage):
+                self.status.append(message)
+            else:
+                self.errors.append(message)
+
+
+class Replayer:
+    """Feeds records to an engine one at a time, as the live shell would, and keeps count.
+
+    Usable incrementally (the closed-loop simulation feeds it as it goes) or through
+    :func:`replay`.
+
+    Args:
+        engine: The engine to feed.
+        root: The MQTT topic root the recording was made under.
+        derive_ticks: Inject ticks derived from the lines' times (see the module docstring). Turn
+            off when the recording holds its own ticks.
+        tick_seconds: Interval of derived ticks.
+    """
+
+    def __init__(
+        self,
+        engine: EngineLike,
+        *,
+        root: str = "tracker",
+        derive_ticks: bool = True,
+        tick_seconds: float = DEFAULT_TICK_SECONDS,
+    ) -> None:
+        if not (math.isfinite(tick_seconds) and tick_seconds > 0):
+            raise InputError(
+                f"must be a positive number of seconds, got {tick_seconds}", field="tick_seconds"
+            )
+        self.engine = engine
+        self.root = root
+        self.derive_ticks = derive_ticks
+        self._tick = timedelta(seconds=tick_seconds)
+        self._tick_topic = f"{root}/tick"
+        self._last: datetime | None = None
+        self._seen: set[bytes] = set()
+        self.lines = 0
+        self.accepted = 0
+        self.redelivered = 0
+        self.rejected = 0
+        self.ticks_derived = 0
+
+    @property
+    def now(self) -> datetime | None:
+        """The latest time replayed so far (``None`` before the first timed line)."""
+        return self._last
+
+    def feed(self, record: Record | BadLine) -> list[Outbound]:
+        """Handle one line; return what the engine said (and the line's error, if rejected)."""
+        self.lines += 1
+        if isinstance(record, BadLine):
+            return [self._reject(record.line, record.topic, record.raw, record.reason, record.ts)]
+        raw = payload_text(record.payload)
+        recorded: datetime | None = None
+        if record.ts is not None:
+            try:
+                recorded = _parse_ts(record.ts)
+            except ValueError:
+                return [
+                    self._reject(
+                        record.line,
+                        record.topic,
+                        raw,
+                        f"the line's 'ts' {record.ts!r} is not an ISO 8601 time with an offset; "
+                        "write it like 2026-03-10T14:30:00Z, or leave it out",
+                        None,
+                    )
+                ]
+        try:
+            message = decode(record.topic, record.payload, root=self.root)
+        except WireError as exc:
+            return [self._reject(record.line, record.topic, raw, exc.reason, recorded)]
+        key = _identity(record.topic, message)
+        if key in self._seen:
+            self.redelivered += 1
+            return []
+        when = recorded if recorded is not None else _message_time(message)
+        if when is not None and self._last is not None and when < self._last:
+            return [
+                self._reject(
+                    record.line,
+                    record.topic,
+                    raw,
+                    f"time goes backwards: this line's time {_iso(when)} is earlier than "
+                    f"{_iso(self._last)}, already replayed; a recording must be in time order -- "
+                    "sort the lines by 'ts' or fix this line's time",
+                    recorded,
+                )
+            ]
+        outputs: list[Outbound] = []
+        if when is not None:
+            if self.derive_ticks and self._last is not None:
+                outputs.extend(self._ticks_until(when, record.line))
+            self._last = when
+        produced = self.engine.handle(message)
+        rejected = False
+        for out in produced:
+            if isinstance(out, ErrorMessage):
+                rejected = True
+                outputs.append(out.model_copy(update={"line": record.line}))
+            else:
+                outputs.append(out)
+        if rejected:
+            self.rejected += 1
+        else:
+            self.accepted += 1
+            self._seen.add(key)
+        return outputs
+
+    def _ticks_until(self, when: datetime, line: int) -> list[Outbound]:
+        """Outputs of the derived ticks after the previous line's time and at or before ``when``."""
+        assert self._last is not None
+        # Whole microseconds (timedelta // timedelta): exact, no float rounding at the boundaries.
+        first = (self._last - _EPOCH) // self._tick + 1
+        last = (when - _EPOCH) // self._tick
+        outputs: list[Outbound] = []
+        for k in range(first, last + 1):
+            tick = Tick(ts=_EPOCH + k * self._tick)
+            self.ticks_derived += 1
+            for out in self.engine.handle(tick):
+                if isinstance(out, ErrorMessage):
+                    out = out.model_copy(update={"line": line})
+                outputs.append(out)
+        return outputs
+
+    def _reject(
+        self, line: int, topic: str, raw: str, reason: str, recorded: datetime | None
+    ) -> ErrorMessage:
+        self.rejected += 1
+        ts = recorded or self._last or _EPOCH
+        error = self.engine.reject(topic, raw, reason, ts)
+        return error.model_copy(update={"line": line})
+
+    def counts(self) -> dict[str, int]:
+        """How many lines were read, accepted, redelivered and rejected; how many ticks derived."""
+        return {
+            "lines": self.lines,
+            "accepted": self.accepted,
+            "redelivered": self.redelivered,
+            "rejected": self.rejected,
+            "ticks_derived": self.ticks_derived,
+        }
+
+
+def has_ticks(records: Iterable[Record | BadLine], root: str) -> bool:
+    """Whether any line of a recording is on the tick topic."""
+    topic = f"{root}/tick"
+    return any(r.topic == topic for r in records)
+
+
+def replay(
+    records: Iterable[Record | BadLine],
+    engine: EngineLike,
+    root: str = "tracker",
+    *,
+    tick_seconds: float = DEFAULT_TICK_SECONDS,
+    progress: Callable[[int], None] | None = None,
+) -> ReplayResult:
+    """Run an engine over a whole recording.
+
+    Ticks are derived from the lines' times only when the recording has no tick line at all (see
+    the module docstring).
+
+    Args:
+        records: The recording (from :func:`read_input`, or built in memory).
+        engine: A fresh engine (it is fed every line).
+        root: The MQTT topic root the recording was made under.
+        tick_seconds: Interval of derived ticks.
+        progress: Called with the number of lines done, every few thousand lines and at the end.
+
+    Returns:
+        The outputs and the summary.
+    """
+    lines = list(records)
+    replayer = Replayer(
+        engine, root=root, derive_ticks=not has_ticks(lines, root), tick_seconds=tick_seconds
+    )
+    result = ReplayResult()
+    for done, record in enumerate(lines, start=1):
+        result.add(replayer.feed(record))
+        if progress is not None and done % 2048 == 0:
+            progress(done)
+    if progress is not None:
+        progress(len(lines))
+    result.summary = finish_summary(engine, replayer)
+    return result
+
+
+def finish_summary(engine: EngineLike, replayer: Replayer) -> dict[str, Any]:
+    """The engine's summary with the replayer's counts added under ``replay``."""
+    summary = dict(engine.summary())
+    summary["replay"] = replayer.counts()
+    return summary
+
+
+# --------------------------------------------------------------------------------------------------
+# Writing outputs
+
+
+def write_outputs(result: ReplayResult, out_dir: str | Path) -> list[Path]:
+    """Write targets.jsonl, alerts.jsonl, status.jsonl, errors.jsonl and summary.json.
+
+    Each JSON Lines file holds one wire-contract message per line in the order the engine produced
+    them (:func:`tracker.wire.encode`); ``summary.json`` is indented with sorted keys. Same result,
+    same bytes.
+
+    Args:
+        result: What :func:`replay` returned.
+        out_dir: The folder (created if missing; files in it with these names are replaced).
+
+    Returns:
+        The paths written.
+
+    Raises:
+        InputError: The folder cannot be created or written.
+    """
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        paths = []
+        groups: list[tuple[str, list[Any]]] = [
+            ("targets.jsonl", result.targets),
+            ("alerts.jsonl", result.alerts),
+            ("status.jsonl", result.status),
+            ("errors.jsonl", result.errors),
+        ]
+        for name, messages in groups:
+            path = out / name
+            with open(path, "wb") as handle:
+                for message in messages:
+                    handle.write(encode(message).rstrip(b"\n") + b"\n")
+            paths.append(path)
+        path = out / "summary.json"
+        path.write_text(dumps_summary(result.summary), encoding="utf-8")
+        paths.append(path)
+    except OSError as exc:
+        raise InputError(f"cannot write to {out}: {exc.strerror}", field="--out") from exc
+    return paths
+
+
+def dumps_summary(summary: Mapping[str, Any]) -> str:
+    """The summary as stable JSON text: sorted keys, two-space indent, no NaN, final newline."""
+    return json.dumps(_finite(summary), indent=2, sort_keys=True, ensure_ascii=False) + "\n"
+
+
+def _finite(value: Any) -> Any:
+    """Replace NaN and infinities (not JSON) with ``None``, recursively."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, Mapping):
+        return {str(k): _finite(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_finite(v) for v in value]
+    return value
+
+
+# --------------------------------------------------------------------------------------------------
+# Small helpers
+
+
+def _parse_ts(text: str) -> datetime:
+    value = datetime.fromisoformat(text)
+    if value.tzinfo is None:
+        raise ValueError("no offset")
+    return value
+
+
+def _iso(value: datetime) -> str:
+    return value.astimezone(UTC).isoformat().replace("+00:00", "Z")
+
+
+def _message_time(message: Inbound) -> datetime | None:
+    ts = getattr(message, "ts", None)
+    return ts if isinstance(ts, datetime) else None
+
+
+def _identity(topic: str, message: Inbound) -> bytes:
+    """A digest that two copies of the same message share (and different messages do not)."""
+    digest = hashlib.blake2b(topic.encode(), digest_size=16)
+    digest.update(b"\x00")
+    digest.update(message.model_dump_json().encode())
+    return digest.digest()
+
+
+def stderr_is_terminal() -> bool:
+    """Whether stderr is a terminal (the progress bar shows only then, unless asked for)."""
+    return sys.stderr.isatty()
