@@ -1,0 +1,270 @@
+"""From an order and today's liquidity to the canonical execution problem.
+
+Theory of operation
+-------------------
+For the bins ``first_bin .. end_bin - 1`` of the session, with forecast volume V_n (shares), spread
+s_n (currency) and per-bin volatility sigma_n (log return), at price P (currency):
+
+* fixed cost ``h_n = s_n / 2 + fee_bps * 1e-4 * P`` (currency per share): half the spread is what
+  crossing it costs, plus fees;
+* temporary impact ``k_n = eta * sigma_n^day * P / V_n^beta`` so that trading v shares in the bin
+  costs ``eta * sigma_n^day * P * (v / V_n)^beta`` per share. ``sigma_n^day = sigma_n *
+  sqrt(n_bins)`` is the daily volatility implied by the bin's own volatility, because the published
+  laws are stated with daily volatility and the share of a day's volume. Laws (:data:`IMPACT_LAWS`):
+
+  - ``"sqrt"``, the square-root law, beta = 1/2, eta = Y = 0.5. Toth et al. (2011, Phys. Rev. X 1,
+    021006) report a prefactor Y "of order one"; 0.5 is our conservative choice within that range
+    (from memory).
+  - ``"power"``, beta = 3/5 and eta = 0.142: the temporary impact fitted by Almgren, Thum, Hauptmann
+    and Li (2005, Risk 18(7), "Direct estimation of equity market impact"); eta from memory.
+  - ``"linear"``, beta = 1 (quadratic cost, the Almgren-Chriss 2000 setting, solved exactly by the
+    Riccati recursion), eta = 0.5 / sqrt(0.1) ~ 1.58, chosen so that its cost equals the
+    square-root law's at 10 % participation.
+
+* inventory risk ``c_n = lambda * (sigma_n * P)^2 * X^(2 - p)`` on the inventory left after bin n,
+  with ``lambda = risk_aversion / (P * ADV)`` in 1/currency: ``risk_aversion`` is dimensionless (per
+  unit of the symbol's daily traded value), so the same value gives the same schedule shape on any
+  stock under linear impact. X is the reference size (the parent order's quantity) so that
+  ``c_n X^p`` does not depend on p;
+* completion: ``"force"`` (finish by the end; the default) or a penalty of ``completion_penalty``
+  basis points of P per unfinished share at the reference size: ``A = bps * 1e-4 * P * X^(1 - p)``;
+* caps ``u_n = max_participation * V_n``.
+
+Urgency presets (:data:`URGENCY`) set ``risk_aversion``; "low" follows the volume curve closely,
+"high" front-loads, "medium" sits between. Everything here is pure and fast: :func:`build_problem`
+is a few numpy slices (the engine builds about a thousand per bin close).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, fields, replace
+from typing import Any
+
+import numpy as np
+
+from tracker.errors import InputError
+from tracker.liquidity import Forecast
+from tracker.problem import FORCE, Problem
+
+
+@dataclass(frozen=True, slots=True)
+class ImpactLaw:
+    """A temporary-impact law: cost per share ``eta * sigma^day * P * (v / V)^beta``."""
+
+    name: str
+    exponent: float
+    coefficient: float
+    source: str
+
+
+#: The impact laws, by name (see the module docstring for the sources of the defaults).
+IMPACT_LAWS: dict[str, ImpactLaw] = {
+    "sqrt": ImpactLaw("sqrt", 0.5, 0.5, "square-root law; Y = 0.5, Toth et al. (2011)"),
+    "power": ImpactLaw(
+        "power", 0.6, 0.142, "3/5 power law, Almgren, Thum, Hauptmann and Li (2005)"
+    ),
+    "linear": ImpactLaw(
+        "linear",
+        1.0,
+        0.5 / math.sqrt(0.1),
+        "linear impact (Almgren-Chriss 2000), matched to the square-root law at 10 % participation",
+    ),
+}
+
+#: Default impact law.
+DEFAULT_IMPACT_LAW = "sqrt"
+
+
+@dataclass(frozen=True, slots=True)
+class Preferences:
+    """How the desk trades off cost against risk (units in the module docstring).
+
+    Args:
+        risk_aversion: Inventory aversion, dimensionless per unit of daily traded value (>= 0).
+        completion_penalty: ``"force"`` (finish by the end) or basis points of price per
+            unfinished share at the order's size (>= 0).
+        penalty_exponent: p of the inventory and completion penalties, in [1, 4] (2 is classic).
+        impact_law: ``"sqrt"``, ``"power"`` or ``"linear"``.
+        impact_coefficient: eta of the impact law; ``None`` takes the law's published default.
+        fee_bps: Fees in basis points of price, per share (>= 0).
+        urgency: The preset these came from, if any (for reports).
+    """
+
+    risk_aversion: float = 0.0
+    completion_penalty: float | str = FORCE
+    penalty_exponent: float = 2.0
+    impact_law: str = DEFAULT_IMPACT_LAW
+    impact_coefficient: float | None = None
+    fee_bps: float = 0.0
+    urgency: str | None = None
+
+    def __post_init__(self) -> None:
+        _check_number("risk_aversion", self.risk_aversion, low=0.0)
+        if self.completion_penalty != FORCE:
+            _check_number(
+                "completion_penalty",
+                self.completion_penalty,
+                low=0.0,
+                allowed='"force" or a number of basis points >= 0',
+            )
+        _check_number("penalty_exponent", self.penalty_exponent, low=1.0, high=4.0)
+        if self.impact_law not in IMPACT_LAWS:
+            raise InputError(
+                f"must be one of {', '.join(IMPACT_LAWS)}; got {self.impact_law!r}",
+                field="preferences.impact_law",
+            )
+        if self.impact_coefficient is not None:
+            _check_number("impact_coefficient", self.impact_coefficient, low=0.0)
+        _check_number("fee_bps", self.fee_bps, low=0.0)
+
+    @property
+    def law(self) -> ImpactLaw:
+        """The impact law with the coefficient in use."""
+        law = IMPACT_LAWS[self.impact_law]
+        if self.impact_coefficient is None:
+            return law
+        return ImpactLaw(law.name, law.exponent, float(self.impact_coefficient), "set by the user")
+
+    def to_mapping(self) -> dict[str, Any]:
+        """The preferences as a JSON object."""
+        return {f.name: getattr(self, f.name) for f in fields(self)}
+
+
+def _check_number(
+    name: str, value: Any, *, low: float, high: float = math.inf, allowed: str | None = None
+) -> None:
+    what = allowed or (
+        f"a number in [{low:g}, {high:g}]" if math.isfinite(high) else f"a number >= {low:g}"
+    )
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, int | float)
+        or not (math.isfinite(value) and low <= value <= high)
+    ):
+        raise InputError(f"must be {what}; got {value!r}", field=f"preferences.{name}")
+
+
+#: Urgency presets: the ``risk_aversion`` each maps to (other preferences keep their defaults).
+URGENCY: dict[str, dict[str, Any]] = {
+    "low": {"risk_aversion": 0.0},
+    "medium": {"risk_aversion": 20.0},
+    "high": {"risk_aversion": 400.0},
+}
+
+#: The preset used when neither an urgency nor a risk aversion is given.
+DEFAULT_URGENCY = "medium"
+
+_PREFERENCE_KEYS = tuple(f.name for f in fields(Preferences) if f.name != "urgency")
+
+
+def preferences(
+    urgency: str | None = None, overrides: Mapping[str, Any] | None = None
+) -> Preferences:
+    """Preferences from an urgency preset, with explicit values taking precedence.
+
+    Args:
+        urgency: ``"low"``, ``"medium"`` or ``"high"``; ``None`` means ``"medium"``.
+        overrides: Explicit preference values by field name (see :class:`Preferences`).
+
+    Raises:
+        InputError: an unknown urgency or key, or a value out of range (the field is named).
+    """
+    name = DEFAULT_URGENCY if urgency is None else urgency
+    if name not in URGENCY:
+        raise InputError(f"must be one of {', '.join(URGENCY)}; got {urgency!r}", field="urgency")
+    values: dict[str, Any] = dict(URGENCY[name])
+    for key, value in (overrides or {}).items():
+        if key not in _PREFERENCE_KEYS:
+            raise InputError(
+                f"is not a preference; the preferences are {', '.join(_PREFERENCE_KEYS)}",
+                field=f"preferences.{key}",
+            )
+        values[key] = value
+    return Preferences(**values, urgency=name)
+
+
+def with_preferences(base: Preferences, **changes: Any) -> Preferences:
+    """A copy of ``base`` with some fields changed (validated again)."""
+    return replace(base, **changes)
+
+
+def build_problem(
+    *,
+    quantity: float,
+    first_bin: int,
+    end_bin: int,
+    forecast: Forecast,
+    preferences: Preferences,
+    max_participation: float | None,
+    price: float,
+    first_fraction: float = 1.0,
+    reference_quantity: float | None = None,
+) -> Problem:
+    """The canonical problem for the bins ``first_bin .. end_bin - 1`` of ``forecast``.
+
+    Args:
+        quantity: Shares still to execute (>= 0; the side is handled outside).
+        first_bin: First bin of the horizon (inclusive), index into the session's bins.
+        end_bin: End of the horizon (exclusive).
+        forecast: Today's liquidity (:func:`tracker.liquidity.forecast`).
+        preferences: Cost/risk preferences.
+        max_participation: Largest fraction of a bin's forecast volume to trade, in (0, 1], or
+            ``None`` for no cap.
+        price: Current (or arrival) price, currency per share (> 0).
+        first_fraction: Fraction of the first bin still ahead (an order starting mid-bin); scales
+            that bin's volume.
+        reference_quantity: The parent order's size, for the scale of a penalty exponent other
+            than 2 and of the completion penalty; defaults to ``quantity``.
+
+    Returns:
+        The :class:`~tracker.problem.Problem` with ``end_bin - first_bin`` bins.
+
+    Raises:
+        InputError: a bin range or value out of range.
+    """
+    n = forecast.volume.shape[0]
+    if not 0 <= first_bin < end_bin <= n:
+        raise InputError(
+            f"need 0 <= first_bin < end_bin <= {n}; got first_bin={first_bin}, end_bin={end_bin}",
+            field="bins",
+        )
+    if not (price > 0 and math.isfinite(price)):
+        raise InputError(f"must be a price > 0; got {price!r}", field="price")
+    if max_participation is not None and not 0 < max_participation <= 1:
+        raise InputError(
+            f"must be a fraction in (0, 1]; got {max_participation!r}", field="max_participation"
+        )
+    if not 0 < first_fraction <= 1:
+        raise InputError(f"must be in (0, 1]; got {first_fraction!r}", field="first_fraction")
+    volume = np.maximum(forecast.volume[first_bin:end_bin], 1.0)
+    if first_fraction != 1.0:
+        volume = volume.copy()
+        volume[0] = max(volume[0] * first_fraction, 1.0)
+    sigma = forecast.volatility[first_bin:end_bin]
+    law = preferences.law
+    fixed = forecast.spread[first_bin:end_bin] * 0.5 + preferences.fee_bps * 1e-4 * price
+    impact = (law.coefficient * math.sqrt(n) * price) * sigma / volume**law.exponent
+    p = preferences.penalty_exponent
+    reference = quantity if reference_quantity is None else reference_quantity
+    reference = max(reference, 1.0)
+    aversion = preferences.risk_aversion / (price * forecast.average_daily_volume)
+    risk = (aversion * price * price * reference ** (2.0 - p)) * sigma * sigma
+    if preferences.completion_penalty == FORCE:
+        terminal: float | str = FORCE
+    else:
+        terminal = float(preferences.completion_penalty) * 1e-4 * price * reference ** (1.0 - p)
+    caps = None if max_participation is None else max_participation * volume
+    return Problem(
+        quantity=quantity,
+        bins=end_bin - first_bin,
+        fixed_cost=fixed,
+        temporary_impact=impact,
+        impact_exponent=law.exponent,
+        permanent_impact=0.0,
+        inventory_penalty=risk,
+        penalty_exponent=p,
+        terminal_penalty=terminal,
+        caps=caps,
+    )
