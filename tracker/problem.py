@@ -53,8 +53,15 @@ FIELDS = (
 PerBin = float | Sequence[float] | FloatArray
 
 
-def _number(name: str, value: Any, *, low: float, high: float = math.inf, low_open: bool = False,
-            allowed: str) -> float:
+def _number(
+    name: str,
+    value: Any,
+    *,
+    low: float,
+    high: float = math.inf,
+    low_open: bool = False,
+    allowed: str,
+) -> float:
     """Return ``value`` as a finite float inside the stated range, or raise ``ProblemError``."""
     if isinstance(value, bool) or not isinstance(value, int | float | np.integer | np.floating):
         raise ProblemError(f"must be {allowed}; got {type(value).__name__} {value!r}", field=name)
@@ -66,11 +73,18 @@ def _number(name: str, value: Any, *, low: float, high: float = math.inf, low_op
     return number
 
 
-def _per_bin(name: str, value: Any, bins: int, *, allowed: str, allow_inf: bool = False,
-             positive: bool = False) -> FloatArray:
+def _per_bin(
+    name: str,
+    value: Any,
+    bins: int,
+    *,
+    allowed: str,
+    allow_inf: bool = False,
+    positive: bool = False,
+) -> FloatArray:
     """Broadcast a scalar or check a per-bin list; return a read-only float array of ``bins``."""
     what = f"{allowed}, or a list of {bins} such numbers (one per bin)"
-    if isinstance(value, str | bytes | Mapping) or isinstance(value, bool):
+    if isinstance(value, str | bytes | Mapping | bool):
         raise ProblemError(f"must be {what}; got {type(value).__name__} {value!r}", field=name)
     if allow_inf and isinstance(value, Sequence):
         value = [math.inf if item is None else item for item in value]
@@ -132,45 +146,101 @@ class Problem:
     def __post_init__(self) -> None:
         put = object.__setattr__
         bins = self.bins
-        if isinstance(bins, bool) or not isinstance(bins, int | np.integer) or not (
-            1 <= bins <= MAX_BINS
+        if (
+            isinstance(bins, bool)
+            or not isinstance(bins, int | np.integer)
+            or not (1 <= bins <= MAX_BINS)
         ):
-            raise ProblemError(f"must be a whole number from 1 to {MAX_BINS}; got {bins!r}",
-                               field="bins")
+            raise ProblemError(
+                f"must be a whole number from 1 to {MAX_BINS}; got {bins!r}", field="bins"
+            )
         put(self, "bins", int(bins))
-        put(self, "quantity", _number("quantity", self.quantity, low=0.0,
-                                      allowed="a finite number of shares >= 0"))
-        put(self, "fixed_cost", _per_bin("fixed_cost", self.fixed_cost, bins,
-                                         allowed="a finite number >= 0 (currency per share)"))
-        put(self, "temporary_impact", _per_bin("temporary_impact", self.temporary_impact, bins,
-                                               allowed="a finite number >= 0"))
-        put(self, "impact_exponent", _number("impact_exponent", self.impact_exponent, low=0.0,
-                                             high=2.0, low_open=True,
-                                             allowed="a number in (0, 2] (1 linear impact, "
-                                                     "0.5 square-root law)"))
-        put(self, "permanent_impact", _number("permanent_impact", self.permanent_impact, low=0.0,
-                                              allowed="a finite number >= 0"))
-        put(self, "inventory_penalty", _per_bin("inventory_penalty", self.inventory_penalty, bins,
-                                                allowed="a finite number >= 0"))
-        put(self, "penalty_exponent", _number("penalty_exponent", self.penalty_exponent, low=1.0,
-                                              high=4.0, allowed="a number in [1, 4]"))
+        put(
+            self,
+            "quantity",
+            _number("quantity", self.quantity, low=0.0, allowed="a finite number of shares >= 0"),
+        )
+        put(
+            self,
+            "fixed_cost",
+            _per_bin(
+                "fixed_cost",
+                self.fixed_cost,
+                bins,
+                allowed="a finite number >= 0 (currency per share)",
+            ),
+        )
+        put(
+            self,
+            "temporary_impact",
+            _per_bin(
+                "temporary_impact", self.temporary_impact, bins, allowed="a finite number >= 0"
+            ),
+        )
+        put(
+            self,
+            "impact_exponent",
+            _number(
+                "impact_exponent",
+                self.impact_exponent,
+                low=0.0,
+                high=2.0,
+                low_open=True,
+                allowed="a number in (0, 2] (1 linear impact, 0.5 square-root law)",
+            ),
+        )
+        put(
+            self,
+            "permanent_impact",
+            _number(
+                "permanent_impact", self.permanent_impact, low=0.0, allowed="a finite number >= 0"
+            ),
+        )
+        put(
+            self,
+            "inventory_penalty",
+            _per_bin(
+                "inventory_penalty", self.inventory_penalty, bins, allowed="a finite number >= 0"
+            ),
+        )
+        put(
+            self,
+            "penalty_exponent",
+            _number(
+                "penalty_exponent",
+                self.penalty_exponent,
+                low=1.0,
+                high=4.0,
+                allowed="a number in [1, 4]",
+            ),
+        )
         terminal = self.terminal_penalty
         if isinstance(terminal, str):
             if terminal != FORCE:
-                raise ProblemError(f'must be a number >= 0 or "force"; got {terminal!r}',
-                                   field="terminal_penalty")
+                raise ProblemError(
+                    f'must be a number >= 0 or "force"; got {terminal!r}', field="terminal_penalty"
+                )
             terminal = math.inf
-        elif isinstance(terminal, int | float) and not isinstance(terminal, bool) and (
-            terminal == math.inf
+        elif (
+            isinstance(terminal, int | float)
+            and not isinstance(terminal, bool)
+            and (terminal == math.inf)
         ):
             terminal = math.inf
         else:
-            terminal = _number("terminal_penalty", terminal, low=0.0,
-                               allowed='a finite number >= 0 or "force"')
+            terminal = _number(
+                "terminal_penalty", terminal, low=0.0, allowed='a finite number >= 0 or "force"'
+            )
         put(self, "terminal_penalty", terminal)
         if self.caps is not None:
-            caps = _per_bin("caps", self.caps, bins, allow_inf=True,
-                            allowed="null (no cap), a number of shares >= 0 (null inside a list: no cap in that bin)")
+            caps = _per_bin(
+                "caps",
+                self.caps,
+                bins,
+                allow_inf=True,
+                allowed="null (no cap), a number of shares >= 0 "
+                "(null inside a list: no cap in that bin)",
+            )
             put(self, "caps", None if np.isinf(caps).all() else caps)
 
     @property
@@ -196,16 +266,22 @@ class Problem:
             ProblemError: naming the first offending field and what it allows.
         """
         if not isinstance(data, Mapping):
-            raise ProblemError(f"the problem must be a JSON object with the fields "
-                               f"{', '.join(FIELDS)}; got {type(data).__name__}")
+            raise ProblemError(
+                f"the problem must be a JSON object with the fields "
+                f"{', '.join(FIELDS)}; got {type(data).__name__}"
+            )
         missing = [name for name in FIELDS if name not in data]
         if missing:
-            raise ProblemError("is missing; a problem file needs every one of "
-                               f"{', '.join(FIELDS)} (caps may be null)", field=missing[0])
+            raise ProblemError(
+                "is missing; a problem file needs every one of "
+                f"{', '.join(FIELDS)} (caps may be null)",
+                field=missing[0],
+            )
         unknown = sorted(set(data) - set(FIELDS))
         if unknown:
-            raise ProblemError(f"is not a problem field; the fields are {', '.join(FIELDS)}",
-                               field=unknown[0])
+            raise ProblemError(
+                f"is not a problem field; the fields are {', '.join(FIELDS)}", field=unknown[0]
+            )
         return cls(**{name: data[name] for name in FIELDS})
 
     def to_mapping(self) -> dict[str, Any]:

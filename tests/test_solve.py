@@ -1,0 +1,123 @@
+"""Behaviour of the solver's paths: closed forms, caps, shortfall, convexity, batches.
+
+The numbers themselves are checked against outside references in test_solve_references.py.
+"""
+
+import math
+
+import numpy as np
+import pytest
+
+from tracker import CAPPED_SHORTFALL, OPTIMAL, Problem, ProblemError, solve, solve_batch
+
+
+def test_nothing_to_do() -> None:
+    """A zero quantity gives zero trades and zero cost."""
+    schedule = solve(Problem(quantity=0, bins=5, fixed_cost=0.01))
+    assert (schedule.status, schedule.objective, schedule.trades.tolist()) == (
+        OPTIMAL,
+        0.0,
+        [0.0] * 5,
+    )
+
+
+def test_forced_with_short_caps_trades_every_cap() -> None:
+    """When the caps cannot complete a forced order, it trades the caps and reports the rest."""
+    schedule = solve(Problem(quantity=1000, bins=3, caps=[100, 200, 300]))
+    assert (schedule.status, schedule.trades.tolist(), schedule.shortfall) == (
+        CAPPED_SHORTFALL,
+        [100.0, 200.0, 300.0],
+        400.0,
+    )
+
+
+def test_finite_terminal_with_short_caps_reports_shortfall() -> None:
+    """Caps that cannot complete the order give capped_shortfall under a finite penalty too."""
+    problem = Problem(quantity=1000, bins=3, temporary_impact=1e-3, caps=300, terminal_penalty=1.0)
+    schedule = solve(problem)
+    assert schedule.status == CAPPED_SHORTFALL
+    assert schedule.shortfall == pytest.approx(100.0, rel=1e-6)
+
+
+def test_zero_cap_bins_do_not_trade() -> None:
+    """A bin with a zero cap trades nothing; the others absorb the quantity."""
+    problem = Problem(
+        quantity=1000,
+        bins=5,
+        temporary_impact=1e-3,
+        impact_exponent=0.5,
+        inventory_penalty=1e-4,
+        caps=[500, 0, 500, 0, 500],
+    )
+    schedule = solve(problem)
+    assert (schedule.trades[1], schedule.trades[3]) == (0.0, 0.0)
+    assert pytest.approx(schedule.trades.sum(), rel=1e-12) == 1000.0
+
+
+def test_single_tradeable_bin_takes_everything() -> None:
+    """With one bin able to trade and completion forced, that bin trades the whole order."""
+    schedule = solve(Problem(quantity=700, bins=3, impact_exponent=0.5, caps=[0, 1000, 0]))
+    assert schedule.trades.tolist() == [0.0, 700.0, 0.0]
+
+
+def test_linear_quadratic_uses_riccati() -> None:
+    """Linear impact and quadratic risk with no binding cap take the exact path."""
+    problem = Problem(quantity=1e5, bins=10, temporary_impact=1e-4, inventory_penalty=1e-7)
+    assert solve(problem).method == "riccati"
+
+
+def test_binding_cap_leaves_riccati() -> None:
+    """When the closed form would break a cap, the general path answers and the cap holds."""
+    problem = Problem(
+        quantity=1e5, bins=10, temporary_impact=1e-4, inventory_penalty=1e-5, caps=15_000
+    )
+    schedule = solve(problem)
+    assert schedule.method == "interior_point"
+    assert schedule.trades.max() <= 15_000 * (1 + 1e-9)
+
+
+def test_cost_breakdown_adds_up() -> None:
+    """The cost terms add up to the objective."""
+    problem = Problem(
+        quantity=5e4,
+        bins=12,
+        fixed_cost=0.02,
+        temporary_impact=1e-3,
+        impact_exponent=0.5,
+        permanent_impact=1e-7,
+        inventory_penalty=1e-6,
+        penalty_exponent=1.5,
+        terminal_penalty=1e-2,
+    )
+    schedule = solve(problem)
+    assert schedule.objective == pytest.approx(math.fsum(schedule.cost.values()), rel=1e-14)
+
+
+def test_too_much_permanent_impact_is_rejected() -> None:
+    """A permanent impact larger than twice the linear temporary impact makes it non-convex."""
+    with pytest.raises(ProblemError, match="non-convex") as info:
+        solve(Problem(quantity=1e4, bins=5, temporary_impact=1e-4, permanent_impact=3e-4))
+    assert info.value.field == "permanent_impact"
+
+
+def test_batch_of_mixed_sizes_matches_single_solves() -> None:
+    """solve_batch gives the same schedules as solving one at a time, whatever the sizes."""
+    problems = [
+        Problem(
+            quantity=1e4 * (i + 1),
+            bins=5 + 7 * i,
+            temporary_impact=1e-3,
+            impact_exponent=0.5,
+            inventory_penalty=1e-6,
+            penalty_exponent=1.5,
+            terminal_penalty="force" if i % 2 else 1e-2,
+            caps=4e3 if i == 2 else None,
+        )
+        for i in range(4)
+    ]
+    batch = solve_batch(problems)
+    for problem, together in zip(problems, batch, strict=True):
+        alone = solve(problem)
+        np.testing.assert_allclose(
+            alone.trades, together.trades, rtol=1e-6, atol=1e-6 * problem.quantity
+        )

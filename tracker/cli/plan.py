@@ -1,0 +1,129 @@
+"""``tracker plan``: solve one execution problem and print the schedule.
+
+``--problem FILE`` takes the canonical problem as a JSON file (fields of :mod:`tracker.problem`).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+from pathlib import Path
+from typing import Any
+
+from tracker.errors import InputError
+from tracker.policy import Policy, explain
+from tracker.problem import FIELDS, Problem
+from tracker.solve import Schedule, solve
+
+PROBLEM_HELP = (
+    "JSON file of the canonical problem with the fields "
+    + ", ".join(FIELDS)
+    + ". Each numeric field is a number or a list of one value per bin; terminal_penalty is a "
+    'number or "force"; caps is null, a number or a list. Units: shares for quantity and caps; '
+    "currency per share for fixed_cost (half spread plus fees); temporary_impact k in currency "
+    "per share^(1+impact_exponent); permanent_impact b in currency per share^2; inventory_penalty "
+    "and terminal_penalty in currency per share^penalty_exponent."
+)
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add ``plan`` to the command line."""
+    from tracker.cli import CAUTION
+
+    parser = subparsers.add_parser(
+        "plan",
+        help="solve an execution problem and print the optimal schedule",
+        description="Solve the execution problem and print the optimal schedule: trades per bin, "
+        "inventory, the objective and its breakdown. Minimises sum_n [h_n v_n + k_n v_n^(1+beta)]"
+        " + (b/2)[(Q - q_N)^2 - sum v_n^2] + sum_n c_n q_n^p + A q_N^p over trades "
+        "0 <= v_n <= u_n.",
+        epilog=CAUTION,
+    )
+    parser.add_argument("--problem", type=Path, metavar="FILE", help=PROBLEM_HELP)
+    parser.add_argument(
+        "--format",
+        choices=("table", "json"),
+        default="table",
+        help="output format (default: table)",
+    )
+    parser.add_argument(
+        "--explain",
+        action="store_true",
+        help="also fit the feedback policy to the linear rule v_n = a_n q per bin "
+        "(slope, R^2, relative deviation)",
+    )
+    parser.set_defaults(handler=run)
+
+
+def read_json(path: Path, what: str) -> Any:
+    """Read a JSON file, turning every failure into an InputError that says what to fix."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"cannot read {what} {str(path)!r}: {exc.strerror or exc}") from exc
+    try:
+        return json.loads(text, parse_constant=_reject_constant)
+    except json.JSONDecodeError as exc:
+        raise InputError(
+            f"{what} {str(path)!r} is not valid JSON: {exc.msg} at line {exc.lineno}"
+            f", column {exc.colno}"
+        ) from exc
+
+
+def _reject_constant(name: str) -> float:
+    raise InputError(f"{name} is not allowed; every number must be finite")
+
+
+def run(args: argparse.Namespace) -> int:
+    """Solve the problem file and print the result."""
+    if args.problem is None:
+        raise InputError("give --problem FILE (the JSON execution problem)")
+    problem = Problem.from_mapping(read_json(args.problem, "problem file"))
+    schedule = solve(problem)
+    policy = explain(problem) if args.explain else None
+    if args.format == "json":
+        output: dict[str, Any] = schedule.to_mapping()
+        if policy is not None:
+            output["policy"] = policy.to_mapping()
+        json.dump(output, sys.stdout, indent=2, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        print_table(problem, schedule, policy)
+    return 0
+
+
+def print_table(problem: Problem, schedule: Schedule, policy: Policy | None) -> None:
+    """Print the schedule as a terminal table."""
+    from rich.console import Console
+    from rich.table import Table
+
+    table = Table(title=f"Schedule: {schedule.status} ({schedule.method})")
+    table.add_column("bin", justify="right")
+    table.add_column("trade (shares)", justify="right")
+    table.add_column("inventory after", justify="right")
+    if problem.caps is not None:
+        table.add_column("cap", justify="right")
+    if policy is not None:
+        table.add_column("slope a_n", justify="right")
+        table.add_column("R^2", justify="right")
+        table.add_column("rel. dev.", justify="right")
+    for n in range(problem.bins):
+        row = [str(n), f"{schedule.trades[n]:,.1f}", f"{schedule.trajectory[n + 1]:,.1f}"]
+        if problem.caps is not None:
+            cap = float(problem.caps[n])
+            row.append(f"{cap:,.0f}" if math.isfinite(cap) else "-")
+        if policy is not None:
+            row += [
+                f"{policy.slope[n]:.4f}",
+                f"{policy.r2[n]:.4f}",
+                f"{policy.relative_deviation[n]:.4f}",
+            ]
+        table.add_row(*row)
+    console = Console()
+    console.print(table)
+    for name, value in schedule.cost.items():
+        console.print(f"{name:>18}: {value:,.2f}")
+    console.print(f"{'objective':>18}: {schedule.objective:,.2f}")
+    console.print(f"{'shortfall':>18}: {schedule.shortfall:,.1f} shares")

@@ -1,0 +1,676 @@
+"""Solve the canonical execution problem (see :mod:`tracker.problem` for the formula).
+
+Theory of operation
+-------------------
+Write the problem in inventories ``q_1 .. q_N`` (``q_0 = Q`` is given). Every term couples at most
+two neighbouring inventories: the per-bin costs depend on ``v_n = q_n - q_{n+1}``, the risk terms on
+one ``q_n``, and the permanent-impact term ``(b/2)[(Q - q_N)^2 - sum v_n^2]`` splits into a term in
+``q_N`` alone and per-bin terms ``-(b/2) v_n^2``. So the Hessian in ``q`` is tridiagonal, and so is
+every Newton system we solve.
+
+Three paths, chosen per problem:
+
+* **at_caps / trivial**: nothing to optimise. ``Q = 0``, or completion is required and the caps add
+  up to no more than ``Q`` (then trading at the caps is the only feasible or the least-bad schedule:
+  status ``capped_shortfall`` when they fall short).
+* **riccati** (beta = 1, p = 2): the cost-to-go is an exact quadratic ``a_n q^2 + d_n q + e_n``; a
+  backward recursion gives ``a_n, d_n`` in O(N) and a forward pass gives the trajectory. The linear
+  term ``d_n`` carries time-varying fixed costs ``h_n`` and the permanent impact. The recursion
+  ignores the bounds ``0 <= v_n <= u_n``; if its answer breaks one, the general path takes over.
+* **interior_point**: everything else. A primal-dual interior-point method on the inequality
+  constraints ``v_n >= 0``, ``v_n <= u_n`` (only where a cap is below ``Q``) and ``q_N >= 0``.
+  Each iteration solves one tridiagonal system with LAPACK's ``dptsv`` (O(N)). A batch of problems
+  is laid end to end as one long tridiagonal system whose blocks do not touch, so the whole batch
+  costs the same numpy calls as one problem, just on longer arrays. Inside, inventories are
+  fractions of ``Q`` and costs are divided by the cost of the starting schedule, so tolerances are
+  relative.
+
+Bins whose cap is zero cannot trade: they are taken out before solving (their risk weights are
+folded into the neighbouring inventory they share) and put back as zero trades.
+
+The objective and its breakdown are always recomputed from the final trades on the original
+problem (:func:`cost_breakdown`), whatever path produced them.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Final
+
+import numpy as np
+import numpy.typing as npt
+from scipy.linalg import lapack
+
+from tracker.errors import ProblemError, SolveError
+from tracker.problem import FloatArray, Problem
+
+OPTIMAL: Final = "optimal"
+CAPPED_SHORTFALL: Final = "capped_shortfall"
+
+#: Names of the cost terms, in the order of the objective.
+COST_TERMS: Final = (
+    "fixed_cost",
+    "temporary_impact",
+    "permanent_impact",
+    "inventory_penalty",
+    "terminal_penalty",
+)
+
+#: Default stopping tolerance of the interior-point path (relative to the objective).
+TOLERANCE: Final = 1e-10
+
+_MAX_ITERATIONS: Final = 200
+_BOUNDARY_FRACTION: Final = 0.995
+
+
+@dataclass(frozen=True, eq=False)
+class Schedule:
+    """The solution of one :class:`~tracker.problem.Problem`.
+
+    Attributes:
+        status: ``"optimal"``, or ``"capped_shortfall"`` when the caps cannot complete the order
+            (the schedule then trades at the caps, or as well as it can under a finite terminal
+            penalty, and ``shortfall`` says how much is left).
+        objective: Value of the canonical objective, every term and constant included (currency).
+        trajectory: ``N + 1`` inventories in shares, ``trajectory[0] == quantity``.
+        trades: ``N`` shares per bin, ``trades[n] = trajectory[n] - trajectory[n + 1]``.
+        cost: The objective by term (:data:`COST_TERMS`); the values add up to ``objective``.
+        shortfall: Shares left at the end of the horizon (``trajectory[-1]``).
+        method: ``"riccati"``, ``"interior_point"``, ``"at_caps"`` or ``"trivial"``.
+        iterations: Newton iterations taken (0 for the closed-form paths).
+    """
+
+    status: str
+    objective: float
+    trajectory: FloatArray
+    trades: FloatArray
+    cost: Mapping[str, float]
+    shortfall: float
+    method: str
+    iterations: int
+
+    def to_mapping(self) -> dict[str, object]:
+        """The schedule as JSON-ready values."""
+        return {
+            "status": self.status,
+            "objective": self.objective,
+            "trajectory": self.trajectory.tolist(),
+            "trades": self.trades.tolist(),
+            "cost": dict(self.cost),
+            "shortfall": self.shortfall,
+            "method": self.method,
+            "iterations": self.iterations,
+        }
+
+
+# --------------------------------------------------------------------------------------------
+# Evaluating a schedule
+
+
+def cost_breakdown(problem: Problem, trades: Sequence[float] | FloatArray) -> dict[str, float]:
+    """The canonical objective of ``trades`` on ``problem``, term by term (currency).
+
+    Args:
+        problem: The problem.
+        trades: ``problem.bins`` shares per bin (any schedule, optimal or not).
+
+    Raises:
+        ProblemError: ``trades`` has the wrong length, a negative trade, or sells more than the
+            quantity.
+    """
+    v = np.asarray(trades, dtype=np.float64)
+    if v.shape != (problem.bins,):
+        raise ProblemError(f"need {problem.bins} trades, got shape {v.shape}", field="trades")
+    quantity = problem.quantity
+    slack = 1e-9 * max(quantity, 1.0)
+    if (v < -slack).any():
+        raise ProblemError("trades must be >= 0 (no buying back)", field="trades")
+    v = np.maximum(v, 0.0)
+    q = quantity - np.cumsum(v)
+    if q[-1] < -slack:
+        raise ProblemError(f"trades add up to more than the quantity {quantity}", field="trades")
+    q = np.maximum(q, 0.0)
+    q_end = float(q[-1])
+    executed = quantity - q_end
+    b = problem.permanent_impact
+    p = problem.penalty_exponent
+    terminal = problem.terminal_penalty
+    if math.isinf(terminal):
+        terminal_cost = 0.0 if q_end <= slack else math.inf
+    else:
+        terminal_cost = terminal * q_end**p
+    return {
+        "fixed_cost": float(problem.fixed_cost @ v),
+        "temporary_impact": float(problem.temporary_impact @ v ** (1.0 + problem.impact_exponent)),
+        "permanent_impact": 0.5 * b * (executed * executed - float(v @ v)),
+        "inventory_penalty": float(problem.inventory_penalty @ q**p),
+        "terminal_penalty": terminal_cost,
+    }
+
+
+def objective_value(problem: Problem, trades: Sequence[float] | FloatArray) -> float:
+    """The canonical objective of any schedule ``trades`` on ``problem`` (currency)."""
+    return math.fsum(cost_breakdown(problem, trades).values())
+
+
+# --------------------------------------------------------------------------------------------
+# Convexity
+
+
+def check_convex(problem: Problem) -> None:
+    """Raise :class:`ProblemError` unless the problem is convex on its feasible set.
+
+    Per bin the trade cost ``k v^(1+beta) - (b/2) v^2`` must be convex for ``0 <= v <= m`` with
+    ``m = min(u_n, Q)`` (the rest of the objective is convex). Its curvature is smallest at
+    ``v = m`` for ``beta < 1`` and at ``v = 0`` for ``beta > 1``, so the test is exact per bin:
+    ``b <= k (1 + beta) beta m^(beta - 1)`` (for ``beta = 1``: ``b <= 2 k``).
+
+    Bins that cannot trade (cap 0) are exempt.
+    """
+    b = problem.permanent_impact
+    if b == 0.0 or problem.quantity == 0.0:
+        return
+    beta = problem.impact_exponent
+    reach = np.minimum(problem.cap_array, problem.quantity)
+    k = problem.temporary_impact
+    trading = reach > 0
+    if beta == 1.0:
+        bound = 2.0 * k
+    elif beta < 1.0:
+        with np.errstate(divide="ignore"):
+            bound = k * (1.0 + beta) * beta * np.where(trading, reach, 1.0) ** (beta - 1.0)
+    else:
+        bound = np.zeros_like(k)
+    bad = trading & (bound < b)
+    if bad.any():
+        n = int(np.flatnonzero(bad)[0])
+        raise ProblemError(
+            f"{b!r} makes the problem non-convex: in bin {n} the temporary impact's curvature "
+            f"allows at most {float(bound[n])!r} (need b <= k(1+beta)beta min(cap, Q)^(beta-1), "
+            "or b <= 2k for linear impact; impact exponents above 1 allow no permanent impact); "
+            "lower permanent_impact or raise temporary_impact",
+            field="permanent_impact",
+        )
+
+
+# --------------------------------------------------------------------------------------------
+# Public entry points
+
+
+def solve(problem: Problem, *, tolerance: float = TOLERANCE) -> Schedule:
+    """Solve one problem.
+
+    Args:
+        problem: A validated problem.
+        tolerance: Relative accuracy of the objective on the interior-point path.
+
+    Returns:
+        The optimal schedule, or the capped schedule with status ``capped_shortfall``.
+
+    Raises:
+        ProblemError: The problem is not convex (permanent impact too large).
+        SolveError: The interior-point method did not converge (a bug of ours; report it).
+    """
+    return solve_batch([problem], tolerance=tolerance)[0]
+
+
+def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) -> list[Schedule]:
+    """Solve many problems at once; the general ones share one vectorised interior-point run.
+
+    Args:
+        problems: Validated problems, of any sizes.
+        tolerance: Relative accuracy of the objective on the interior-point path.
+
+    Returns:
+        One schedule per problem, in order.
+
+    Raises:
+        ProblemError: A problem is not convex; the message says which one (by position).
+        SolveError: The interior-point method did not converge.
+    """
+    results: list[Schedule | None] = [None] * len(problems)
+    general: list[tuple[int, _Reduced]] = []
+    for index, problem in enumerate(problems):
+        try:
+            check_convex(problem)
+        except ProblemError as exc:
+            if len(problems) == 1:
+                raise
+            raise ProblemError(
+                f"problem {index} of the batch: {exc.reason}", field=exc.field
+            ) from exc
+        schedule = _closed_form(problem)
+        if schedule is None:
+            general.append((index, _reduce(problem)))
+        else:
+            results[index] = schedule
+    if general:
+        solutions, iterations = _interior_point([reduced for _, reduced in general], tolerance)
+        for (index, reduced), x, count in zip(general, solutions, iterations, strict=True):
+            results[index] = _finish(problems[index], reduced.expand(x), "interior_point", count)
+    return [schedule for schedule in results if schedule is not None]
+
+
+# --------------------------------------------------------------------------------------------
+# Closed forms
+
+
+def _finish(problem: Problem, trades: FloatArray, method: str, iterations: int) -> Schedule:
+    """Wrap final trades into a Schedule: trajectory, objective, breakdown and status."""
+    trajectory = np.empty(problem.bins + 1)
+    trajectory[0] = problem.quantity
+    np.subtract(problem.quantity, np.cumsum(trades), out=trajectory[1:])
+    if problem.forced and trajectory[-1] <= 1e-9 * problem.quantity:
+        # The last bin takes exactly what is left, so a required completion is exact.
+        trades = trades.copy()
+        trades[-1] += trajectory[-1]
+        trajectory[-1] = 0.0
+    trajectory = np.maximum(trajectory, 0.0)
+    cost = cost_breakdown(problem, trades)
+    shortfall = float(trajectory[-1])
+    capped = float(problem.cap_array.sum()) < problem.quantity
+    trajectory.setflags(write=False)
+    trades.setflags(write=False)
+    return Schedule(
+        status=CAPPED_SHORTFALL if capped else OPTIMAL,
+        objective=math.fsum(cost.values()),
+        trajectory=trajectory,
+        trades=trades,
+        cost=cost,
+        shortfall=shortfall,
+        method=method,
+        iterations=iterations,
+    )
+
+
+def _closed_form(problem: Problem) -> Schedule | None:
+    """The schedule when no iteration is needed, else ``None``."""
+    quantity = problem.quantity
+    if quantity == 0.0:
+        return _finish(problem, np.zeros(problem.bins), "trivial", 0)
+    caps = problem.cap_array
+    tradeable = np.flatnonzero(caps > 0.0)
+    if tradeable.size == 0:
+        return _finish(problem, np.zeros(problem.bins), "at_caps", 0)
+    if problem.forced and float(caps.sum()) <= quantity:
+        # Completion is required and the caps allow at most the quantity: trade every cap.
+        return _finish(problem, caps.copy(), "at_caps", 0)
+    if problem.forced and tradeable.size == 1:
+        trades = np.zeros(problem.bins)
+        trades[tradeable[0]] = quantity
+        return _finish(problem, trades, "trivial", 0)
+    if problem.impact_exponent == 1.0 and problem.penalty_exponent == 2.0:
+        return _riccati(problem)
+    return None
+
+
+def _riccati(problem: Problem) -> Schedule | None:
+    """Exact solution of the linear-quadratic case, or ``None`` if it breaks a bound.
+
+    Stage ``n`` costs ``h_n v + kappa_n v^2 + c_n q_{n+1}^2`` with ``kappa_n = k_n - b/2``; the
+    permanent term's ``(b/2)(Q - q_N)^2`` joins the terminal cost. With the cost-to-go
+    ``V_{n+1}(q) = a q^2 + d q + const``, minimising over ``q' = q_{n+1}`` gives
+    ``q' = (2 kappa q + h - d) / (2 s)`` with ``s = kappa + c + a``, and
+    ``a_n = kappa - kappa^2 / s``, ``d_n = h - kappa (h - d) / s``.
+    """
+    n_bins = problem.bins
+    quantity = problem.quantity
+    half_b = 0.5 * problem.permanent_impact
+    h = problem.fixed_cost.tolist()
+    kappa = [k - half_b for k in problem.temporary_impact.tolist()]
+    if min(kappa) <= 0.0:
+        return None  # linear in some bin: not strictly convex, let the general path decide
+    c = problem.inventory_penalty.tolist()
+    # Backward pass: slope and offset of q_{n+1} as a function of q_n.
+    gain = [0.0] * n_bins
+    offset = [0.0] * n_bins
+    if problem.forced:
+        a = kappa[-1]
+        d = h[-1]
+        last = n_bins - 1  # the last bin trades whatever is left: q_N = 0
+    else:
+        a = problem.terminal_penalty + half_b
+        d = -2.0 * half_b * quantity
+        last = n_bins
+    for n in range(last - 1, -1, -1):
+        kap = kappa[n]
+        s = kap + c[n] + a
+        r = h[n] - d
+        gain[n] = kap / s
+        offset[n] = 0.5 * r / s
+        a = kap - kap * kap / s
+        d = h[n] - kap * r / s
+    trades = [0.0] * n_bins
+    q = quantity
+    for n in range(last):
+        q_next = gain[n] * q + offset[n]
+        trades[n] = q - q_next
+        q = q_next
+    if last < n_bins:
+        trades[-1] = q
+        q = 0.0
+    v = np.array(trades)
+    slack = 1e-12 * quantity
+    if v.min() < -slack or q < -slack or (v > problem.cap_array + slack).any():
+        return None
+    return _finish(problem, np.maximum(v, 0.0), "riccati", 0)
+
+
+# --------------------------------------------------------------------------------------------
+# The general path
+
+
+@dataclass(frozen=True, eq=False)
+class _Reduced:
+    """A problem in the interior-point method's units, with untradeable bins taken out.
+
+    Inventories are fractions of ``Q``; costs are divided by ``scale``. Bin ``j`` of the reduced
+    problem is bin ``active[j]`` of the original one.
+    """
+
+    bins: int
+    active: npt.NDArray[np.intp]
+    original_bins: int
+    quantity: float
+    h: FloatArray
+    k: FloatArray
+    c: FloatArray
+    caps: FloatArray  # inf where no cap can bind
+    beta: float
+    b: float
+    p: float
+    terminal: float  # inf when forced
+    scale: float
+
+    def expand(self, x: FloatArray) -> FloatArray:
+        """Original-size trades (shares) from the reduced inventories ``x`` (fractions)."""
+        previous = np.concatenate(([1.0], x[:-1]))
+        v = np.maximum(previous - x, 0.0) * self.quantity
+        trades = np.zeros(self.original_bins)
+        trades[self.active] = v
+        return trades
+
+
+def _reduce(problem: Problem) -> _Reduced:
+    """Scale the problem and take out the bins that cannot trade."""
+    quantity = problem.quantity
+    caps = problem.cap_array / quantity
+    active = np.flatnonzero(caps > 0.0)
+    # Inventory after original bin n equals the inventory after the last active bin <= n; fold
+    # the risk weights of the skipped inventories into that one (or drop them if it is Q itself,
+    # a constant).
+    owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
+    c_reduced = np.zeros(active.size)
+    np.add.at(c_reduced, owner[owner >= 0], problem.inventory_penalty[owner >= 0])
+    beta = problem.impact_exponent
+    p = problem.penalty_exponent
+    h = problem.fixed_cost[active] * quantity
+    k = problem.temporary_impact[active] * quantity ** (1.0 + beta)
+    c = c_reduced * quantity**p
+    b = problem.permanent_impact * quantity**2
+    terminal = problem.terminal_penalty * quantity**p
+    caps = caps[active]
+    caps = np.where(caps >= 1.0, np.inf, caps)
+    start = _start(caps, math.isinf(terminal))
+    scale = _unscaled_objective(start, h, k, c, beta, b, p, terminal)
+    if not (scale > 0.0 and math.isfinite(scale)):
+        scale = 1.0
+    return _Reduced(
+        bins=int(active.size),
+        active=active,
+        original_bins=problem.bins,
+        quantity=quantity,
+        h=h / scale,
+        k=k / scale,
+        c=c / scale,
+        caps=caps,
+        beta=beta,
+        b=b / scale,
+        p=p,
+        terminal=terminal / scale,
+        scale=scale,
+    )
+
+
+def _start(caps: FloatArray, forced: bool) -> FloatArray:
+    """A strictly feasible starting schedule (fractions of Q): proportional to the caps."""
+    weight = np.minimum(caps, 1.0)
+    total = float(weight.sum())
+    v = weight / total if forced else 0.9 * weight / max(total, 1.0)
+    return v
+
+
+def _unscaled_objective(
+    v: FloatArray,
+    h: FloatArray,
+    k: FloatArray,
+    c: FloatArray,
+    beta: float,
+    b: float,
+    p: float,
+    terminal: float,
+) -> float:
+    """The objective of trades ``v`` (fractions of Q) in the reduced problem's cost units."""
+    x = 1.0 - np.cumsum(v)
+    x_end = max(float(x[-1]), 0.0)
+    executed = 1.0 - x_end
+    value = float(h @ v + k @ v ** (1.0 + beta) + c @ np.maximum(x, 0.0) ** p)
+    value += 0.5 * b * (executed * executed - float(v @ v))
+    if math.isfinite(terminal):
+        value += terminal * x_end**p
+    return value
+
+
+def _interior_point(
+    problems: Sequence[_Reduced], tolerance: float
+) -> tuple[list[FloatArray], list[int]]:
+    """Primal-dual interior-point method on a batch of reduced problems laid end to end.
+
+    Element ``e`` of the flat arrays is bin ``n`` of its problem and also inventory point
+    ``n + 1`` (the inventory after that bin), so both live in arrays of the same length.
+    Constraints and their multipliers: ``v_n >= 0`` (``lo``), ``v_n <= u_n`` where a cap can bind
+    (``hi``, zero elsewhere), and ``x_N >= 0`` at the last point of a problem that is not forced
+    (``end``, one per such problem). A forced problem's last point ``x_N = 0`` is not a variable:
+    its row of the Newton system is the identity.
+    """
+    sizes = np.array([r.bins for r in problems])
+    offsets = np.concatenate(([0], np.cumsum(sizes)[:-1]))
+    total = int(sizes.sum())
+    count = len(problems)
+    last_idx = offsets + sizes - 1
+    forced = np.array([math.isinf(r.terminal) for r in problems])
+    fixed_idx = last_idx[forced]
+    end_idx = last_idx[~forced]
+    end_problem = np.flatnonzero(~forced)
+
+    def uniform_or_per_element(values: list[float]) -> float | FloatArray:
+        if all(value == values[0] for value in values):
+            return values[0]
+        return np.repeat(np.asarray(values), sizes)
+
+    h = np.concatenate([r.h for r in problems])
+    k = np.concatenate([r.k for r in problems])
+    c = np.concatenate([r.c for r in problems])
+    caps = np.concatenate([r.caps for r in problems])
+    beta = uniform_or_per_element([r.beta for r in problems])
+    p = uniform_or_per_element([r.p for r in problems])
+    b = uniform_or_per_element([r.b for r in problems])
+    k1 = k * (1.0 + beta)
+    k2 = k1 * beta
+    c1 = c * p
+    c2 = c1 * (p - 1.0)
+    p_end = np.array([r.p for r in problems])[end_problem]
+    b_end = np.array([r.b for r in problems])[end_problem]
+    a_end = np.array([r.terminal for r in problems])[end_problem]
+    next_ok = np.ones(max(total - 1, 0))
+    next_ok[last_idx[:-1]] = 0.0  # no coupling across problems
+    capped = np.isfinite(caps)
+    cap_f = capped.astype(np.float64)
+    caps_safe = np.where(capped, caps, 2.0)  # 2 > any trade: keeps 1/(u - v) finite, unused
+    n_constraints = np.add.reduceat(cap_f, offsets) + sizes + (~forced)
+    n_end = np.repeat(n_constraints, sizes)
+
+    def evaluate(x: FloatArray) -> tuple[FloatArray, ...]:
+        """Trades, cap slacks and the objective's derivatives at ``x``."""
+        previous = np.empty_like(x)
+        previous[1:] = x[:-1]
+        previous[offsets] = 1.0
+        v = previous - x
+        v_beta = v**beta
+        d_bin = h + k1 * v_beta - b * v
+        dd_bin = k2 * v_beta / v - b
+        gap_hi = caps_safe - v
+        x_safe = x.copy()
+        x_safe[fixed_idx] = 1.0
+        x_pow = x_safe ** (p - 1.0)
+        d_point = c1 * x_pow
+        dd_point = c2 * x_pow / x_safe
+        x_end = x[end_idx]
+        end_pow = a_end * p_end * x_end ** (p_end - 1.0)
+        d_point[end_idx] += end_pow - b_end * (1.0 - x_end)
+        dd_point[end_idx] += end_pow * (p_end - 1.0) / x_end + b_end
+        return v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point
+
+    def gradient(d_bin: FloatArray, d_point: FloatArray, d_end: FloatArray) -> FloatArray:
+        """Gradient in x from derivatives per bin (in v), per point and per free end point."""
+        grad = d_point - d_bin
+        grad[:-1] += d_bin[1:] * next_ok
+        grad[end_idx] -= d_end
+        grad[fixed_idx] = 0.0
+        return grad
+
+    def dual_residual(
+        state: tuple[FloatArray, ...], lo: FloatArray, hi: FloatArray, end: FloatArray
+    ) -> FloatArray:
+        d_bin, d_point = state[3], state[5]
+        return gradient(d_bin - lo + hi, d_point, end)
+
+    def merit(
+        state: tuple[FloatArray, ...],
+        r_dual: FloatArray,
+        lo: FloatArray,
+        hi: FloatArray,
+        end: FloatArray,
+        mu: FloatArray,
+    ) -> FloatArray:
+        """Squared norm, per problem, of the residual of the perturbed KKT conditions."""
+        v, gap_hi, x_end = state[:3]
+        mu_e = np.repeat(mu, sizes)
+        cent = (lo * v - mu_e) ** 2 + cap_f * (hi * gap_hi - mu_e) ** 2 + r_dual * r_dual
+        total_sq = np.add.reduceat(cent, offsets)
+        total_sq[end_problem] += (end * x_end - mu[end_problem]) ** 2
+        return total_sq
+
+    def complementarity(
+        state: tuple[FloatArray, ...], lo: FloatArray, hi: FloatArray, end: FloatArray
+    ) -> FloatArray:
+        v, gap_hi, x_end = state[:3]
+        gap = np.add.reduceat(lo * v + hi * gap_hi, offsets)
+        gap[end_problem] += end * x_end
+        return gap
+
+    # Start: the strictly feasible schedule proportional to the caps, multipliers on the
+    # central path for mu = 1/m (the objective is about 1 there by construction).
+    v0 = np.concatenate([_start(r.caps, math.isinf(r.terminal)) for r in problems])
+    x = 1.0 - _segment_cumsum(v0, offsets, sizes)
+    x[fixed_idx] = 0.0
+    mu0 = 1.0 / n_end
+    lo = mu0 / v0
+    hi = cap_f * mu0 / (caps_safe - v0)
+    end = (1.0 / n_constraints[end_problem]) / x[end_idx]
+
+    # Costs are in units of the starting schedule's cost, so these are relative. The duality
+    # gap bounds the suboptimality once the dual residual is small; the residual converges only
+    # as fast as the central path (like sqrt(mu) where a bin's trade is pinned at 0).
+    gap_tolerance = 1e-2 * tolerance
+    dual_tolerance = 1e-3 * math.sqrt(tolerance)
+    done = np.zeros(count, dtype=bool)
+    iterations = np.zeros(count, dtype=int)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        state = evaluate(x)
+        r_dual = dual_residual(state, lo, hi, end)
+        for _ in range(_MAX_ITERATIONS):
+            gap = complementarity(state, lo, hi, end)
+            dual_inf = np.maximum.reduceat(np.abs(r_dual), offsets)
+            done |= (dual_inf <= dual_tolerance) & (gap <= gap_tolerance)
+            if done.all():
+                break
+            iterations += ~done
+            v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point = state
+            mu = np.maximum(0.1 * gap, 0.1 * gap_tolerance) / n_constraints
+            mu_e = np.repeat(mu, sizes)
+            mu_end = mu[end_problem]
+            # Newton system, tridiagonal in x.
+            w = dd_bin + lo / v + hi / gap_hi
+            rhs = -gradient(d_bin - mu_e / v + cap_f * mu_e / gap_hi, d_point, mu_end / x_end)
+            diag = w + dd_point
+            diag[:-1] += w[1:] * next_ok
+            diag[end_idx] += end / x_end
+            off = -w[1:] * next_ok
+            off[fixed_idx[fixed_idx > 0] - 1] = 0.0
+            diag[fixed_idx] = 1.0
+            _, _, solution, info = lapack.dptsv(diag, off, rhs[:, None])
+            if info != 0:  # not positive definite in floating point: pivot instead
+                _, _, _, solution, info = lapack.dgtsv(off, diag, off, rhs[:, None])
+                if info != 0:
+                    raise SolveError(f"singular Newton system (LAPACK info {info})")
+            dx = solution[:, 0]
+            dx[fixed_idx] = 0.0
+            d_previous = np.empty_like(dx)
+            d_previous[1:] = dx[:-1]
+            d_previous[offsets] = 0.0
+            dv = d_previous - dx
+            d_lo = mu_e / v - lo - lo * dv / v
+            d_hi = cap_f * (mu_e / gap_hi - hi) + hi * dv / gap_hi
+            dx_end = dx[end_idx]
+            d_end = mu_end / x_end - end - end * dx_end / x_end
+            # Largest step keeping slacks and multipliers positive, per problem.
+            ratio = np.minimum(
+                np.where(dv < 0.0, -v / dv, np.inf), np.where(d_lo < 0.0, -lo / d_lo, np.inf)
+            )
+            if capped.any():
+                ratio = np.minimum(ratio, np.where(capped & (dv > 0.0), gap_hi / dv, np.inf))
+                ratio = np.minimum(ratio, np.where(d_hi < 0.0, -hi / d_hi, np.inf))
+            limit = np.minimum.reduceat(ratio, offsets)
+            limit[end_problem] = np.minimum(
+                limit[end_problem],
+                np.minimum(
+                    np.where(dx_end < 0.0, -x_end / dx_end, np.inf),
+                    np.where(d_end < 0.0, -end / d_end, np.inf),
+                ),
+            )
+            step = np.minimum(1.0, _BOUNDARY_FRACTION * limit)
+            step[done] = 0.0
+            old = merit(state, r_dual, lo, hi, end, mu)
+            # Backtrack on the residual norm, per problem (rarely needed: convex problem).
+            for _ in range(50):
+                step_e = np.repeat(step, sizes)
+                x_new = x + step_e * dx
+                lo_new = lo + step_e * d_lo
+                hi_new = hi + step_e * d_hi
+                end_new = end + step[end_problem] * d_end
+                state_new = evaluate(x_new)
+                r_new = dual_residual(state_new, lo_new, hi_new, end_new)
+                new = merit(state_new, r_new, lo_new, hi_new, end_new, mu)
+                ok = (new <= (1.0 - 0.01 * step) ** 2 * old) | done
+                if ok.all():
+                    break
+                step = np.where(ok, step, 0.5 * step)
+            x, lo, hi, end, state, r_dual = x_new, lo_new, hi_new, end_new, state_new, r_new
+        else:
+            raise SolveError(
+                f"the interior-point method did not converge in {_MAX_ITERATIONS} "
+                f"iterations for {int((~done).sum())} of {count} problems"
+            )
+    x[fixed_idx] = 0.0
+    solutions = [x[start : start + size] for start, size in zip(offsets, sizes, strict=True)]
+    return solutions, iterations.tolist()
+
+
+def _segment_cumsum(values: FloatArray, offsets: np.ndarray, sizes: np.ndarray) -> FloatArray:
+    """Cumulative sums restarting at each segment start."""
+    total = np.cumsum(values)
+    before = np.concatenate(([0.0], total))[offsets]
+    return total - np.repeat(before, sizes)
