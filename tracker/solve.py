@@ -131,21 +131,27 @@ def cost_breakdown(problem: Problem, trades: Sequence[float] | FloatArray) -> di
     q = quantity - np.cumsum(v)
     if q[-1] < -slack:
         raise ProblemError(f"trades add up to more than the quantity {quantity}", field="trades")
-    q = np.maximum(q, 0.0)
+    return _breakdown(problem, v, np.maximum(q, 0.0))
+
+
+def _breakdown(problem: Problem, v: FloatArray, q: FloatArray) -> dict[str, float]:
+    """Cost terms of trades ``v`` with inventories after each bin ``q`` (both checked)."""
     q_end = float(q[-1])
-    executed = quantity - q_end
-    b = problem.permanent_impact
+    executed = problem.quantity - q_end
     p = problem.penalty_exponent
+    beta = problem.impact_exponent
     terminal = problem.terminal_penalty
     if math.isinf(terminal):
-        terminal_cost = 0.0 if q_end <= slack else math.inf
+        terminal_cost = 0.0 if q_end <= 1e-9 * max(problem.quantity, 1.0) else math.inf
     else:
         terminal_cost = terminal * q_end**p
     return {
         "fixed_cost": float(problem.fixed_cost @ v),
-        "temporary_impact": float(problem.temporary_impact @ v ** (1.0 + problem.impact_exponent)),
-        "permanent_impact": 0.5 * b * (executed * executed - float(v @ v)),
-        "inventory_penalty": float(problem.inventory_penalty @ q**p),
+        "temporary_impact": float(
+            problem.temporary_impact @ (v * v if beta == 1.0 else v ** (1.0 + beta))
+        ),
+        "permanent_impact": 0.5 * problem.permanent_impact * (executed * executed - float(v @ v)),
+        "inventory_penalty": float(problem.inventory_penalty @ (q * q if p == 2.0 else q**p)),
         "terminal_penalty": terminal_cost,
     }
 
@@ -259,18 +265,19 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
 
 def _finish(problem: Problem, trades: FloatArray, method: str, iterations: int) -> Schedule:
     """Wrap final trades into a Schedule: trajectory, objective, breakdown and status."""
+    quantity = problem.quantity
     trajectory = np.empty(problem.bins + 1)
-    trajectory[0] = problem.quantity
-    np.subtract(problem.quantity, np.cumsum(trades), out=trajectory[1:])
-    if problem.forced and trajectory[-1] <= 1e-9 * problem.quantity:
-        # The last bin takes exactly what is left, so a required completion is exact.
-        trades = trades.copy()
+    trajectory[0] = quantity
+    np.subtract(quantity, np.cumsum(trades), out=trajectory[1:])
+    if abs(trajectory[-1]) <= 1e-9 * quantity and (problem.forced or trajectory[-1] < 0.0):
+        # The last bin takes exactly what is left, so a completed order ends at exactly zero.
         trades[-1] += trajectory[-1]
         trajectory[-1] = 0.0
-    trajectory = np.maximum(trajectory, 0.0)
-    cost = cost_breakdown(problem, trades)
+    if trajectory.min() < 0.0:  # rounding only: every path keeps sum(trades) <= quantity
+        np.maximum(trajectory, 0.0, out=trajectory)
+    cost = _breakdown(problem, trades, trajectory[1:])
     shortfall = float(trajectory[-1])
-    capped = float(problem.cap_array.sum()) < problem.quantity
+    capped = problem.caps is not None and float(problem.caps.sum()) < quantity
     trajectory.setflags(write=False)
     trades.setflags(write=False)
     return Schedule(
@@ -352,10 +359,11 @@ def _riccati(problem: Problem) -> Schedule | None:
         trades[-1] = q
         q = 0.0
     v = np.array(trades)
-    slack = 1e-12 * quantity
-    if v.min() < -slack or q < -slack or (v > problem.cap_array + slack).any():
-        return None
-    return _finish(problem, np.maximum(v, 0.0), "riccati", 0)
+    if v.min() < 0.0 or q < -1e-12 * quantity:
+        return None  # the bound v >= 0 or q_N >= 0 binds
+    if problem.caps is not None and (v > problem.caps).any():
+        return None  # a cap binds
+    return _finish(problem, v, "riccati", 0)
 
 
 # --------------------------------------------------------------------------------------------
