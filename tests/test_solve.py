@@ -121,3 +121,47 @@ def test_batch_of_mixed_sizes_matches_single_solves() -> None:
         np.testing.assert_allclose(
             alone.trades, together.trades, rtol=1e-6, atol=1e-6 * problem.quantity
         )
+
+
+def test_one_bin_matches_scipy_scalar_minimiser() -> None:
+    """With one bin the problem is one-dimensional: SciPy's bounded scalar minimiser agrees."""
+    from scipy.optimize import minimize_scalar
+
+    problem = Problem(
+        quantity=1e5,
+        bins=1,
+        fixed_cost=0.01,
+        temporary_impact=1e-3,
+        impact_exponent=0.5,
+        inventory_penalty=1e-7,
+        penalty_exponent=1.5,
+        terminal_penalty=1e-3,
+    )
+
+    def cost(v: float) -> float:
+        left = 1e5 - v
+        return 0.01 * v + 1e-3 * v**1.5 + (1e-7 + 1e-3) * left**1.5
+
+    # Reference: scipy.optimize.minimize_scalar (bounded Brent), an outside general-purpose solver.
+    reference = minimize_scalar(cost, bounds=(0.0, 1e5), method="bounded", options={"xatol": 1e-9})
+    schedule = solve(problem)
+    assert schedule.trades[0] == pytest.approx(reference.x, rel=1e-6)
+    assert schedule.objective == pytest.approx(reference.fun, rel=1e-10)
+
+
+@pytest.mark.parametrize("bins", [400, 1000], ids=["400-bins", "1000-bins"])
+def test_long_horizons_complete(bins: int) -> None:
+    """Horizons of hundreds of bins solve, complete the order and respect the caps."""
+    problem = Problem(
+        quantity=1e5,
+        bins=bins,
+        fixed_cost=0.01,
+        temporary_impact=1e-3,
+        impact_exponent=0.5,
+        inventory_penalty=1e-7,
+        penalty_exponent=1.5,
+        caps=3e5 / bins,
+    )
+    schedule = solve(problem)
+    assert (OPTIMAL, 0.0) == (schedule.status, schedule.shortfall)
+    assert schedule.trades.max() <= 3e5 / bins * (1 + 1e-9)

@@ -619,12 +619,7 @@ def _interior_point(
             off = -w[1:] * next_ok
             off[fixed_idx[fixed_idx > 0] - 1] = 0.0
             diag[fixed_idx] = 1.0
-            _, _, solution, info = lapack.dptsv(diag, off, rhs[:, None])
-            if info != 0:  # not positive definite in floating point: pivot instead
-                _, _, _, solution, info = lapack.dgtsv(off, diag, off, rhs[:, None])
-                if info != 0:
-                    raise SolveError(f"singular Newton system (LAPACK info {info})")
-            dx = solution[:, 0]
+            dx = _solve_tridiagonal(diag, off, rhs)
             dx[fixed_idx] = 0.0
             d_previous = np.empty_like(dx)
             d_previous[1:] = dx[:-1]
@@ -675,6 +670,19 @@ def _interior_point(
     x[fixed_idx] = 0.0
     solutions = [x[start : start + size] for start, size in zip(offsets, sizes, strict=True)]
     return solutions, iterations.tolist()
+
+
+def _solve_tridiagonal(diag: FloatArray, off: FloatArray, rhs: FloatArray) -> FloatArray:
+    """Solve the symmetric tridiagonal system (diagonal ``diag``, off-diagonal ``off``)."""
+    if diag.size == 1:
+        return rhs / diag
+    _, _, solution, info = lapack.dptsv(diag, off, rhs[:, None])
+    if info != 0:  # not positive definite in floating point: pivot instead
+        _, _, _, solution, info = lapack.dgtsv(off, diag, off, rhs[:, None])
+        if info != 0:
+            raise SolveError(f"singular Newton system (LAPACK info {info})")
+    result: FloatArray = solution[:, 0]
+    return result
 
 
 def _segment_cumsum(values: FloatArray, offsets: np.ndarray, sizes: np.ndarray) -> FloatArray:
