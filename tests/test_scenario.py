@@ -1,0 +1,278 @@
+"""The invented demo day: its market, orders, router and fill model, and the closed loop.
+
+Everything here is invented (symbols ZEPH, KALO, MIRA on the made-up venue Harbour Lane Exchange).
+The router is driven by a plain per-bin target feed (a stand-in for the engine) so these checks do
+not depend on the engine's numbers; the closed-loop checks at the end use the real engine.
+"""
+
+from __future__ import annotations
+
+import json
+from collections import Counter
+from collections.abc import Iterator
+from datetime import UTC, date, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from tracker.errors import InputError
+from tracker.records import Record
+from tracker.scenario import (
+    CANCEL,
+    SHOCK,
+    VOLUME_SHARE_CAP,
+    Scenario,
+    record_line,
+)
+from tracker.wire import (
+    BinMessage,
+    FillMessage,
+    OrderMessage,
+    StatusMessage,
+    TargetMessage,
+    WireError,
+    decode,
+)
+
+BIN = timedelta(minutes=5)
+
+
+def drive(scenario: Scenario, share: float = 0.02) -> Iterator[tuple[Record, Any]]:
+    """Run the scenario with a stand-in engine: at every bin close, each live order of the symbol
+    gets a target of ``share`` of its quantity for the next bin. Yields (record, decoded or
+    WireError)."""
+    live: dict[str, OrderMessage] = {}
+    while (due := scenario.next_time()) is not None:
+        for record in scenario.inbound_until(due):
+            try:
+                message: Any = decode(record.topic, record.payload)
+            except WireError as exc:
+                yield record, exc
+                continue
+            yield record, message
+            if isinstance(message, OrderMessage):
+                if message.action == "new":
+                    live[message.order_id] = message
+                elif message.action == "cancel":
+                    live.pop(message.order_id, None)
+            if isinstance(message, BinMessage):
+                for order in list(live.values()):
+                    if order.symbol == message.symbol and order.end and message.end < order.end:
+                        scenario.on_output(target(order, message.end, share, message.ts))
+
+
+def target(order: OrderMessage, start: datetime, share: float, ts: datetime) -> TargetMessage:
+    """A target of ``share`` of the order for the bin starting at ``start``."""
+    assert order.quantity is not None and order.side is not None and order.symbol is not None
+    return TargetMessage(
+        order_id=order.order_id,
+        symbol=order.symbol,
+        side=order.side,
+        bin_start=start,
+        bin_end=start + BIN,
+        quantity=round(order.quantity * share),
+        cumulative_target=0,
+        remaining=order.quantity,
+        max_quantity=None,
+        plan_version=1,
+        ts=ts,
+    )
+
+
+@pytest.fixture(scope="module")
+def day() -> list[tuple[Record, Any]]:
+    """The seed-7 day, driven by the stand-in target feed."""
+    return list(drive(Scenario(7)))
+
+
+def fills(day: list[tuple[Record, Any]]) -> list[FillMessage]:
+    """The valid fills of a day, each fill id once."""
+    unique = {m.fill_id: m for _, m in day if isinstance(m, FillMessage)}
+    return list(unique.values())
+
+
+def test_same_seed_same_day() -> None:
+    """The same seed gives the same recording, line for line."""
+    first = [record_line(r) for r, _ in drive(Scenario(11))]
+    second = [record_line(r) for r, _ in drive(Scenario(11))]
+    assert first == second
+
+
+def test_other_seed_other_market() -> None:
+    """Another seed gives another market."""
+    assert Scenario(1).market["ZEPH"][10].volume != Scenario(2).market["ZEPH"][10].volume
+
+
+def test_lines_are_numbered_in_time_order(day: list[tuple[Record, Any]]) -> None:
+    """Records come numbered 1..n with non-decreasing times."""
+    lines = [r.line for r, _ in day]
+    times = [r.ts for r, _ in day]
+    assert (list(range(1, len(day) + 1)), sorted(times)) == (lines, times)
+
+
+def test_every_symbol_has_a_bin_message_per_bin(day: list[tuple[Record, Any]]) -> None:
+    """Each symbol publishes one bin per bin of the 78-bin session (common practice: 5-minute
+    bins of a 6.5-hour session)."""
+    counts = Counter(m.symbol for _, m in day if isinstance(m, BinMessage))
+    expected = {"ZEPH": 78, "KALO": 78, "MIRA": 78}
+    assert expected == dict(counts)
+
+
+def test_the_day_has_one_amend_and_one_cancel(day: list[tuple[Record, Any]]) -> None:
+    """One order is amended and one cancelled."""
+    actions = Counter(m.action for _, m in day if isinstance(m, OrderMessage))
+    expected = {"new": 4, "amend": 1, "cancel": 1}
+    assert expected == dict(actions)
+
+
+def test_the_day_has_five_malformed_messages(day: list[tuple[Record, Any]]) -> None:
+    """Four messages fail validation at the edge (plus a fill for an unknown order, which only
+    the engine can reject)."""
+    rejected = [exc.reason for _, exc in day if isinstance(exc, WireError)]
+    unknown = [m for _, m in day if isinstance(m, FillMessage) and m.order_id == "ORIN-B9"]
+    expected = (4, 1)
+    assert expected == (len(rejected), len(unknown))
+
+
+def test_the_day_has_one_exact_redelivery(day: list[tuple[Record, Any]]) -> None:
+    """Exactly one fill is sent twice, byte for byte the same payload."""
+    payloads = Counter(
+        json.dumps(r.payload, sort_keys=True) for r, m in day if isinstance(m, FillMessage)
+    )
+    expected = [2]
+    assert expected == [n for n in payloads.values() if n > 1]
+
+
+def test_shock_cuts_volume_and_widens_spread() -> None:
+    """During the shock ZEPH trades far less and quotes far wider than the hour before."""
+    scenario = Scenario(7)
+    bins = scenario.market[SHOCK.symbol]
+    zone = scenario.session.zone
+    inside = [b for b in bins if SHOCK.start <= b.start.astimezone(zone).time() < SHOCK.end]
+    before = [b for b in bins if b.index in range(inside[0].index - 12, inside[0].index)]
+    volume_ratio = (sum(b.volume for b in inside) / len(inside)) / (
+        sum(b.volume for b in before) / len(before)
+    )
+    spread_ratio = (sum(b.spread for b in inside) / len(inside)) / (
+        sum(b.spread for b in before) / len(before)
+    )
+    expected = (True, True)
+    assert expected == (volume_ratio < 0.4, spread_ratio > 2.0)
+
+
+def test_market_bins_are_valid_wire_bins() -> None:
+    """Every invented bin is consistent: low <= open, close, vwap <= high; spread >= 0."""
+    bad = [
+        b
+        for bins in Scenario(3).market.values()
+        for b in bins
+        if not (b.low <= min(b.open, b.close, b.vwap) and max(b.open, b.close, b.vwap) <= b.high)
+        or b.spread < 0
+    ]
+    expected: list[Any] = []
+    assert expected == bad
+
+
+def test_fills_stay_within_the_bin_volume_cap(day: list[tuple[Record, Any]]) -> None:
+    """The router never takes more than its share of a bin's real volume."""
+    scenario = Scenario(7)
+    taken: Counter[tuple[str, datetime]] = Counter()
+    symbol = {"ZEPH-B1": "ZEPH", "ZEPH-S2": "ZEPH", "KALO-S1": "KALO", "MIRA-B1": "MIRA"}
+    for fill in fills(day):
+        if fill.order_id in symbol:
+            start = scenario.session.bins(date(2026, 3, 10))[0][0]
+            index = int((fill.ts - start) // BIN)
+            taken[(symbol[fill.order_id], scenario.market[symbol[fill.order_id]][index].start)] += (
+                fill.quantity
+            )
+    over = [
+        key
+        for key, quantity in taken.items()
+        if quantity > VOLUME_SHARE_CAP * scenario._bins[key].volume + 1e-9
+    ]
+    expected: list[Any] = []
+    assert expected == over
+
+
+def test_fills_never_exceed_the_order(day: list[tuple[Record, Any]]) -> None:
+    """No order is filled beyond its (amended) quantity."""
+    total: Counter[str] = Counter()
+    for fill in fills(day):
+        total[fill.order_id] += fill.quantity
+    limits = {"ZEPH-B1": 120_000, "KALO-S1": 60_000, "MIRA-B1": 55_000, "ZEPH-S2": 30_000}
+    over = [order for order, limit in limits.items() if total[order] > limit]
+    expected: list[str] = []
+    assert expected == over
+
+
+def test_no_fill_after_the_cancel(day: list[tuple[Record, Any]]) -> None:
+    """The cancelled order gets no fill after its cancel."""
+    order_id, clock = CANCEL
+    cancel_at = datetime.combine(date(2026, 3, 10), clock, tzinfo=Scenario(7).session.zone)
+    late = [f for f in fills(day) if f.order_id == order_id and f.ts >= cancel_at]
+    expected: list[FillMessage] = []
+    assert expected == late
+
+
+def test_some_slices_miss_and_some_fill_partly(day: list[tuple[Record, Any]]) -> None:
+    """The fill model gives both misses and partial fills (fewer shares than slices ask)."""
+    ask = round(120_000 * 0.02) // 4
+    sizes = [f.quantity for f in fills(day) if f.order_id == "ZEPH-B1"]
+    slices = 4 * len([1 for _, m in day if isinstance(m, BinMessage) and m.symbol == "ZEPH"])
+    expected = (True, True)
+    assert expected == (len(sizes) < slices, any(size < ask for size in sizes))
+
+
+def test_final_status_stops_the_router() -> None:
+    """Once the engine says an order is done, its planned slices are withdrawn."""
+    scenario = Scenario(7)
+    first = scenario.inbound_until(datetime(2026, 3, 10, 13, 29, tzinfo=UTC))
+    order = decode(first[0].topic, first[0].payload)
+    assert isinstance(order, OrderMessage)
+    start = datetime(2026, 3, 10, 13, 30, tzinfo=UTC)
+    scenario.on_output(target(order, start, 0.05, order.ts))
+    scenario.on_output(status(order, "done", order.ts))
+    records = scenario.inbound_until(start + BIN)
+    expected: list[str] = []
+    assert expected == [r.topic for r in records if "fills/ZEPH-B1" in r.topic]
+
+
+def status(order: OrderMessage, state: str, ts: datetime) -> StatusMessage:
+    """A status message of the given state."""
+    assert order.quantity is not None and order.side is not None and order.symbol is not None
+    return StatusMessage(
+        order_id=order.order_id,
+        symbol=order.symbol,
+        side=order.side,
+        state=state,
+        quantity=order.quantity,
+        filled=0,
+        remaining=order.quantity,
+        progress_pct=0.0,
+        planned_filled=0,
+        deviation_shares=0,
+        deviation_pct=0.0,
+        deviation_bins=None,
+        average_price=None,
+        arrival_price=None,
+        limit_price=None,
+        volume_scale=None,
+        expected_cost=None,
+        expected_cost_bps=None,
+        plan_version=1,
+        ts=ts,
+    )
+
+
+def test_weekend_day_is_refused() -> None:
+    """A scenario day must be a weekday."""
+    with pytest.raises(InputError, match="weekday"):
+        Scenario(7, day=date(2026, 3, 7))
+
+
+def test_record_line_round_trips(tmp_path: Path) -> None:
+    """A recording line holds topic, payload and ts as JSON."""
+    record = Record(line=1, topic="tracker/control", payload={"a": 1}, ts="2026-03-10T14:00:00Z")
+    expected = {"topic": "tracker/control", "payload": {"a": 1}, "ts": "2026-03-10T14:00:00Z"}
+    assert expected == json.loads(record_line(record))
