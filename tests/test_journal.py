@@ -1,0 +1,192 @@
+"""The SQLite journal: append, read back, crash recovery up to the last whole record."""
+
+from __future__ import annotations
+
+import shutil
+import sqlite3
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from tracker.journal import Journal, JournalError, read_journal, record_crc
+from tracker.records import Record
+
+TS = "2026-03-02T14:30:00.000001Z"
+
+
+def _rows(n: int) -> list[tuple[str, bytes, str]]:
+    return [(f"tracker/fills/O{i}", b'{"n": %d}' % i, TS) for i in range(n)]
+
+
+def test_append_returns_consecutive_sequence_numbers(tmp_path: Path) -> None:
+    """Sequence numbers start at 1 and follow the order of appends."""
+    with Journal(tmp_path / "j.sqlite") as journal:
+        seqs = [journal.append(t, p, ts) for t, p, ts in _rows(3)]
+    assert [1, 2, 3] == seqs
+
+
+def test_read_journal_returns_records_as_appended(tmp_path: Path) -> None:
+    """read_journal yields Records with the seq as line, raw payload bytes and the receive time."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(2))
+    expected = [
+        Record(line=1, topic="tracker/fills/O0", payload=b'{"n": 0}', ts=TS),
+        Record(line=2, topic="tracker/fills/O1", payload=b'{"n": 1}', ts=TS),
+    ]
+    assert expected == list(read_journal(path))
+
+
+def test_reopen_continues_the_sequence(tmp_path: Path) -> None:
+    """A reopened journal keeps its records and numbers new ones after them."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(2))
+    with Journal(path) as journal:
+        seq = journal.append("tracker/tick", b'{"type":"tick"}', TS)
+        assert (3, 3) == (seq, len(journal))
+
+
+def test_published_through_is_kept_across_reopen(tmp_path: Path) -> None:
+    """The published-through mark written with a group commit survives a reopen."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(3), published_through=2)
+    with Journal(path) as journal:
+        assert 2 == journal.published_through
+
+
+def test_binary_payload_round_trips(tmp_path: Path) -> None:
+    """Payloads that are not UTF-8 are kept byte for byte (they are rejected later, not here)."""
+    path = tmp_path / "j.sqlite"
+    payload = bytes(range(256))
+    with Journal(path) as journal:
+        journal.append("tracker/fills/X", payload, TS)
+    assert payload == next(read_journal(path)).payload
+
+
+def test_not_a_journal_is_an_error_naming_the_file(tmp_path: Path) -> None:
+    """An SQLite file of another application is refused with a reason."""
+    path = tmp_path / "other.sqlite"
+    db = sqlite3.connect(path)
+    db.execute("CREATE TABLE t (x)")
+    db.commit()
+    db.close()
+    with pytest.raises(JournalError, match="not a tracker journal"):
+        list(read_journal(path))
+
+
+def test_missing_journal_is_an_error(tmp_path: Path) -> None:
+    """Reading a journal that does not exist says so."""
+    with pytest.raises(JournalError, match="does not exist"):
+        list(read_journal(tmp_path / "nope.sqlite"))
+
+
+def test_damaged_last_record_is_dropped_on_open(tmp_path: Path) -> None:
+    """A last record whose checksum fails (a write cut short) is dropped; the rest is kept."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(3))
+    db = sqlite3.connect(path)
+    db.execute("UPDATE journal SET payload = ? WHERE seq = 3", (b'{"n": 2',))
+    db.commit()
+    db.close()
+    with Journal(path) as journal:
+        assert (1, 2) == (journal.dropped_tail, journal.last_seq)
+    assert [1, 2] == [r.line for r in read_journal(path)]
+
+
+def test_damaged_record_in_the_middle_is_an_error(tmp_path: Path) -> None:
+    """A damaged record that is not the last one is reported by sequence number, not skipped."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(3))
+    db = sqlite3.connect(path)
+    db.execute("UPDATE journal SET ts = 'x' WHERE seq = 2")
+    db.commit()
+    db.close()
+    with pytest.raises(JournalError, match="record 2 is damaged"):
+        list(read_journal(path))
+
+
+def test_crc_covers_topic_payload_and_time() -> None:
+    """Changing any of topic, payload or time changes the checksum."""
+    base = record_crc("a", b"b", "c")
+    assert base not in {
+        record_crc("x", b"b", "c"),
+        record_crc("a", b"x", "c"),
+        record_crc("a", b"b", "x"),
+    }
+
+
+_WRITER = textwrap.dedent(
+    """
+    import sys
+    from tracker.journal import Journal
+    journal = Journal(sys.argv[1])
+    for i in range(int(sys.argv[2])):
+        journal.append_many([("tracker/fills/O", b"x" * 3000, "2026-03-02T14:30:00Z")])
+    print("committed", flush=True)
+    sys.stdin.read()  # hold the file open (no checkpoint) until killed
+    """
+)
+
+
+def test_torn_wal_tail_is_recovered_to_last_whole_record(tmp_path: Path) -> None:
+    """A WAL cut in the middle of its last frame (a crash mid-write) keeps all whole commits."""
+    path = tmp_path / "j.sqlite"
+    crash = tmp_path / "crash"
+    crash.mkdir()
+    with subprocess.Popen(
+        [sys.executable, "-c", _WRITER, str(path), "10"],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+    ) as writer:
+        try:
+            assert writer.stdout is not None
+            assert b"committed\n" == writer.stdout.readline()
+            # Copy the database and its WAL as a crashed writer leaves them, then cut the WAL.
+            shutil.copy(path, crash / "j.sqlite")
+            shutil.copy(Path(f"{path}-wal"), crash / "j.sqlite-wal")
+        finally:
+            writer.kill()
+    wal = crash / "j.sqlite-wal"
+    data = wal.read_bytes()
+    wal.write_bytes(data[: len(data) - 1500])
+    with Journal(crash / "j.sqlite") as journal:
+        recovered = journal.last_seq
+    assert 9 == recovered
+    assert list(range(1, 10)) == [r.line for r in read_journal(crash / "j.sqlite")]
+
+
+def test_kill_during_appends_leaves_only_whole_records(tmp_path: Path) -> None:
+    """kill -9 of a process appending in a loop leaves a journal of whole, checksummed records."""
+    path = tmp_path / "j.sqlite"
+    script = textwrap.dedent(
+        """
+        import sys
+        from tracker.journal import Journal
+        journal = Journal(sys.argv[1], durability="normal")
+        i = 0
+        while True:
+            i += 1
+            journal.append("tracker/fills/O", b"%d" % i, "2026-03-02T14:30:00Z")
+            if i == 200:
+                print("started", flush=True)
+        """
+    )
+    with subprocess.Popen(
+        [sys.executable, "-c", script, str(path)], stdout=subprocess.PIPE
+    ) as writer:
+        try:
+            assert writer.stdout is not None
+            assert b"started\n" == writer.stdout.readline()
+        finally:
+            writer.kill()
+    records = list(read_journal(path))
+    expected = [str(r.line).encode() for r in records]
+    assert expected == [r.payload for r in records]
+    assert len(records) >= 200

@@ -1,0 +1,366 @@
+"""The journal: every inbound message and every injected tick, in the order they were applied.
+
+Theory of operation
+-------------------
+The live daemon appends each message it receives (and each tick its timer injects) to this journal
+*before* the engine sees it and before the broker is told the message arrived (the MQTT
+acknowledgement). So anything the broker has forgotten, the journal has. A restart reads the journal
+from the start, feeds the same engine, and carries on; a replay of the journal reproduces what the
+live daemon published.
+
+Storage is one SQLite file in write-ahead-log (WAL) mode with one table::
+
+    journal(seq INTEGER PRIMARY KEY, topic TEXT, payload BLOB, ts TEXT, crc INTEGER)
+
+``seq`` is the order of application, ``ts`` the receive time (ISO 8601, UTC), ``crc`` a CRC-32 of
+topic, payload and time, and a small ``meta`` table holds the format version and how far the
+daemon's outputs are known to have been published (``published_through``).
+
+Durability policy (what "no fill lost" means here):
+
+* ``durability="full"`` (the default): SQLite ``synchronous=FULL``; every commit is on disk (the WAL
+  is fsynced) before :meth:`Journal.append_many` returns. The daemon acknowledges a message to the
+  broker only after that, so a crash of the process *or of the machine* loses nothing the broker
+  was told we have.
+* ``durability="normal"``: ``synchronous=NORMAL``; commits reach the operating system but the WAL
+  is fsynced only at checkpoints. A crash of the process (``kill -9``) still loses nothing; a power
+  cut may lose the last commits -- which the broker then still holds only if they were not yet
+  acknowledged, so prefer "full" unless the disk is the bottleneck.
+
+The daemon commits a small group at a time: the messages that arrived together (at most the
+inbound batch size), in one transaction, then acknowledges them all.
+
+A crash in the middle of a write leaves at most a torn last transaction in the WAL; SQLite's own
+frame checksums discard it when the file is next opened, so the journal is recovered up to the last
+whole record. The per-record CRC catches what SQLite cannot (a damaged page): a bad *last* record
+is dropped on open (it cannot have been acknowledged), a bad record anywhere else is an error that
+says which sequence number is damaged.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import sqlite3
+import zlib
+from collections.abc import Iterable, Iterator, Sequence
+from pathlib import Path
+from types import TracebackType
+from typing import Literal, Self
+
+from tracker.errors import InputError
+from tracker.records import Record
+
+__all__ = [
+    "FORMAT_VERSION",
+    "Durability",
+    "Journal",
+    "JournalError",
+    "read_journal",
+    "record_crc",
+]
+
+#: Version of the journal's table layout; written into ``meta`` and checked on open.
+FORMAT_VERSION = 1
+
+Durability = Literal["full", "normal"]
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS journal (
+    seq INTEGER PRIMARY KEY,
+    topic TEXT NOT NULL,
+    payload BLOB NOT NULL,
+    ts TEXT NOT NULL,
+    crc INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS meta (
+    key TEXT PRIMARY KEY,
+    value TEXT NOT NULL
+);
+"""
+
+
+class JournalError(InputError):
+    """A journal file that cannot be used: not a journal, a newer format, or damaged."""
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message, field="journal")
+
+
+def record_crc(topic: str, payload: bytes, ts: str) -> int:
+    """CRC-32 of one journal record (topic, payload and time, separated by NUL bytes)."""
+    crc = zlib.crc32(topic.encode("utf-8"))
+    crc = zlib.crc32(b"\x00", crc)
+    crc = zlib.crc32(payload, crc)
+    crc = zlib.crc32(b"\x00", crc)
+    return zlib.crc32(ts.encode("utf-8"), crc)
+
+
+def _connect(path: Path, *, readonly: bool) -> sqlite3.Connection:
+    try:
+        if readonly:
+            # "mode=ro" still lets SQLite recover a WAL left by a crashed writer (it needs the
+            # -shm file, which it creates next to the journal when missing).
+            connection = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
+        else:
+            connection = sqlite3.connect(path, isolation_level=None)
+    except sqlite3.Error as exc:
+        raise JournalError(f"cannot open {path}: {exc}") from exc
+    return connection
+
+
+def _check_format(connection: sqlite3.Connection, path: Path) -> None:
+    try:
+        tables = {
+            row[0]
+            for row in connection.execute("SELECT name FROM sqlite_master WHERE type = 'table'")
+        }
+    except sqlite3.DatabaseError as exc:
+        raise JournalError(f"{path} is not a tracker journal (SQLite says: {exc})") from exc
+    if "journal" not in tables or "meta" not in tables:
+        raise JournalError(
+            f"{path} is an SQLite file but not a tracker journal (no 'journal' and 'meta' tables); "
+            "give the journal written by 'tracker run'"
+        )
+    row = connection.execute("SELECT value FROM meta WHERE key = 'format'").fetchone()
+    version = int(row[0]) if row is not None else None
+    if version != FORMAT_VERSION:
+        raise JournalError(
+            f"{path} is a journal of format {version}; this tracker reads format {FORMAT_VERSION}; "
+            "use the tracker version that wrote it"
+        )
+
+
+class Journal:
+    """An append-only SQLite journal of inbound messages (see the module docstring).
+
+    Opening a journal creates it when missing and recovers it after a crash. It is a context
+    manager; use one writer per file (the daemon holds a lock file to make sure).
+
+    Args:
+        path: The journal file.
+        durability: "full" (fsync every commit) or "normal" (see the module docstring).
+
+    Raises:
+        JournalError: The file is not a journal, has another format, or is damaged.
+    """
+
+    def __init__(self, path: str | Path, *, durability: Durability = "full") -> None:
+        if durability not in ("full", "normal"):
+            raise InputError(
+                f"must be 'full' or 'normal', got {durability!r}", field="journal.durability"
+            )
+        self.path = Path(path)
+        self.durability: Durability = durability
+        fresh = not self.path.exists() or self.path.stat().st_size == 0
+        if fresh:
+            try:
+                self.path.parent.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise JournalError(f"cannot create {self.path.parent}: {exc.strerror}") from exc
+        self._db = _connect(self.path, readonly=False)
+        try:
+            self._db.execute("PRAGMA journal_mode=WAL")
+            self._db.execute(f"PRAGMA synchronous={durability.upper()}")
+            if fresh:
+                self._db.executescript(_SCHEMA)
+                self._db.execute(
+                    "INSERT OR IGNORE INTO meta(key, value) VALUES ('format', ?)",
+                    (str(FORMAT_VERSION),),
+                )
+            _check_format(self._db, self.path)
+            self.dropped_tail = self._drop_damaged_tail()
+            row = self._db.execute(
+                "SELECT seq, ts FROM journal ORDER BY seq DESC LIMIT 1"
+            ).fetchone()
+        except sqlite3.Error as exc:
+            self._db.close()
+            raise JournalError(f"cannot use {self.path}: {exc}") from exc
+        except JournalError:
+            self._db.close()
+            raise
+        self.last_seq: int = row[0] if row else 0
+        self.last_ts: str | None = row[1] if row else None
+
+    def _drop_damaged_tail(self) -> int:
+        """Delete a last record whose CRC does not match (a write cut short); return how many."""
+        dropped = 0
+        while True:
+            row = self._db.execute(
+                "SELECT seq, topic, payload, ts, crc FROM journal ORDER BY seq DESC LIMIT 1"
+            ).fetchone()
+            if row is None or _valid(row):
+                return dropped
+            self._db.execute("DELETE FROM journal WHERE seq = ?", (row[0],))
+            dropped += 1
+
+    # -- writing ---------------------------------------------------------------------------------
+
+    def append(self, topic: str, payload: bytes, ts: str) -> int:
+        """Append one record and commit it; return its sequence number."""
+        return self.append_many([(topic, payload, ts)])[0]
+
+    def append_many(
+        self,
+        rows: Sequence[tuple[str, bytes, str]],
+        *,
+        published_through: int | None = None,
+    ) -> list[int]:
+        """Append records in one transaction and commit it (durably, per the policy).
+
+        Args:
+            rows: ``(topic, payload, ts)`` per record, in order of application.
+            published_through: When given, also record that the outputs of every record up to
+                this sequence number have been published (same transaction).
+
+        Returns:
+            The sequence numbers given to the rows.
+        """
+        seqs: list[int] = []
+        with self._transaction():
+            for topic, payload, ts in rows:
+                payload = bytes(payload)
+                cursor = self._db.execute(
+                    "INSERT INTO journal(topic, payload, ts, crc) VALUES (?, ?, ?, ?)",
+                    (topic, payload, ts, record_crc(topic, payload, ts)),
+                )
+                seq = cursor.lastrowid
+                assert seq is not None
+                seqs.append(seq)
+            if published_through is not None:
+                self._set_published_through(published_through)
+        if seqs:
+            self.last_seq = seqs[-1]
+            self.last_ts = rows[-1][2]
+        return seqs
+
+    def mark_published(self, seq: int) -> None:
+        """Record that the outputs of every record up to ``seq`` have been published."""
+        with self._transaction():
+            self._set_published_through(seq)
+
+    def _set_published_through(self, seq: int) -> None:
+        self._db.execute(
+            "INSERT INTO meta(key, value) VALUES ('published_through', ?) "
+            "ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+            (str(seq),),
+        )
+
+    def _transaction(self) -> _Transaction:
+        return _Transaction(self._db)
+
+    # -- reading ---------------------------------------------------------------------------------
+
+    @property
+    def published_through(self) -> int:
+        """Sequence number up to which the daemon's outputs were confirmed published (0: none)."""
+        row = self._db.execute("SELECT value FROM meta WHERE key = 'published_through'").fetchone()
+        return int(row[0]) if row else 0
+
+    def records(self, after: int = 0) -> Iterator[Record]:
+        """The records with a sequence number above ``after``, in order (CRC-checked)."""
+        return _iter_records(self._db, self.path, after)
+
+    def __len__(self) -> int:
+        row = self._db.execute("SELECT COUNT(*) FROM journal").fetchone()
+        return int(row[0])
+
+    # -- lifecycle -------------------------------------------------------------------------------
+
+    def close(self) -> None:
+        """Checkpoint the WAL into the main file and close."""
+        # A busy reader keeps the WAL; it is then checkpointed on the next open.
+        with contextlib.suppress(sqlite3.Error):
+            self._db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        self._db.close()
+
+    def __enter__(self) -> Self:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.close()
+
+
+class _Transaction:
+    """BEGIN IMMEDIATE ... COMMIT, or ROLLBACK on error (the connection is in autocommit mode)."""
+
+    def __init__(self, db: sqlite3.Connection) -> None:
+        self._db = db
+
+    def __enter__(self) -> None:
+        self._db.execute("BEGIN IMMEDIATE")
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        if exc_type is None:
+            self._db.execute("COMMIT")
+        else:
+            self._db.execute("ROLLBACK")
+
+
+def _valid(row: tuple[int, str, bytes, str, int]) -> bool:
+    _, topic, payload, ts, crc = row
+    if not isinstance(payload, bytes):
+        payload = str(payload).encode("utf-8")
+    return record_crc(topic, payload, ts) == crc
+
+
+def _iter_records(db: sqlite3.Connection, path: Path, after: int) -> Iterator[Record]:
+    cursor = db.execute(
+        "SELECT seq, topic, payload, ts, crc FROM journal WHERE seq > ? ORDER BY seq", (after,)
+    )
+    for row in _rows(cursor):
+        if not _valid(row):
+            raise JournalError(
+                f"{path}: record {row[0]} is damaged (its checksum does not match); restore the "
+                "journal from a copy, or export the records before it with 'tracker journal export'"
+            )
+        seq, topic, payload, ts, _ = row
+        yield Record(line=seq, topic=topic, payload=bytes(payload), ts=ts)
+
+
+def _rows(cursor: sqlite3.Cursor) -> Iterable[tuple[int, str, bytes, str, int]]:
+    while True:
+        batch = cursor.fetchmany(1024)
+        if not batch:
+            return
+        yield from batch
+
+
+def read_journal(path: str | Path) -> Iterator[Record]:
+    """Read a journal written by the daemon, record by record, for replay or export.
+
+    The file is opened read-only (a crashed writer's WAL is recovered, not modified), so it can be
+    read while a daemon is appending to it; the records are those committed when reading started.
+
+    Args:
+        path: The journal file.
+
+    Yields:
+        :class:`tracker.records.Record` per journal row: ``line`` is the sequence number,
+        ``payload`` the raw bytes as received, ``ts`` the receive time.
+
+    Raises:
+        JournalError: The file is missing, not a journal, or a record is damaged.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise JournalError(f"{path} does not exist; give the journal file written by 'tracker run'")
+    db = _connect(path, readonly=True)
+    try:
+        _check_format(db, path)
+        # One read transaction: a consistent snapshot even while a writer appends.
+        db.execute("BEGIN")
+        yield from _iter_records(db, path, 0)
+    except sqlite3.Error as exc:
+        raise JournalError(f"cannot read {path}: {exc}") from exc
+    finally:
+        db.close()
