@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from tracker.cli.calibrate import add_session_arguments, session_from_args
+from tracker.cli.simulate_day import add_day_parser
 from tracker.errors import InputError
 
 ActionParsers = argparse._SubParsersAction  # type: ignore[type-arg]
@@ -62,7 +63,7 @@ def _register_history(actions: ActionParsers) -> None:
 
 
 #: The ``simulate`` actions; each adds its parser to the action sub-parsers.
-ACTIONS: list[Callable[[ActionParsers], None]] = [_register_history]
+ACTIONS: list[Callable[[ActionParsers], None]] = [_register_history, add_day_parser]
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

@@ -1,0 +1,190 @@
+"""``tracker replay``: run the engine on a recorded day and write what it said."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import tomllib
+from collections.abc import Callable, Iterator, Mapping
+from contextlib import contextmanager
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from tracker.errors import InputError
+
+if TYPE_CHECKING:
+    from tracker.engine import EngineConfig
+    from tracker.liquidity import Profile
+
+DESCRIPTION = """\
+Replay a recorded day through the engine, deterministically, and write its outputs.
+
+INPUT is a JSON Lines file, one {"topic": ..., "payload": ..., "ts": ...} per line (payload: the
+message object, or its raw text), or a SQLite journal written by the daemon (told by its header).
+DIR receives targets.jsonl, alerts.jsonl, status.jsonl, errors.jsonl (one wire-contract message per
+line) and summary.json (per order: quantity, filled, average price, arrival price, implementation
+shortfall and slippage to the interval VWAP in basis points, alert counts by code, final state).
+Two runs on the same input write byte-identical files.
+
+Every malformed or invalid line becomes one record in errors.jsonl with its 1-based line number
+and a reason; the replay goes on. An exact copy of an accepted message (a redelivery) is skipped.
+When the input holds no tick lines, ticks are derived from the lines' times every --tick-seconds.
+"""
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add the ``replay`` sub-command."""
+    from tracker.cli import CAUTION
+    from tracker.replay import DEFAULT_TICK_SECONDS
+
+    parser = subparsers.add_parser(
+        "replay",
+        help="replay recorded messages through the engine and write its outputs",
+        description=DESCRIPTION,
+        epilog=CAUTION,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("input", metavar="INPUT", help="JSON Lines recording or SQLite journal")
+    parser.add_argument(
+        "--out", "-o", metavar="DIR", required=True, help="folder for the output files"
+    )
+    parser.add_argument(
+        "--profiles",
+        metavar="DIR",
+        help="folder of liquidity profiles, one SYMBOL.json per symbol as `tracker calibrate` "
+        "writes them; a symbol without one runs on the stated default profile (with an alert)",
+    )
+    parser.add_argument(
+        "--config",
+        metavar="FILE",
+        help="engine thresholds, a TOML or JSON file (keys as in EngineConfig); defaults otherwise",
+    )
+    parser.add_argument(
+        "--root", default="tracker", help="MQTT topic root of the recording (default: tracker)"
+    )
+    parser.add_argument(
+        "--tick-seconds",
+        type=float,
+        default=DEFAULT_TICK_SECONDS,
+        metavar="S",
+        help="interval of ticks derived from the lines' times when the input has no tick lines "
+        f"(seconds, default: {DEFAULT_TICK_SECONDS:g})",
+    )
+    parser.add_argument(
+        "--progress",
+        action=argparse.BooleanOptionalAction,
+        default=None,
+        help="show a progress bar on stderr (default: only when stderr is a terminal)",
+    )
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Replay INPUT into DIR; print a one-line account; return 0."""
+    from tracker.engine import Engine
+    from tracker.replay import read_input, replay, stderr_is_terminal, write_outputs
+
+    config = load_config(Path(args.config)) if args.config else None
+    profiles = load_profiles(Path(args.profiles)) if args.profiles else {}
+    records = list(read_input(Path(args.input)))
+    engine = Engine(config=config, profiles=profiles)
+    show = stderr_is_terminal() if args.progress is None else bool(args.progress)
+    with _progress_bar(len(records), show) as advance:
+        result = replay(
+            records, engine, args.root, tick_seconds=args.tick_seconds, progress=advance
+        )
+    write_outputs(result, Path(args.out))
+    counts = result.summary.get("replay", {})
+    print(
+        f"replayed {counts.get('lines', 0)} lines: {counts.get('accepted', 0)} accepted, "
+        f"{counts.get('rejected', 0)} rejected, {counts.get('redelivered', 0)} redelivered; "
+        f"{len(result.targets)} targets, {len(result.alerts)} alerts, "
+        f"{len(result.errors)} errors -> {args.out}"
+    )
+    return 0
+
+
+def load_config(path: Path) -> EngineConfig:
+    """Read engine thresholds from a TOML (``.toml``) or JSON file.
+
+    A file whose top level holds an ``engine`` table (a daemon configuration file) gives that table.
+
+    Raises:
+        InputError: The file is missing, not TOML/JSON, or a threshold is unknown or out of range.
+    """
+    from tracker.engine import EngineConfig
+
+    data = _read_mapping(path, "--config")
+    engine_table = data.get("engine")
+    if isinstance(engine_table, Mapping):
+        data = engine_table
+    return EngineConfig.from_mapping(data)
+
+
+def load_profiles(folder: Path) -> dict[str, Profile]:
+    """Read every ``SYMBOL.json`` of a folder as a liquidity profile.
+
+    Raises:
+        InputError: The folder is missing, a file is not a profile, or a file's name does not match
+            the symbol inside it.
+    """
+    from tracker.liquidity import Profile
+
+    if not folder.is_dir():
+        raise InputError(f"{folder} is not a folder", field="--profiles")
+    profiles: dict[str, Profile] = {}
+    for path in sorted(folder.glob("*.json")):
+        data = _read_mapping(path, "--profiles")
+        try:
+            profile = Profile.from_mapping(data)
+        except InputError as exc:
+            raise InputError(f"{path.name}: {exc}", field="--profiles") from exc
+        if profile.symbol != path.stem:
+            raise InputError(
+                f"{path.name} holds the profile of {profile.symbol!r}; name it "
+                f"{profile.symbol}.json (one file per symbol)",
+                field="--profiles",
+            )
+        profiles[profile.symbol] = profile
+    return profiles
+
+
+def _read_mapping(path: Path, flag: str) -> dict[str, Any]:
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}", field=flag) from exc
+    loader: Callable[[str], Any] = tomllib.loads if path.suffix.lower() == ".toml" else json.loads
+    try:
+        data = loader(raw.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError, tomllib.TOMLDecodeError) as exc:
+        kind = "TOML" if path.suffix.lower() == ".toml" else "JSON"
+        raise InputError(f"{path} is not valid {kind}: {exc}", field=flag) from exc
+    if not isinstance(data, dict):
+        raise InputError(f"{path} must hold one object at its top level", field=flag)
+    return data
+
+
+@contextmanager
+def _progress_bar(total: int, show: bool) -> Iterator[Callable[[int], None] | None]:
+    """A rich progress bar on stderr, or nothing."""
+    if not show:
+        yield None
+        return
+    from rich.console import Console
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeRemainingColumn
+
+    with Progress(
+        "replaying",
+        BarColumn(),
+        MofNCompleteColumn(),
+        TimeRemainingColumn(),
+        console=Console(stderr=True),
+        transient=True,
+    ) as bar:
+        task = bar.add_task("replay", total=total)
+
+        def advance(done: int) -> None:
+            bar.update(task, completed=done)
+
+        yield advance
