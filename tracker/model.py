@@ -40,13 +40,15 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, fields, replace
+from datetime import datetime
 from typing import Any
 
 import numpy as np
 
 from tracker.errors import InputError
-from tracker.liquidity import Forecast
+from tracker.liquidity import Forecast, Profile, forecast
 from tracker.problem import FORCE, Problem
+from tracker.solve import Schedule, solve
 
 
 @dataclass(frozen=True, slots=True)
@@ -148,9 +150,9 @@ def _check_number(
 
 #: Urgency presets: the ``risk_aversion`` each maps to (other preferences keep their defaults).
 URGENCY: dict[str, dict[str, Any]] = {
-    "low": {"risk_aversion": 0.0},
-    "medium": {"risk_aversion": 20.0},
-    "high": {"risk_aversion": 400.0},
+    "low": {"risk_aversion": 10.0},
+    "medium": {"risk_aversion": 100.0},
+    "high": {"risk_aversion": 500.0},
 }
 
 #: The preset used when neither an urgency nor a risk aversion is given.
@@ -267,4 +269,192 @@ def build_problem(
         penalty_exponent=p,
         terminal_penalty=terminal,
         caps=caps,
+    )
+
+
+# --------------------------------------------------------------------------- order plans
+
+#: Sides of an order.
+SIDES = ("buy", "sell")
+
+
+@dataclass(frozen=True, slots=True)
+class PlannedBin:
+    """One bin of an order's plan.
+
+    Attributes:
+        start: Bin start, venue local time (tz-aware).
+        end: Bin end.
+        quantity: Whole shares planned in the bin, in the order's direction (never negative).
+        forecast_volume: Forecast market volume of the bin (shares).
+        participation: ``quantity / forecast_volume``.
+        inventory_after: Shares of the order left after the bin.
+    """
+
+    start: datetime
+    end: datetime
+    quantity: int
+    forecast_volume: float
+    participation: float
+    inventory_after: int
+
+    def to_mapping(self) -> dict[str, Any]:
+        """The bin as the JSON object of ``tracker plan --order --format json``."""
+        return {
+            "start": self.start.isoformat(),
+            "end": self.end.isoformat(),
+            "quantity": self.quantity,
+            "participation": self.participation,
+            "inventory_after": self.inventory_after,
+            "forecast_volume": self.forecast_volume,
+        }
+
+
+@dataclass(frozen=True, eq=False)
+class OrderPlan:
+    """The optimal schedule of an order with its expected cost.
+
+    Attributes:
+        symbol: The order's symbol.
+        side: ``"buy"`` or ``"sell"``; quantities are shares in that direction.
+        quantity: Shares of the order.
+        arrival_price: Price the costs are measured against (currency per share).
+        preferences: The preferences used.
+        problem: The canonical problem that was solved.
+        schedule: The solver's schedule (continuous shares).
+        bins: The plan per bin, rounded to whole shares.
+        cost: Expected cost in currency: ``spread``, ``impact``, ``risk``, ``completion``
+            (penalty on an unfinished quantity) and ``total``. Positive is a cost for either side.
+    """
+
+    symbol: str
+    side: str
+    quantity: float
+    arrival_price: float
+    preferences: Preferences
+    problem: Problem
+    schedule: Schedule
+    bins: tuple[PlannedBin, ...]
+    cost: Mapping[str, float]
+
+    @property
+    def cost_bps(self) -> dict[str, float]:
+        """The cost in basis points of the order's value at the arrival price."""
+        notional = self.quantity * self.arrival_price
+        scale = 1e4 / notional if notional > 0 else 0.0
+        return {name: value * scale for name, value in self.cost.items()}
+
+    def to_mapping(self) -> dict[str, Any]:
+        """The plan as the JSON object of ``tracker plan --order --format json``."""
+        return {
+            "symbol": self.symbol,
+            "side": self.side,
+            "quantity": self.quantity,
+            "arrival_price": self.arrival_price,
+            "status": self.schedule.status,
+            "shortfall": float(self.schedule.shortfall),
+            "preferences": self.preferences.to_mapping(),
+            "bins": [b.to_mapping() for b in self.bins],
+            "expected_cost": {
+                "currency": self.cost["total"],
+                "bps": self.cost_bps["total"],
+                "breakdown": {
+                    name: {"currency": self.cost[name], "bps": self.cost_bps[name]}
+                    for name in ("spread", "impact", "risk", "completion")
+                },
+            },
+        }
+
+
+def whole_shares(trajectory: Any) -> Any:
+    """Round an inventory path to whole shares; trades stay >= 0 and sum to the order."""
+    rounded = np.round(np.asarray(trajectory, dtype=np.float64))
+    return rounded, -np.diff(rounded)
+
+
+def plan_order(
+    *,
+    symbol: str,
+    side: str,
+    quantity: float,
+    start: datetime,
+    end: datetime,
+    liquidity: Profile | Forecast,
+    preferences: Preferences,
+    max_participation: float | None,
+    arrival_price: float,
+) -> OrderPlan:
+    """Plan an order over its window from a profile (or today's forecast).
+
+    Args:
+        symbol: The order's symbol.
+        side: ``"buy"`` or ``"sell"``; only the reporting depends on it (the problem is
+            side-free: shares to execute).
+        quantity: Shares to execute (> 0).
+        start: Order start (tz-aware, or naive in the venue's local time).
+        end: Order end; the window is cut to the session of the start's local day.
+        liquidity: A :class:`~tracker.liquidity.Profile` (planned as a normal day) or a
+            :class:`~tracker.liquidity.Forecast`.
+        preferences: Cost/risk preferences.
+        max_participation: Cap as a fraction of forecast volume, or ``None``.
+        arrival_price: Currency per share (> 0).
+
+    Raises:
+        InputError: a bad side, quantity, window or price.
+    """
+    if side not in SIDES:
+        raise InputError(f"must be buy or sell; got {side!r}", field="side")
+    if isinstance(quantity, bool) or not (quantity > 0 and math.isfinite(quantity)):
+        raise InputError(f"must be a number of shares > 0; got {quantity!r}", field="quantity")
+    today = forecast(liquidity, {}) if isinstance(liquidity, Profile) else liquidity
+    session = today.session
+    first, end_bin, fraction = session.bin_span(start, end)
+    problem = build_problem(
+        quantity=float(quantity),
+        first_bin=first,
+        end_bin=end_bin,
+        forecast=today,
+        preferences=preferences,
+        max_participation=max_participation,
+        price=arrival_price,
+        first_fraction=fraction,
+    )
+    schedule = solve(problem)
+    clock = session.bins(session.local(start).date())[first:end_bin]
+    inventory, trades = whole_shares(schedule.trajectory)
+    volumes = np.maximum(today.volume[first:end_bin], 1.0).copy()
+    volumes[0] *= fraction
+    if fraction < 1.0:  # the order starts inside its first bin
+        clock[0] = (session.local(start), clock[0][1])
+    bins = tuple(
+        PlannedBin(
+            start=b_start,
+            end=b_end,
+            quantity=int(trade),
+            forecast_volume=float(volume),
+            participation=float(trade / volume),
+            inventory_after=int(left),
+        )
+        for (b_start, b_end), trade, volume, left in zip(
+            clock, trades, volumes, inventory[1:], strict=True
+        )
+    )
+    terms = schedule.cost
+    cost = {
+        "spread": float(terms["fixed_cost"]),
+        "impact": float(terms["temporary_impact"] + terms["permanent_impact"]),
+        "risk": float(terms["inventory_penalty"]),
+        "completion": float(terms["terminal_penalty"]),
+    }
+    cost["total"] = sum(cost.values())
+    return OrderPlan(
+        symbol=symbol,
+        side=side,
+        quantity=float(quantity),
+        arrival_price=float(arrival_price),
+        preferences=preferences,
+        problem=problem,
+        schedule=schedule,
+        bins=bins,
+        cost=cost,
     )

@@ -54,6 +54,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         help="also fit the feedback policy to the linear rule v_n = a_n q per bin "
         "(slope, R^2, relative deviation)",
     )
+    from tracker.cli.plan_order import add_order_arguments
+
+    add_order_arguments(parser)
     parser.set_defaults(handler=run)
 
 
@@ -77,9 +80,15 @@ def _reject_constant(name: str) -> float:
 
 
 def run(args: argparse.Namespace) -> int:
-    """Solve the problem file and print the result."""
+    """Solve the problem file (or plan the ``--order``) and print the result."""
+    if getattr(args, "order", None) is not None:
+        if args.problem is not None:
+            raise InputError("give either --problem FILE or --order ORDER.json, not both")
+        from tracker.cli.plan_order import run_order
+
+        return run_order(args)
     if args.problem is None:
-        raise InputError("give --problem FILE (the JSON execution problem)")
+        raise InputError("give --problem FILE (the JSON execution problem) or --order ORDER.json")
     problem = Problem.from_mapping(read_json(args.problem, "problem file"))
     schedule = solve(problem)
     policy = explain(problem) if args.explain else None
