@@ -1,0 +1,478 @@
+"""Alert rules and their hysteresis.
+
+Theory of operation
+-------------------
+A *condition* (behind plan, liquidity shock, stale data, ...) is judged by a pure rule function that
+returns a :class:`Check`: whether the condition is now bad enough to raise (``breach``) and whether
+it is now good enough to clear (``recovered``). The two thresholds differ (the clear threshold is
+:attr:`AlertConfig.clear_ratio` times the raise threshold, or an explicit lower level), so a
+value that hovers around one threshold does not flap. :class:`AlertBook` remembers which
+conditions are raised, per scope (an order id, or ``symbol:XYZ``) and code, and turns a check into
+at most one message: ``raised`` when it crosses up, ``cleared`` when it crosses back, nothing
+otherwise. So a condition is reported once and cleared once, not every bin.
+
+*Events* (a fill for an unknown order, an overfill, an order done, ...) are one-shot: each is its
+own fact and is reported once when it happens (:func:`event`), with no clear.
+
+Codes (severity):
+
+=========================  ========  =============================================================
+behind_plan                warning   filled below the baseline plan beyond the tolerance
+ahead_of_plan              warning   filled above the baseline plan beyond the tolerance
+completion_infeasible      critical  the participation cap cannot complete the order in time
+volume_shock               warning   a bin's volume far from its forecast (symbol scope)
+spread_shock               warning   a bin's spread far from its forecast (symbol scope)
+limit_blocking             warning   the market is beyond the order's limit price
+market_data_stale          critical  no bin for the symbol for more than ``stale_bins`` bins
+replan_moved               info      a re-plan moved the schedule materially
+fill_unknown_order         critical  a fill names an order the engine does not know
+fill_overfill              critical  fills exceed the order quantity
+fill_after_close           warning   a fill on an order that is done, cancelled or expired
+fill_duplicate_conflict    critical  a fill id seen before with different content (rejected)
+fill_wrong_side            critical  a fill whose side differs from the order's (rejected)
+fill_price_outside         warning   a fill price far outside its bin's low-high range
+order_done                 info      the order is complete
+order_expired              warning   the order's end passed with shares left (info if none left)
+order_halted / resumed     info      a control message halted or resumed the order
+default_profile            info      no liquidity profile for a symbol: the stated default is used
+=========================  ========  =============================================================
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields
+from datetime import datetime
+from typing import Any
+
+from tracker.errors import InputError
+from tracker.wire import AlertMessage, Severity
+
+BEHIND_PLAN = "behind_plan"
+AHEAD_OF_PLAN = "ahead_of_plan"
+COMPLETION_INFEASIBLE = "completion_infeasible"
+VOLUME_SHOCK = "volume_shock"
+SPREAD_SHOCK = "spread_shock"
+LIMIT_BLOCKING = "limit_blocking"
+MARKET_DATA_STALE = "market_data_stale"
+REPLAN_MOVED = "replan_moved"
+FILL_UNKNOWN_ORDER = "fill_unknown_order"
+FILL_OVERFILL = "fill_overfill"
+FILL_AFTER_CLOSE = "fill_after_close"
+FILL_DUPLICATE_CONFLICT = "fill_duplicate_conflict"
+FILL_WRONG_SIDE = "fill_wrong_side"
+FILL_PRICE_OUTSIDE = "fill_price_outside"
+ORDER_DONE = "order_done"
+ORDER_EXPIRED = "order_expired"
+ORDER_HALTED = "order_halted"
+ORDER_RESUMED = "order_resumed"
+DEFAULT_PROFILE = "default_profile"
+
+
+@dataclass(frozen=True)
+class AlertConfig:
+    """Alert thresholds. Every raise threshold has a lower clear threshold (hysteresis).
+
+    Attributes:
+        deviation_pct: Behind/ahead of plan raises when the gap is at least this % of the order...
+        deviation_shares: ...and at least this many shares...
+        deviation_bins: ...and at least this many bins of the baseline plan's average trading.
+        clear_ratio: A raised condition clears when its measure falls below ``clear_ratio`` times
+            the raise threshold (all three deviation measures: clearing needs only one of them
+            below its clear level).
+        volume_shock_ratio: A bin's volume at least this many times its forecast, or at most
+            its inverse, raises ``volume_shock``.
+        volume_shock_clear: ...which clears when a bin is back within this ratio either way.
+        spread_shock_ratio: Like ``volume_shock_ratio``, for the spread (wider only).
+        spread_shock_clear: Like ``volume_shock_clear``, for the spread.
+        stale_bins: ``market_data_stale`` when no bin arrived for more than this many bin
+            lengths of event time during the session; clears on the next bin.
+        replan_move_pct: ``replan_moved`` when a re-plan's cumulative schedule differs from the
+            previous plan's by at least this % of the order in some bin.
+        infeasible_pct: ``completion_infeasible`` when the capped plan leaves at least this % of
+            the order (and at least one share) undone at the end; clears below
+            ``clear_ratio`` times it.
+        fill_price_tolerance_pct: ``fill_price_outside`` when a fill's price is more than this
+            % of the price outside its bin's low-high range.
+    """
+
+    deviation_pct: float = 5.0
+    deviation_shares: float = 100.0
+    deviation_bins: float = 1.0
+    clear_ratio: float = 0.5
+    volume_shock_ratio: float = 3.0
+    volume_shock_clear: float = 1.5
+    spread_shock_ratio: float = 3.0
+    spread_shock_clear: float = 1.5
+    stale_bins: float = 2.0
+    replan_move_pct: float = 10.0
+    infeasible_pct: float = 0.5
+    fill_price_tolerance_pct: float = 1.0
+
+    def __post_init__(self) -> None:
+        for item in fields(AlertConfig):
+            value = getattr(self, item.name)
+            if isinstance(value, bool) or not isinstance(value, int | float):
+                raise InputError(f"must be a number; got {value!r}", field=item.name)
+            if not math.isfinite(value) or value < 0:
+                raise InputError(f"must be a finite number >= 0; got {value!r}", field=item.name)
+        if not 0 < self.clear_ratio < 1:
+            raise InputError(
+                f"must be in (0, 1) so that clearing needs a clear recovery; got "
+                f"{self.clear_ratio!r}",
+                field="clear_ratio",
+            )
+        for raise_key, clear_key in (
+            ("volume_shock_ratio", "volume_shock_clear"),
+            ("spread_shock_ratio", "spread_shock_clear"),
+        ):
+            if not 1 <= getattr(self, clear_key) < getattr(self, raise_key):
+                raise InputError(
+                    f"must be at least 1 and below {raise_key} ({getattr(self, raise_key)}); "
+                    f"got {getattr(self, clear_key)!r}",
+                    field=clear_key,
+                )
+
+
+@dataclass(frozen=True)
+class Check:
+    """The verdict of one rule on one condition, before hysteresis.
+
+    Attributes:
+        code: The alert code.
+        severity: info, warning or critical.
+        breach: The condition is bad enough to raise now.
+        recovered: The condition is good enough to clear now (never true with ``breach``).
+        message: Plain-language message for a raise.
+        clear_message: Plain-language message for a clear.
+        details: Numbers behind the verdict (JSON-able).
+    """
+
+    code: str
+    severity: Severity
+    breach: bool
+    recovered: bool
+    message: str
+    clear_message: str
+    details: Mapping[str, Any] = field(default_factory=dict)
+
+
+class AlertBook:
+    """Which conditions are raised, per scope and code; turns checks into raise/clear messages."""
+
+    __slots__ = ("_raised",)
+
+    def __init__(self) -> None:
+        self._raised: set[tuple[str, str]] = set()
+
+    def is_raised(self, scope: str, code: str) -> bool:
+        """Whether ``code`` is currently raised for ``scope``."""
+        return (scope, code) in self._raised
+
+    def raised(self, scope: str) -> list[str]:
+        """The codes raised for ``scope``, sorted."""
+        return sorted(code for s, code in self._raised if s == scope)
+
+    def apply(
+        self,
+        check: Check,
+        *,
+        scope: str,
+        order_id: str | None,
+        symbol: str | None,
+        ts: datetime,
+    ) -> AlertMessage | None:
+        """The message the check causes: a raise, a clear, or ``None`` (no change)."""
+        key = (scope, check.code)
+        if key not in self._raised and check.breach:
+            self._raised.add(key)
+            return AlertMessage(
+                order_id=order_id,
+                symbol=symbol,
+                code=check.code,
+                severity=check.severity,
+                state="raised",
+                message=check.message,
+                details=dict(check.details),
+                ts=ts,
+            )
+        if key in self._raised and check.recovered and not check.breach:
+            self._raised.discard(key)
+            return AlertMessage(
+                order_id=order_id,
+                symbol=symbol,
+                code=check.code,
+                severity="info",
+                state="cleared",
+                message=check.clear_message,
+                details=dict(check.details),
+                ts=ts,
+            )
+        return None
+
+    def clear_silently(self, scope: str) -> None:
+        """Forget every raised condition of ``scope`` (an order that ended)."""
+        self._raised = {key for key in self._raised if key[0] != scope}
+
+
+def event(
+    code: str,
+    severity: Severity,
+    message: str,
+    *,
+    order_id: str | None,
+    symbol: str | None,
+    ts: datetime,
+    details: Mapping[str, Any] | None = None,
+) -> AlertMessage:
+    """A one-shot alert (an event, not a condition): raised once, never cleared."""
+    return AlertMessage(
+        order_id=order_id,
+        symbol=symbol,
+        code=code,
+        severity=severity,
+        state="raised",
+        message=message,
+        details=dict(details or {}),
+        ts=ts,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Rules (pure)
+# --------------------------------------------------------------------------------------------
+
+
+def _shares(value: float) -> str:
+    return f"{round(value):,}"
+
+
+def deviation(
+    *,
+    quantity: float,
+    deviation_shares: float,
+    deviation_bins: float | None,
+    config: AlertConfig,
+) -> tuple[Check, Check]:
+    """Behind and ahead of plan.
+
+    Args:
+        quantity: The order quantity (shares).
+        deviation_shares: Planned minus filled shares at this time (> 0 behind, < 0 ahead).
+        deviation_bins: The gap in bins of the baseline plan's average trading per bin
+            (absolute value used), or ``None`` when unknown (then the bins test is skipped).
+        config: Thresholds.
+
+    Returns:
+        ``(behind_plan check, ahead_of_plan check)``.
+    """
+    gap = abs(deviation_shares)
+    pct = 100.0 * gap / quantity if quantity > 0 else 0.0
+    bins = abs(deviation_bins) if deviation_bins is not None else None
+    r = config.clear_ratio
+    big = (
+        pct >= config.deviation_pct
+        and gap >= config.deviation_shares
+        and (bins is None or bins >= config.deviation_bins)
+    )
+    small = (
+        pct < r * config.deviation_pct
+        or gap < r * config.deviation_shares
+        or (bins is not None and bins < r * config.deviation_bins)
+    )
+    bins_text = f", {bins:.1f} bins of planned trading" if bins is not None else ""
+    details = {
+        "deviation_shares": round(deviation_shares),
+        "deviation_pct": pct,
+        "deviation_bins": bins,
+    }
+    checks = []
+    for code, sign, word in ((BEHIND_PLAN, 1.0, "behind"), (AHEAD_OF_PLAN, -1.0, "ahead of")):
+        this_side = sign * deviation_shares > 0
+        checks.append(
+            Check(
+                code=code,
+                severity="warning",
+                breach=big and this_side,
+                recovered=small or not this_side,
+                message=(
+                    f"{_shares(gap)} shares {word} plan ({pct:.1f} % of the order{bins_text})."
+                ),
+                clear_message=f"Back within tolerance of the plan ({pct:.1f} % of the order).",
+                details=details,
+            )
+        )
+    return checks[0], checks[1]
+
+
+def completion(*, quantity: float, shortfall: float, config: AlertConfig) -> Check:
+    """Completion infeasible under the participation cap: ``shortfall`` shares left at the end."""
+    pct = 100.0 * shortfall / quantity if quantity > 0 else 0.0
+    return Check(
+        code=COMPLETION_INFEASIBLE,
+        severity="critical",
+        breach=shortfall >= 1 and pct >= config.infeasible_pct,
+        recovered=shortfall < 1 or pct < config.clear_ratio * config.infeasible_pct,
+        message=(
+            f"The order cannot complete under its participation cap: about {_shares(shortfall)} "
+            f"shares ({pct:.1f} %) would be left at the end. Raise the cap or extend the end."
+        ),
+        clear_message="Completion is feasible again under the participation cap.",
+        details={"shortfall_shares": round(shortfall), "shortfall_pct": pct},
+    )
+
+
+def _ratio_check(
+    *,
+    code: str,
+    what: str,
+    observed: float,
+    expected: float,
+    raise_ratio: float,
+    clear_ratio: float,
+    both_ways: bool,
+) -> Check:
+    # No forecast (0) and some volume counts as infinitely far; nothing against nothing is normal.
+    ratio = (math.inf if observed > 0 else 1.0) if expected <= 0 else observed / expected
+    high = ratio >= raise_ratio
+    low = both_ways and ratio <= 1.0 / raise_ratio
+    within = ratio < clear_ratio and (not both_ways or ratio > 1.0 / clear_ratio)
+    direction = "above" if ratio >= 1 else "below"
+    shown = "inf" if math.isinf(ratio) else f"{ratio:.2f}"
+    return Check(
+        code=code,
+        severity="warning",
+        breach=high or low,
+        recovered=within,
+        message=(
+            f"Observed {what} {observed:,.4g} is far {direction} the forecast {expected:,.4g} "
+            f"({shown} times)."
+        ),
+        clear_message=f"{what.capitalize()} is back near its forecast ({shown} times).",
+        details={
+            "observed": observed,
+            "forecast": expected,
+            "ratio": None if math.isinf(ratio) else ratio,
+        },
+    )
+
+
+def volume_shock(*, observed: float, forecast: float, config: AlertConfig) -> Check:
+    """A bin's volume far above or below its forecast (forecast made before the bin arrived)."""
+    return _ratio_check(
+        code=VOLUME_SHOCK,
+        what="volume",
+        observed=observed,
+        expected=forecast,
+        raise_ratio=config.volume_shock_ratio,
+        clear_ratio=config.volume_shock_clear,
+        both_ways=True,
+    )
+
+
+def spread_shock(*, observed: float, forecast: float, config: AlertConfig) -> Check:
+    """A bin's spread far wider than its forecast."""
+    return _ratio_check(
+        code=SPREAD_SHOCK,
+        what="spread",
+        observed=observed,
+        expected=forecast,
+        raise_ratio=config.spread_shock_ratio,
+        clear_ratio=config.spread_shock_clear,
+        both_ways=False,
+    )
+
+
+def limit_blocking(*, blocked: bool, side: str, limit: float | None, price: float | None) -> Check:
+    """The market is beyond the order's limit: the next bin's target is zero."""
+    beyond = "above" if side == "buy" else "below"
+    return Check(
+        code=LIMIT_BLOCKING,
+        severity="warning",
+        breach=blocked,
+        recovered=not blocked,
+        message=(
+            f"The market ({price}) is {beyond} the {side} limit {limit}: the next bin's target is "
+            "zero and the rest of the order is re-planned over the bins left."
+        ),
+        clear_message=f"The market ({price}) is back within the limit {limit}.",
+        details={"limit_price": limit, "price": price},
+    )
+
+
+def stale(*, age_seconds: float | None, bin_seconds: float, config: AlertConfig) -> Check:
+    """No bin for a symbol for more than ``stale_bins`` bin lengths (``None``: a bin just came)."""
+    limit = config.stale_bins * bin_seconds
+    breach = age_seconds is not None and age_seconds > limit
+    age_text = f"{age_seconds:.0f} s" if age_seconds is not None else "now"
+    return Check(
+        code=MARKET_DATA_STALE,
+        severity="critical",
+        breach=breach,
+        recovered=age_seconds is None,
+        message=(
+            f"No market bin for {age_text} (more than {config.stale_bins:g} bins): forecasts "
+            "and targets are running on old data. Check the market data feed."
+        ),
+        clear_message="Market bins are arriving again.",
+        details={"age_seconds": age_seconds, "limit_seconds": limit},
+    )
+
+
+def replan_moved(*, move_shares: float, quantity: float, config: AlertConfig) -> Check:
+    """A re-plan moved the cumulative schedule by ``move_shares`` in some bin."""
+    pct = 100.0 * abs(move_shares) / quantity if quantity > 0 else 0.0
+    return Check(
+        code=REPLAN_MOVED,
+        severity="info",
+        breach=pct >= config.replan_move_pct,
+        recovered=pct < config.clear_ratio * config.replan_move_pct,
+        message=(
+            f"The re-plan moved the schedule by up to {_shares(abs(move_shares))} shares "
+            f"({pct:.1f} % of the order) against the previous plan."
+        ),
+        clear_message=f"Re-plans are stable again (largest move {pct:.1f} % of the order).",
+        details={"move_shares": round(move_shares), "move_pct": pct},
+    )
+
+
+def fill_price_outside(*, price: float, low: float, high: float, config: AlertConfig) -> bool:
+    """Whether a fill price is more than the tolerance outside the bin's low-high range."""
+    tolerance = config.fill_price_tolerance_pct / 100.0
+    return price > high * (1.0 + tolerance) or price < low * (1.0 - tolerance)
+
+
+__all__ = [
+    "AHEAD_OF_PLAN",
+    "BEHIND_PLAN",
+    "COMPLETION_INFEASIBLE",
+    "DEFAULT_PROFILE",
+    "FILL_AFTER_CLOSE",
+    "FILL_DUPLICATE_CONFLICT",
+    "FILL_OVERFILL",
+    "FILL_PRICE_OUTSIDE",
+    "FILL_UNKNOWN_ORDER",
+    "FILL_WRONG_SIDE",
+    "LIMIT_BLOCKING",
+    "MARKET_DATA_STALE",
+    "ORDER_DONE",
+    "ORDER_EXPIRED",
+    "ORDER_HALTED",
+    "ORDER_RESUMED",
+    "REPLAN_MOVED",
+    "SPREAD_SHOCK",
+    "VOLUME_SHOCK",
+    "AlertBook",
+    "AlertConfig",
+    "Check",
+    "completion",
+    "deviation",
+    "event",
+    "fill_price_outside",
+    "limit_blocking",
+    "replan_moved",
+    "spread_shock",
+    "stale",
+    "volume_shock",
+]
