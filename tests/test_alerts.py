@@ -1,0 +1,197 @@
+"""Alert rules with hysteresis: each condition is raised once and cleared once."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from datetime import UTC, datetime
+
+import pytest
+
+from tracker import alerts
+from tracker.alerts import AlertBook, AlertConfig, Check
+from tracker.errors import InputError
+
+TS = datetime(2026, 3, 2, 15, 0, tzinfo=UTC)
+CONFIG = AlertConfig()
+
+
+def run(checks: list[Check]) -> list[str | None]:
+    """Feed checks through one book and return the transition each one caused."""
+    book = AlertBook()
+    result: list[str | None] = []
+    for check in checks:
+        message = book.apply(check, scope="A", order_id="A", symbol="ZEPH", ts=TS)
+        result.append(None if message is None else message.state)
+    return result
+
+
+def behind(gap: float) -> Check:
+    """The behind-plan check of a 100,000-share order, ``gap`` shares behind, 2,000 per bin."""
+    return alerts.deviation(
+        quantity=100_000, deviation_shares=gap, deviation_bins=gap / 2_000, config=CONFIG
+    )[0]
+
+
+def ahead(gap: float) -> Check:
+    """The ahead-of-plan check for the same order, ``gap`` shares ahead."""
+    return alerts.deviation(
+        quantity=100_000, deviation_shares=-gap, deviation_bins=-gap / 2_000, config=CONFIG
+    )[1]
+
+
+SCENARIOS: list[tuple[str, Callable[[float], Check], list[float], list[str | None]]] = [
+    # 5 % raises, below 2.5 % clears; 3 % and 4 % in between change nothing.
+    (
+        "behind-plan",
+        behind,
+        [0, 6_000, 7_000, 4_000, 3_000, 2_000, 1_000],
+        [None, "raised", None, None, None, "cleared", None],
+    ),
+    ("ahead-of-plan", ahead, [0, 5_000, 3_000, 2_400], [None, "raised", None, "cleared"]),
+    (
+        "behind-plan-flapping-around-threshold-raises-once",
+        behind,
+        [5_100, 4_900, 5_100, 4_900, 5_100],
+        ["raised", None, None, None, None],
+    ),
+    (
+        "completion-infeasible",
+        lambda s: alerts.completion(quantity=100_000, shortfall=s, config=CONFIG),
+        [0, 2_000, 1_000, 300, 100, 0],
+        [None, "raised", None, None, "cleared", None],
+    ),
+    (
+        "volume-shock-high",
+        lambda r: alerts.volume_shock(observed=r * 1_000, forecast=1_000, config=CONFIG),
+        [1.0, 3.5, 2.0, 1.4, 1.0],
+        [None, "raised", None, "cleared", None],
+    ),
+    (
+        "volume-shock-low",
+        lambda r: alerts.volume_shock(observed=r * 1_000, forecast=1_000, config=CONFIG),
+        [1.0, 0.2, 0.5, 0.8],
+        [None, "raised", None, "cleared"],
+    ),
+    (
+        "spread-shock",
+        lambda r: alerts.spread_shock(observed=r * 0.02, forecast=0.02, config=CONFIG),
+        [1.0, 0.1, 3.0, 2.0, 1.2],
+        [None, None, "raised", None, "cleared"],
+    ),
+    (
+        "limit-blocking",
+        lambda b: alerts.limit_blocking(blocked=bool(b), side="buy", limit=20.0, price=20.5),
+        [0, 1, 1, 1, 0, 0],
+        [None, "raised", None, None, "cleared", None],
+    ),
+    (
+        "market-data-stale",
+        lambda age: alerts.stale(
+            age_seconds=None if age < 0 else age, bin_seconds=300, config=CONFIG
+        ),
+        [300, 600, 601, 900, -1, 300],
+        [None, None, "raised", None, "cleared", None],
+    ),
+    (
+        "replan-moved",
+        lambda m: alerts.replan_moved(move_shares=m, quantity=100_000, config=CONFIG),
+        [1_000, 12_000, 8_000, 6_000, 4_000],
+        [None, "raised", None, None, "cleared"],
+    ),
+]
+
+
+@pytest.mark.parametrize(
+    ("rule", "values", "expected"),
+    [(rule, values, expected) for _, rule, values, expected in SCENARIOS],
+    ids=[name for name, *_ in SCENARIOS],
+)
+def test_condition_is_raised_once_and_cleared_once(
+    rule: Callable[[float], Check], values: list[float], expected: list[str | None]
+) -> None:
+    """A condition raises when it crosses the raise level and clears below the clear level."""
+    assert expected == run([rule(value) for value in values])
+
+
+def test_small_order_gap_below_share_minimum_does_not_raise() -> None:
+    """A 10 % gap of a 500-share order (50 shares) stays under the 100-share minimum."""
+    check = alerts.deviation(quantity=500, deviation_shares=50, deviation_bins=5.0, config=CONFIG)[
+        0
+    ]
+    assert not check.breach
+
+
+def test_gap_within_one_bin_of_trading_does_not_raise() -> None:
+    """A 6 % gap that is less than one bin of planned trading is not yet 'behind'."""
+    check = alerts.deviation(
+        quantity=100_000, deviation_shares=6_000, deviation_bins=0.8, config=CONFIG
+    )[0]
+    assert not check.breach
+
+
+def test_switching_from_behind_to_ahead_clears_then_raises() -> None:
+    """Jumping from far behind to far ahead clears behind_plan and raises ahead_of_plan."""
+    book = AlertBook()
+    seen = []
+    for gap in (8_000, -8_000):
+        for check in alerts.deviation(
+            quantity=100_000, deviation_shares=gap, deviation_bins=gap / 2_000, config=CONFIG
+        ):
+            message = book.apply(check, scope="A", order_id="A", symbol="ZEPH", ts=TS)
+            if message is not None:
+                seen.append((message.code, message.state))
+    expected = [
+        ("behind_plan", "raised"),
+        ("behind_plan", "cleared"),
+        ("ahead_of_plan", "raised"),
+    ]
+    assert expected == seen
+
+
+def test_scopes_are_independent() -> None:
+    """The same condition on two orders is raised for each of them."""
+    book = AlertBook()
+    raised = [
+        book.apply(behind(9_000), scope=scope, order_id=scope, symbol="ZEPH", ts=TS)
+        for scope in ("A", "B")
+    ]
+    expected = ["A", "B"]
+    assert expected == [m.order_id for m in raised if m is not None]
+
+
+def test_cleared_message_is_info_and_keeps_code() -> None:
+    """A clear carries the same code, severity info and a plain message."""
+    book = AlertBook()
+    book.apply(behind(9_000), scope="A", order_id="A", symbol="ZEPH", ts=TS)
+    message = book.apply(behind(0), scope="A", order_id="A", symbol="ZEPH", ts=TS)
+    assert message is not None
+    expected = ("behind_plan", "info", "cleared")
+    assert expected == (message.code, message.severity, message.state)
+
+
+def test_fill_price_outside_tolerance() -> None:
+    """A price more than 1 % outside the bin's range is flagged; inside the margin is not."""
+    verdicts = [
+        alerts.fill_price_outside(price=p, low=19.0, high=20.0, config=CONFIG)
+        for p in (19.5, 20.19, 20.21, 18.82, 18.80)
+    ]
+    expected = [False, False, True, False, True]
+    assert expected == verdicts
+
+
+@pytest.mark.parametrize(
+    ("changes", "field"),
+    [
+        ({"clear_ratio": 1.0}, "clear_ratio"),
+        ({"deviation_pct": -1.0}, "deviation_pct"),
+        ({"stale_bins": float("nan")}, "stale_bins"),
+        ({"volume_shock_clear": 4.0}, "volume_shock_clear"),
+        ({"deviation_shares": "100"}, "deviation_shares"),
+    ],
+    ids=["clear-ratio-one", "negative", "nan", "clear-above-raise", "string"],
+)
+def test_bad_threshold_names_the_field(changes: dict[str, object], field: str) -> None:
+    """An out-of-range threshold raises InputError naming it."""
+    with pytest.raises(InputError) as info:
+        AlertConfig(**changes)  # type: ignore[arg-type]
+    assert field == info.value.field
