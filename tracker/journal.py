@@ -55,6 +55,7 @@ __all__ = [
     "Durability",
     "Journal",
     "JournalError",
+    "published_through",
     "read_journal",
     "record_crc",
 ]
@@ -333,6 +334,26 @@ def _rows(cursor: sqlite3.Cursor) -> Iterable[tuple[int, str, bytes, str, int]]:
         if not batch:
             return
         yield from batch
+
+
+def published_through(path: str | Path) -> int:
+    """The journal's published-through mark, read without opening it for writing.
+
+    Raises:
+        JournalError: The file is missing or not a journal.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise JournalError(f"{path} does not exist; give the journal file written by 'tracker run'")
+    db = _connect(path, readonly=True)
+    try:
+        _check_format(db, path)
+        row = db.execute("SELECT value FROM meta WHERE key = 'published_through'").fetchone()
+    except sqlite3.Error as exc:
+        raise JournalError(f"cannot read {path}: {exc}") from exc
+    finally:
+        db.close()
+    return int(row[0]) if row else 0
 
 
 def read_journal(path: str | Path) -> Iterator[Record]:

@@ -1,0 +1,466 @@
+"""The MQTT bus of the live daemon: one connection that keeps coming back.
+
+Theory of operation
+-------------------
+:class:`Bus` owns the broker connection (aiomqtt over paho-mqtt). It connects with a *stable*
+client id and ``clean_session=False``, so the broker keeps our subscriptions and queues QoS 1
+messages while we are away; it subscribes at QoS 1, publishes a retained ``online`` health message
+(with a retained ``offline`` last will for a crash), and runs three loops per connection:
+
+* **reader** -- every message on one of our subscriptions becomes a :class:`Delivery` in the
+  bounded ``inbox``. Messages are acknowledged *manually*: paho would send the PUBACK as soon as a
+  message is read, before we have journaled it, and a crash in between would lose a fill the broker
+  thinks we have. So the daemon calls :meth:`Delivery.ack` only after the journal commit. Unacked
+  messages also make the broker stop sending at its in-flight window -- the back-pressure that
+  keeps the inbox bounded. When the inbox is full the reader waits (and says so in the log and
+  the health message) instead of growing a queue.
+* **writer** -- takes :class:`Outgoing` messages from the :class:`Outbox` in order and publishes
+  them at QoS 1, many in flight at once; each confirmed one is reported through ``on_published``.
+  When the connection drops, the unconfirmed ones go back to the front of the outbox and are sent
+  again after the reconnect (at least once, in order).
+* **heartbeat** -- re-publishes the retained health message every ``heartbeat_seconds``.
+
+A lost connection ends the three loops; the bus waits a jittered, doubling back-off
+(``reconnect_min_seconds`` .. ``reconnect_max_seconds``) and connects again. :meth:`Bus.close`
+asks it to stop reading, flush the outbox (within a timeout), publish ``offline`` and disconnect.
+
+Manual acknowledgement uses paho's ``manual_ack`` through aiomqtt's inner client (aiomqtt 2.x has
+no public switch for it yet; see aiomqtt issue #345, "Application-controlled acknowledgements").
+"""
+
+from __future__ import annotations
+
+import asyncio
+import collections
+import contextlib
+import json
+import random
+import ssl
+from collections.abc import Awaitable, Callable, Iterable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import aiomqtt
+import paho.mqtt.client as paho
+import structlog
+
+from tracker.config import BrokerSettings
+
+__all__ = [
+    "Bus",
+    "Delivery",
+    "Outbox",
+    "Outgoing",
+    "backoff_delays",
+    "topic_matches",
+]
+
+#: Seconds to wait for one PUBACK / SUBACK before the connection is considered broken.
+OPERATION_TIMEOUT = 15.0
+#: Most publications waiting for their PUBACK at once.
+MAX_IN_FLIGHT = 256
+#: Seconds between "inbox full" reminders while back-pressure lasts.
+BACKPRESSURE_REPORT_SECONDS = 5.0
+
+
+def topic_matches(topic: str, pattern: str) -> bool:
+    """Whether a topic matches a subscription filter (``+`` one level, ``#`` the rest)."""
+    topic_levels = topic.split("/")
+    for index, level in enumerate(pattern.split("/")):
+        if level == "#":
+            return True
+        if index >= len(topic_levels):
+            return False
+        if level != "+" and level != topic_levels[index]:
+            return False
+    return len(topic_levels) == len(pattern.split("/"))
+
+
+def backoff_delays(
+    minimum: float, maximum: float, rng: random.Random | None = None
+) -> Iterable[float]:
+    """Reconnect delays: doubling from ``minimum`` up to ``maximum``, each with full jitter.
+
+    "Full jitter" draws each delay uniformly between half the current step and the step, so a
+    fleet of daemons that lost the same broker does not reconnect in lock-step.
+    """
+    rng = rng or random.Random()
+    step = minimum
+    while True:
+        yield rng.uniform(step / 2, step)
+        step = min(maximum, step * 2)
+
+
+@dataclass(slots=True)
+class Delivery:
+    """One inbound message, not yet acknowledged to the broker.
+
+    Attributes:
+        topic, payload: As received.
+        retained: The broker sent it as a retained message.
+        qos: The QoS it was delivered with.
+    """
+
+    topic: str
+    payload: bytes
+    retained: bool = False
+    qos: int = 0
+    _ack: Callable[[], None] | None = None
+
+    def ack(self) -> None:
+        """Acknowledge to the broker (after the message is safely journaled)."""
+        if self._ack is not None:
+            ack, self._ack = self._ack, None
+            ack()
+
+
+@dataclass(frozen=True, slots=True)
+class Outgoing:
+    """One message to publish.
+
+    Attributes:
+        topic, payload, retain: What to publish (always QoS 1).
+        seq: The journal sequence number of the record that produced it (0: none).
+    """
+
+    topic: str
+    payload: bytes
+    retain: bool = False
+    seq: int = 0
+
+
+@dataclass
+class Outbox:
+    """A bounded FIFO of outgoing messages that survives reconnects.
+
+    Producers wait in :meth:`put` when it is full (back-pressure). The writer :meth:`take` s items,
+    which stay *in flight* until :meth:`done`; :meth:`requeue_in_flight` puts the unconfirmed ones
+    back at the front in their original order.
+    """
+
+    capacity: int = 10_000
+    _queue: collections.deque[Outgoing] = field(default_factory=collections.deque)
+    _in_flight: dict[int, Outgoing] = field(default_factory=dict)
+    _ticket: int = 0
+    _changed: asyncio.Condition = field(default_factory=asyncio.Condition)
+
+    def __len__(self) -> int:
+        return len(self._queue) + len(self._in_flight)
+
+    @property
+    def full(self) -> bool:
+        """No room for another message."""
+        return len(self) >= self.capacity
+
+    async def put(self, item: Outgoing, *, timeout: float | None = None) -> None:
+        """Add one message; wait while full (raises TimeoutError after ``timeout`` seconds)."""
+        async with self._changed:
+            await asyncio.wait_for(self._changed.wait_for(lambda: not self.full), timeout)
+            self._queue.append(item)
+            self._changed.notify_all()
+
+    def extend(self, items: Iterable[Outgoing]) -> None:
+        """Add messages without waiting, even past the capacity (recovery at start only)."""
+        self._queue.extend(items)
+
+    async def take(self) -> tuple[int, Outgoing]:
+        """The next message and its ticket; it stays in flight until :meth:`done`."""
+        async with self._changed:
+            await self._changed.wait_for(lambda: bool(self._queue))
+            item = self._queue.popleft()
+            self._ticket += 1
+            self._in_flight[self._ticket] = item
+            return self._ticket, item
+
+    async def done(self, ticket: int) -> None:
+        """The message of ``ticket`` was confirmed by the broker."""
+        async with self._changed:
+            self._in_flight.pop(ticket, None)
+            self._changed.notify_all()
+
+    async def requeue_in_flight(self) -> int:
+        """Put every unconfirmed message back at the front, in order; return how many."""
+        async with self._changed:
+            items = [self._in_flight[t] for t in sorted(self._in_flight)]
+            self._in_flight.clear()
+            self._queue.extendleft(reversed(items))
+            self._changed.notify_all()
+            return len(items)
+
+    async def wait_empty(self, timeout: float) -> bool:
+        """Wait until every message is confirmed; False if ``timeout`` seconds passed first."""
+        async with self._changed:
+            try:
+                await asyncio.wait_for(self._changed.wait_for(lambda: len(self) == 0), timeout)
+            except TimeoutError:
+                return False
+            return True
+
+
+class _Closing(Exception):
+    """Raised inside a connection to end it on purpose (after the flush)."""
+
+
+class Bus:
+    """The daemon's MQTT connection (see the module docstring).
+
+    Args:
+        broker: Where and how to connect.
+        client_id: Stable MQTT client id.
+        subscriptions: Topic filters to subscribe to at QoS 1.
+        inbox: Where deliveries go (bounded; the reader waits when it is full).
+        outbox: Where outgoing messages come from.
+        health_topic: Retained health topic (``{root}/health/{instance}``).
+        health: Called for the current health document (a JSON-able dict) at each heartbeat.
+        on_published: Called with each confirmed :class:`Outgoing`.
+        heartbeat_seconds: Interval of the health message.
+        reconnect_min_seconds, reconnect_max_seconds: Back-off bounds.
+    """
+
+    def __init__(
+        self,
+        broker: BrokerSettings,
+        *,
+        client_id: str,
+        subscriptions: Sequence[str],
+        inbox: asyncio.Queue[Delivery],
+        outbox: Outbox,
+        health_topic: str,
+        health: Callable[[], dict[str, Any]],
+        on_published: Callable[[Outgoing], Awaitable[None] | None] | None = None,
+        heartbeat_seconds: float = 10.0,
+        reconnect_min_seconds: float = 0.2,
+        reconnect_max_seconds: float = 30.0,
+    ) -> None:
+        self.broker = broker
+        self.client_id = client_id
+        self.subscriptions = tuple(subscriptions)
+        self.inbox = inbox
+        self.outbox = outbox
+        self.health_topic = health_topic
+        self._health = health
+        self._on_published = on_published
+        self.heartbeat_seconds = heartbeat_seconds
+        self.reconnect_min_seconds = reconnect_min_seconds
+        self.reconnect_max_seconds = reconnect_max_seconds
+        self.connected = asyncio.Event()
+        self.reading = True
+        self._close_requested = asyncio.Event()
+        self._stop_reading = asyncio.Event()
+        self._give_up = asyncio.Event()
+        self.connections = 0
+        self.backpressure = False
+        self.ignored = 0
+        self._log = structlog.get_logger("tracker.bus").bind(broker=broker.url)
+
+    # -- control ---------------------------------------------------------------------------------
+
+    def stop_reading(self) -> None:
+        """Take no more messages: what the broker sends from now on stays unacknowledged, so it
+        delivers it again on the next start."""
+        self._stop_reading.set()
+
+    def close(self) -> None:
+        """Flush the outbox, publish ``offline`` and disconnect; :meth:`run` then returns."""
+        self._stop_reading.set()
+        self._close_requested.set()
+
+    # -- the connection loop ---------------------------------------------------------------------
+
+    def _client(self) -> aiomqtt.Client:
+        broker = self.broker
+        tls_params = None
+        if broker.tls:
+            tls_params = aiomqtt.TLSParameters(
+                ca_certs=str(broker.ca) if broker.ca else None,
+                certfile=str(broker.cert) if broker.cert else None,
+                keyfile=str(broker.key) if broker.key else None,
+                cert_reqs=ssl.CERT_REQUIRED,
+                tls_version=ssl.PROTOCOL_TLS_CLIENT,
+            )
+        client = aiomqtt.Client(
+            broker.host,
+            broker.port,
+            identifier=self.client_id,
+            clean_session=False,
+            username=broker.username,
+            password=broker.password.reveal() if broker.password else None,
+            will=aiomqtt.Will(self.health_topic, self._offline(), qos=1, retain=True),
+            keepalive=broker.keepalive,
+            timeout=OPERATION_TIMEOUT,
+            tls_params=tls_params,
+            max_inflight_messages=MAX_IN_FLIGHT,
+        )
+        # Acknowledge only after the journal commit (see the module docstring). Must be set before
+        # connecting: a persistent session's queued messages arrive right after CONNACK.
+        client._client.manual_ack_set(True)
+        # aiomqtt warns past 10 pending calls; we keep up to MAX_IN_FLIGHT on purpose.
+        client.pending_calls_threshold = MAX_IN_FLIGHT + 16
+        return client
+
+    def _offline(self) -> bytes:
+        document = {"type": "health", "status": "offline", "client_id": self.client_id}
+        return json.dumps(document, separators=(",", ":")).encode()
+
+    def _online(self) -> bytes:
+        document = {"type": "health", "status": "online", "client_id": self.client_id}
+        document.update(self._health())
+        return json.dumps(document, separators=(",", ":"), default=str).encode()
+
+    async def run(self) -> None:
+        """Connect, serve, reconnect with back-off; return after :meth:`close` has flushed."""
+        delays = iter(backoff_delays(self.reconnect_min_seconds, self.reconnect_max_seconds))
+        while True:
+            connections = self.connections
+            try:
+                await self._connection()
+                return  # closed on purpose: flushed, offline published
+            except aiomqtt.MqttError as exc:
+                error = exc
+            finally:
+                self.connected.clear()
+            if self.connections > connections:  # it was up: start the back-off afresh
+                delays = iter(
+                    backoff_delays(self.reconnect_min_seconds, self.reconnect_max_seconds)
+                )
+            requeued = await self.outbox.requeue_in_flight()
+            delay = next(delays)
+            self._log.warning(
+                "connection lost" if self.connections > connections else "cannot connect",
+                error=f"{type(error).__name__}: {error}",
+                retry_in=round(delay, 2),
+                requeued=requeued,
+            )
+            if self._close_requested.is_set() and len(self.outbox) == 0:
+                return
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._give_up.wait(), delay)
+            if self._give_up.is_set():
+                return
+
+    async def _connection(self) -> None:
+        """One connection, from connect to close or loss (raised as one MqttError)."""
+        client = self._client()
+        try:
+            async with client:
+                self.connections += 1
+                self.connected.set()
+                self._log.info("connected", connection=self.connections)
+                await self._serve(client)
+        except BaseExceptionGroup as group:
+            lost, other = group.split(aiomqtt.MqttError)
+            if other is not None or lost is None:
+                raise
+            first: BaseException = lost
+            while isinstance(first, BaseExceptionGroup):
+                first = first.exceptions[0]
+            raise first from None
+
+    def give_up(self) -> None:
+        """Stop reconnecting (the flush timed out while the broker is away; the journal has it)."""
+        self._give_up.set()
+
+    async def _serve(self, client: aiomqtt.Client) -> None:
+        await client.subscribe([(topic, 1) for topic in self.subscriptions])
+        await client.publish(self.health_topic, self._online(), qos=1, retain=True)
+        try:
+            async with asyncio.TaskGroup() as group:
+                if not self._stop_reading.is_set():
+                    reader = group.create_task(self._read(client), name="bus.reader")
+                    group.create_task(self._stop_reader(reader), name="bus.reader-stop")
+                group.create_task(self._write(client), name="bus.writer")
+                group.create_task(self._heartbeat(client), name="bus.heartbeat")
+                group.create_task(self._closer(client), name="bus.closer")
+        except* _Closing:
+            pass
+
+    async def _stop_reader(self, reader: asyncio.Task[None]) -> None:
+        await self._stop_reading.wait()
+        reader.cancel()
+
+    async def _closer(self, client: aiomqtt.Client) -> None:
+        # The daemon calls close() after the outbox is flushed (or the flush timed out).
+        await self._close_requested.wait()
+        await client.publish(self.health_topic, self._offline(), qos=1, retain=True)
+        self._log.info("offline published; disconnecting")
+        raise _Closing
+
+    async def _read(self, client: aiomqtt.Client) -> None:
+        # A persistent session can get messages before we subscribe again, and amqtt sends
+        # retained messages of other clients' subscriptions: keep only what we asked for.
+        async for message in client.messages:
+            topic = message.topic.value
+            if not any(topic_matches(topic, pattern) for pattern in self.subscriptions):
+                self.ignored += 1
+                self._log.debug("ignored message outside our subscriptions", topic=topic)
+                continue
+            payload = message.payload
+            if isinstance(payload, str):
+                payload = payload.encode("utf-8")
+            elif not isinstance(payload, bytes | bytearray):
+                payload = b"" if payload is None else str(payload).encode("utf-8")
+            delivery = Delivery(
+                topic=topic,
+                payload=bytes(payload),
+                retained=bool(message.retain),
+                qos=message.qos,
+                _ack=_acker(client, message.mid, message.qos),
+            )
+            await self._put(delivery)
+
+    async def _put(self, delivery: Delivery) -> None:
+        try:
+            self.inbox.put_nowait(delivery)
+            return
+        except asyncio.QueueFull:
+            pass
+        self.backpressure = True
+        self._log.warning("inbox full: back-pressure", capacity=self.inbox.maxsize)
+        while True:
+            try:
+                await asyncio.wait_for(self.inbox.put(delivery), BACKPRESSURE_REPORT_SECONDS)
+                break
+            except TimeoutError:
+                self._log.warning("inbox still full", capacity=self.inbox.maxsize)
+        self.backpressure = False
+
+    async def _write(self, client: aiomqtt.Client) -> None:
+        slots = asyncio.Semaphore(MAX_IN_FLIGHT)
+        async with asyncio.TaskGroup() as group:
+            while True:
+                await slots.acquire()
+                ticket, item = await self.outbox.take()
+                # paho queues the PUBLISH synchronously inside client.publish() before its first
+                # await, so starting the tasks in order keeps the messages in order on the wire.
+                group.create_task(self._publish(client, ticket, item, slots))
+
+    async def _publish(
+        self, client: aiomqtt.Client, ticket: int, item: Outgoing, slots: asyncio.Semaphore
+    ) -> None:
+        try:
+            await client.publish(item.topic, item.payload, qos=1, retain=item.retain)
+        finally:
+            slots.release()
+        await self.outbox.done(ticket)
+        if self._on_published is not None:
+            result = self._on_published(item)
+            if result is not None:
+                await result
+
+    async def _heartbeat(self, client: aiomqtt.Client) -> None:
+        while True:
+            await asyncio.sleep(self.heartbeat_seconds)
+            await client.publish(self.health_topic, self._online(), qos=1, retain=True)
+
+
+def _acker(client: aiomqtt.Client, mid: int, qos: int) -> Callable[[], None] | None:
+    if qos == 0:
+        return None
+    inner: paho.Client = client._client
+
+    def ack() -> None:
+        # After a reconnect this is a different connection: the broker re-sends the message
+        # (redelivery), so an ack on the old client is moot and paho just returns an error code.
+        inner.ack(mid, qos)
+
+    return ack

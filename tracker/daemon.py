@@ -1,0 +1,528 @@
+"""The live daemon: MQTT in, journal, engine, MQTT out -- and back on its feet after a crash.
+
+Theory of operation
+-------------------
+Everything the engine sees passes through one loop, the *processor*, in one order:
+
+1. take what is waiting in the bounded inbox (deliveries from :class:`tracker.bus.Bus`, tick
+   requests from the timer), at most ``batch_size`` at a time;
+2. append them to the :class:`tracker.journal.Journal` in one transaction and commit it (durably,
+   per the journal's policy), each with the receive time of the daemon's clock;
+3. acknowledge them to the broker (only now: a crash before this line makes the broker deliver
+   them again, and a redelivered copy changes nothing);
+4. feed each journaled record, exactly as journaled, to a :class:`tracker.replay.Replayer` -- the
+   same code ``tracker replay`` runs -- which decodes it (or rejects it with a reason), skips exact
+   redeliveries, and hands it to :meth:`Engine.handle`;
+5. put every output in the outbox, which the bus publishes at QoS 1 (status retained).
+
+Because live processing *is* a replay of the journal as it grows, a replay of the journal gives
+the same outputs, message for message. On start the daemon replays the whole journal into a fresh
+engine before it connects; outputs of records after the journal's ``published_through`` mark
+(which trails the broker's confirmations) are published again, so a crash loses no output either
+(some may arrive twice: QoS 1 is at-least-once).
+
+Time: the engine learns that time passes from :class:`tracker.wire.Tick` events, which only this
+shell makes: one when the daemon starts (so a journal always holds ticks and a replay never invents
+any) and one every ``tick_seconds`` of the daemon's clock. Ticks are journaled like messages. The
+clock is the wall clock in UTC, or a simulated one (``clock_start`` and ``clock_speed``, for the
+demo); either way the receive times it stamps never go backwards.
+
+Limits at the edge: a payload over ``max_payload_bytes`` is journaled as a short note saying so
+(not as JSON, so it is rejected, live and in replay alike, and its error record tells the sender
+what happened); ids are checked by :func:`tracker.wire.decode` before any is used in a topic name;
+the inbox and the outbox are bounded and wait (back-pressure, logged and shown in the health
+message) rather than grow.
+
+Stopping (SIGTERM / SIGINT through :meth:`Daemon.stop`): stop taking messages, finish those in the
+inbox, wait for the outbox to be confirmed (``flush_seconds``), publish ``offline`` on the retained
+health topic, disconnect, write the summary, close the journal.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import fcntl
+import os
+import time as _time
+from collections.abc import Callable, Iterable
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from types import TracebackType
+from typing import IO, TYPE_CHECKING, Any, Self
+
+import structlog
+
+from tracker.bus import Bus, Delivery, Outbox, Outgoing
+from tracker.config import Settings
+from tracker.errors import InputError
+from tracker.journal import Journal
+from tracker.records import Record
+from tracker.replay import EngineLike, Replayer, dumps_summary, finish_summary
+from tracker.wire import (
+    ErrorMessage,
+    Outbound,
+    StatusMessage,
+    Tick,
+    encode,
+    topic_of,
+)
+
+if TYPE_CHECKING:
+    from tracker.engine import Engine
+
+__all__ = ["Daemon", "build_engine", "format_ts", "inbound_topics"]
+
+#: Seconds allowed, on a clean stop, for the outbox to be confirmed by the broker.
+FLUSH_SECONDS = 15.0
+#: Seconds allowed for each stage of a clean stop other than the flush.
+STAGE_SECONDS = 15.0
+#: Capacity of the outbox (outputs waiting for the broker's confirmation).
+OUTBOX_CAPACITY = 20_000
+
+
+def format_ts(moment: datetime) -> str:
+    """A receive time as the journal keeps it: ISO 8601 in UTC with microseconds and a ``Z``."""
+    return moment.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def inbound_topics(root: str) -> tuple[str, ...]:
+    """The topic filters the daemon subscribes to (never the tick topic: ticks are ours)."""
+    return (f"{root}/orders/+", f"{root}/fills/+", f"{root}/bins/+", f"{root}/control")
+
+
+def build_engine(settings: Settings) -> Engine:
+    """The engine the settings ask for: thresholds from ``[engine]``, profiles from the folder."""
+    from tracker.cli.replay import load_profiles
+    from tracker.engine import Engine, EngineConfig
+
+    config = EngineConfig.from_mapping(settings.engine) if settings.engine else None
+    profiles = load_profiles(settings.profiles) if settings.profiles is not None else {}
+    return Engine(config=config, profiles=profiles)
+
+
+class _TickRequest:
+    """A request from the timer; the processor turns it into a Tick at journal time."""
+
+    __slots__ = ()
+
+
+_TICK = _TickRequest()
+
+
+class _Clock:
+    """The daemon's clock: wall (UTC) or simulated; never earlier than ``floor``."""
+
+    def __init__(self, settings: Settings, floor: datetime | None) -> None:
+        self.speed = settings.clock_speed
+        self.simulated = settings.clock_start is not None
+        origin = settings.clock_start
+        if origin is not None and floor is not None and floor > origin:
+            origin = floor  # a restarted simulation resumes where the journal stopped
+        self._origin = origin
+        self._started = _time.monotonic()
+        self._floor = floor
+
+    def __call__(self) -> datetime:
+        if self._origin is not None:
+            elapsed = (_time.monotonic() - self._started) * self.speed
+            now = self._origin + timedelta(seconds=elapsed)
+        else:
+            now = datetime.now(UTC)
+        if self._floor is not None and now < self._floor:
+            now = self._floor
+        self._floor = now
+        return now
+
+    def wall_seconds(self, clock_seconds: float) -> float:
+        """How many wall-clock seconds ``clock_seconds`` of this clock take."""
+        return clock_seconds / self.speed if self.simulated else clock_seconds
+
+
+class Daemon:
+    """The live daemon as an async context manager (see the module docstring).
+
+    Args:
+        settings: What to connect to and where to journal.
+        engine: The engine to drive; built from the settings when ``None``.
+        on_output: Called with every output as it is queued for publication (the demo's live
+            table uses it; also handy in tests).
+
+    Example::
+
+        async with Daemon(settings) as daemon:
+            loop.add_signal_handler(signal.SIGTERM, daemon.stop)
+            await daemon.run()
+    """
+
+    def __init__(
+        self,
+        settings: Settings,
+        *,
+        engine: EngineLike | None = None,
+        on_output: Callable[[Outbound], None] | None = None,
+    ) -> None:
+        self.settings = settings
+        self.root = settings.root
+        self._engine_given = engine
+        self._on_output = on_output
+        self._log = structlog.get_logger("tracker.daemon").bind(instance=settings.instance)
+        self.inbox: asyncio.Queue[Delivery | _TickRequest] = asyncio.Queue(settings.queue_size)
+        self.outbox = Outbox(capacity=OUTBOX_CAPACITY)
+        self._stopping = asyncio.Event()
+        self._draining = False
+        self._lock_file: IO[str] | None = None
+        self._journal: Journal | None = None
+        self._replayer: Replayer | None = None
+        self._clock: _Clock | None = None
+        self._unconfirmed: dict[int, int] = {}  # journal seq -> outputs not yet confirmed
+        self._applied = 0
+        self._persisted_mark = 0
+        self.recovered = 0
+        self.republished = 0
+        self.stopped_cleanly = False
+        self.bus = Bus(
+            settings.broker,
+            client_id=settings.client_id,
+            subscriptions=inbound_topics(settings.root),
+            inbox=self.inbox,  # type: ignore[arg-type]
+            outbox=self.outbox,
+            health_topic=f"{settings.root}/health/{settings.instance}",
+            health=self.health,
+            on_published=self._confirmed,
+            heartbeat_seconds=settings.heartbeat_seconds,
+            reconnect_min_seconds=settings.reconnect_min_seconds,
+            reconnect_max_seconds=settings.reconnect_max_seconds,
+        )
+
+    # -- lifecycle -------------------------------------------------------------------------------
+
+    async def __aenter__(self) -> Self:
+        self._lock()
+        try:
+            self._journal = Journal(self.settings.journal, durability=self.settings.durability)
+            if self._journal.dropped_tail:
+                self._log.warning(
+                    "dropped a damaged last journal record", count=self._journal.dropped_tail
+                )
+            engine = (
+                self._engine_given
+                if self._engine_given is not None
+                else build_engine(self.settings)
+            )
+            self.engine: EngineLike = engine
+            self._replayer = Replayer(engine, root=self.root, derive_ticks=False)
+            floor = _parse_ts(self._journal.last_ts) if self._journal.last_ts else None
+            self._clock = _Clock(self.settings, floor)
+            self._recover()
+        except BaseException:
+            self._close_journal()
+            self._unlock()
+            raise
+        return self
+
+    async def __aexit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        try:
+            if self._journal is not None:
+                self._journal.mark_published(self.published_through)
+            if exc_type is None and self.settings.summary is not None:
+                self.write_summary(self.settings.summary)
+        finally:
+            self._close_journal()
+            self._unlock()
+
+    def _lock(self) -> None:
+        path = Path(f"{self.settings.journal}.lock")
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            handle = open(path, "w")  # noqa: SIM115 -- held open for the daemon's lifetime
+        except OSError as exc:
+            raise InputError(f"cannot create {path}: {exc.strerror}", field="journal") from exc
+        try:
+            fcntl.flock(handle.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            handle.close()
+            raise InputError(
+                f"another tracker daemon is using {self.settings.journal} (it holds {path}); stop "
+                "it first or give this one its own --journal",
+                field="journal",
+            ) from None
+        handle.write(f"{os.getpid()}\n")
+        handle.flush()
+        self._lock_file = handle
+
+    def _unlock(self) -> None:
+        if self._lock_file is not None:
+            self._lock_file.close()
+            self._lock_file = None
+
+    def _close_journal(self) -> None:
+        if self._journal is not None:
+            self._journal.close()
+            self._journal = None
+
+    @property
+    def journal(self) -> Journal:
+        """The open journal."""
+        assert self._journal is not None, "use the daemon inside 'async with'"
+        return self._journal
+
+    def stop(self) -> None:
+        """Ask for an orderly stop (safe to call from a signal handler, more than once)."""
+        if not self._stopping.is_set():
+            self._log.info("stop requested")
+        self._stopping.set()
+
+    # -- recovery --------------------------------------------------------------------------------
+
+    def _recover(self) -> None:
+        """Replay the journal into the engine; queue outputs not known to be published."""
+        assert self._replayer is not None
+        mark = self.journal.published_through
+        self._persisted_mark = mark
+        for record in self.journal.records():
+            outputs = self._feed(record)
+            self.recovered += 1
+            if record.line > mark:
+                self.republished += len(outputs)
+                self._queue_now(record.line, outputs)
+            self._applied = record.line
+        if self.recovered:
+            self._log.info(
+                "recovered from journal",
+                records=self.recovered,
+                republish=self.republished,
+                last_seq=self._applied,
+            )
+
+    def _queue_now(self, seq: int, outputs: Iterable[Outbound]) -> None:
+        items = [self._outgoing(seq, out) for out in outputs]
+        if items:
+            self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
+            self.outbox.extend(items)
+
+    # -- the loops -------------------------------------------------------------------------------
+
+    async def run(self) -> None:
+        """Serve until :meth:`stop`; then drain, flush, go offline (see the module docstring)."""
+        self._log.info(
+            "starting",
+            broker=self.settings.broker.url,
+            root=self.root,
+            journal=str(self.settings.journal),
+            client_id=self.settings.client_id,
+        )
+        await self.inbox.put(_TICK)  # the start tick (see "Time" above)
+        async with asyncio.TaskGroup() as group:
+            bus = group.create_task(self.bus.run(), name="daemon.bus")
+            processor = group.create_task(self._process(), name="daemon.processor")
+            ticker = None
+            if self.settings.tick_seconds > 0:
+                ticker = group.create_task(self._tick(), name="daemon.ticker")
+            await self._stopping.wait()
+            # 1. stop taking messages (the broker keeps what it has not had our ack for)
+            self.bus.stop_reading()
+            if ticker is not None:
+                ticker.cancel()
+            # 2. finish what is in the inbox
+            self._draining = True
+            await _within(processor, STAGE_SECONDS, self._log, "draining the inbox")
+            # 3. flush: wait for the broker to confirm every output
+            if not await self.outbox.wait_empty(FLUSH_SECONDS):
+                self._log.warning(
+                    "outputs not confirmed by the broker; they are journaled and will be "
+                    "published again on the next start",
+                    pending=len(self.outbox),
+                )
+                self.bus.give_up()
+            # 4. publish offline, disconnect
+            self.bus.close()
+            await _within(bus, STAGE_SECONDS, self._log, "disconnecting")
+        self.stopped_cleanly = True
+        self._log.info(
+            "stopped", journal_seq=self._applied, published_through=self.published_through
+        )
+
+    async def _tick(self) -> None:
+        assert self._clock is not None
+        interval = self._clock.wall_seconds(self.settings.tick_seconds)
+        while True:
+            await asyncio.sleep(interval)
+            if self.inbox.full():
+                continue  # time still passes: the next tick says so; no need to wait in line
+            self.inbox.put_nowait(_TICK)
+
+    async def _process(self) -> None:
+        batch_size = self.settings.batch_size
+        while True:
+            try:
+                first = await asyncio.wait_for(self.inbox.get(), timeout=0.25)
+            except TimeoutError:
+                if self._draining:
+                    return
+                continue
+            batch = [first]
+            while len(batch) < batch_size:
+                try:
+                    batch.append(self.inbox.get_nowait())
+                except asyncio.QueueEmpty:
+                    break
+            await self._apply(batch)
+
+    async def _apply(self, batch: list[Delivery | _TickRequest]) -> None:
+        assert self._clock is not None
+        ts = format_ts(self._clock())
+        rows: list[tuple[str, bytes, str]] = []
+        for item in batch:
+            if isinstance(item, _TickRequest):
+                tick = Tick(ts=_parse_ts(ts))
+                rows.append((f"{self.root}/tick", encode(tick), ts))
+            else:
+                rows.append((item.topic, self._limited(item), ts))
+        seqs = self.journal.append_many(rows, published_through=self._mark_to_persist())
+        for item in batch:
+            if isinstance(item, Delivery):
+                item.ack()
+        for seq, (topic, payload, _) in zip(seqs, rows, strict=True):
+            outputs = self._feed(Record(line=seq, topic=topic, payload=payload, ts=ts))
+            self._applied = seq
+            items = [self._outgoing(seq, out) for out in outputs]
+            if items:
+                self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
+                for item in items:
+                    await self._put_out(item)
+
+    def _limited(self, delivery: Delivery) -> bytes:
+        """The payload to journal: as received, or a note when it is over the size limit."""
+        limit = self.settings.max_payload_bytes
+        size = len(delivery.payload)
+        if size <= limit:
+            return delivery.payload
+        self._log.warning(
+            "payload over the size limit", topic=delivery.topic, size=size, limit=limit
+        )
+        head = delivery.payload[:120].decode("utf-8", errors="replace")
+        # Not JSON on purpose: it is rejected (live and in replay) and its error record says why.
+        note = (
+            f"payload of {size} bytes is over the limit of {limit} bytes and was not read; "
+            f"send smaller messages (it began: {head!r})"
+        )
+        return note.encode("utf-8")
+
+    def _feed(self, record: Record) -> list[Outbound]:
+        assert self._replayer is not None
+        try:
+            outputs = self._replayer.feed(record)
+        except Exception as exc:  # a bug of ours must not stop the desk's other orders
+            self._log.exception("engine failed on a message", topic=record.topic, seq=record.line)
+            reason = (
+                f"internal error while handling this message ({type(exc).__name__}); it was not "
+                "applied -- please report it with the journal"
+            )
+            payload = (
+                record.payload if isinstance(record.payload, bytes | str) else str(record.payload)
+            )
+            error = self.engine.reject(record.topic, payload, reason, _parse_ts(record.ts or ""))
+            outputs = [error.model_copy(update={"line": record.line})]
+        for out in outputs:
+            if isinstance(out, ErrorMessage):
+                self._log.info(
+                    "rejected",
+                    topic=out.topic,
+                    order_id=out.order_id,
+                    reason=out.reason,
+                    seq=record.line,
+                )
+            if self._on_output is not None:
+                self._on_output(out)
+        return outputs
+
+    def _outgoing(self, seq: int, message: Outbound) -> Outgoing:
+        return Outgoing(
+            topic=topic_of(message, self.root),
+            payload=encode(message),
+            retain=isinstance(message, StatusMessage),
+            seq=seq,
+        )
+
+    async def _put_out(self, item: Outgoing) -> None:
+        if not self.outbox.full:
+            await self.outbox.put(item)
+            return
+        self._log.warning("outbox full: back-pressure", capacity=self.outbox.capacity)
+        while True:
+            try:
+                await self.outbox.put(item, timeout=5.0)
+                return
+            except TimeoutError:
+                self._log.warning("outbox still full", connected=self.bus.connected.is_set())
+
+    # -- confirmations ---------------------------------------------------------------------------
+
+    def _confirmed(self, item: Outgoing) -> None:
+        left = self._unconfirmed.get(item.seq)
+        if left is None:
+            return
+        if left <= 1:
+            del self._unconfirmed[item.seq]
+        else:
+            self._unconfirmed[item.seq] = left - 1
+
+    @property
+    def published_through(self) -> int:
+        """Highest journal seq whose outputs (and all before it) the broker has confirmed."""
+        if self._unconfirmed:
+            return next(iter(self._unconfirmed)) - 1
+        return self._applied
+
+    def _mark_to_persist(self) -> int | None:
+        mark = self.published_through
+        if mark == self._persisted_mark:
+            return None
+        self._persisted_mark = mark
+        return mark
+
+    # -- reporting -------------------------------------------------------------------------------
+
+    def health(self) -> dict[str, Any]:
+        """The health document's live fields (the bus adds status and client id)."""
+        return {
+            "instance": self.settings.instance,
+            "ts": format_ts(datetime.now(UTC)),
+            "journal_seq": self._applied,
+            "published_through": self.published_through,
+            "inbox": self.inbox.qsize(),
+            "inbox_capacity": self.inbox.maxsize,
+            "outbox": len(self.outbox),
+            "backpressure": self.bus.backpressure or self.outbox.full,
+        }
+
+    def summary(self) -> dict[str, Any]:
+        """The engine's summary with the replay counts, as ``tracker replay`` writes it."""
+        assert self._replayer is not None
+        return finish_summary(self.engine, self._replayer)
+
+    def write_summary(self, path: Path) -> Path:
+        """Write :meth:`summary` as ``summary.json`` text to ``path``."""
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(dumps_summary(self.summary()), encoding="utf-8")
+        return path
+
+
+async def _within(task: asyncio.Task[Any], seconds: float, log: Any, what: str) -> None:
+    """Wait for a task for at most ``seconds``; cancel it (and say so) if it takes longer."""
+    done, _ = await asyncio.wait({task}, timeout=seconds)
+    if not done:
+        log.warning("stage timed out; cancelling", stage=what, seconds=seconds)
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+
+
+def _parse_ts(text: str) -> datetime:
+    return datetime.fromisoformat(text).astimezone(UTC)
