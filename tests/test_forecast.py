@@ -1,0 +1,143 @@
+"""The intraday forecast: volume scale with shrinkage, spread and volatility ratios."""
+
+from __future__ import annotations
+
+from datetime import date
+
+import numpy as np
+import pytest
+
+from tracker.errors import InputError
+from tracker.liquidity import (
+    VOLUME_SCALE_BOUNDS,
+    ObservedBin,
+    Profile,
+    default_profile,
+    forecast,
+)
+from tracker.market import simulate_days, trading_days, true_profile
+from tracker.session import Session
+
+DAYS = 200
+CHECKPOINTS = (0, 6, 12, 24, 39)
+
+
+def _days(scales: np.ndarray, seed: int) -> np.ndarray:
+    """Per-bin volumes (days x 78) of invented full days with the given day scales (the truth)."""
+    count = scales.shape[0]
+    frame = simulate_days(
+        "ZEPH",
+        trading_days(date(2026, 1, 5), count),
+        np.random.default_rng(seed),
+        volume_scales=scales,
+        open_bins=[(0, 78)] * count,
+    )
+    return frame.volume.to_numpy(np.float64).reshape(count, 78)
+
+
+def _remaining_errors(volumes: np.ndarray, profile: Profile, seen: int) -> tuple[float, float]:
+    """Mean absolute relative error of remaining-day volume: (forecast, unadjusted profile)."""
+    adjusted, unadjusted = [], []
+    for day in volumes:
+        today = forecast(profile, {i: ObservedBin(float(day[i])) for i in range(seen)})
+        actual = day[seen:].sum()
+        adjusted.append(abs(today.volume[seen:].sum() / actual - 1.0))
+        unadjusted.append(abs(profile.expected_volume[seen:].sum() / actual - 1.0))
+    return float(np.mean(adjusted)), float(np.mean(unadjusted))
+
+
+@pytest.fixture(scope="module")
+def normal_days() -> np.ndarray:
+    """Invented days whose volume scale is log-normal (sd 0.3) around the profile."""
+    scales = np.exp(np.random.default_rng(3).standard_normal(DAYS) * 0.3)
+    return _days(scales, seed=4)
+
+
+def test_remaining_volume_error_falls_through_the_morning(normal_days: np.ndarray) -> None:
+    """The error of the remaining-day volume forecast falls as bins are observed (to midday)."""
+    # After midday the remaining volume is the sum of few noisy bins and its relative error grows
+    # again whatever the scale estimate; the day scale itself is learnt by then.
+    errors = [_remaining_errors(normal_days, true_profile("ZEPH"), k)[0] for k in CHECKPOINTS]
+    assert sorted(errors, reverse=True) == errors
+
+
+@pytest.mark.parametrize("shock", [2.0, 0.5], ids=["double-volume", "half-volume"])
+@pytest.mark.parametrize("seen", [6, 12, 39, 66], ids=lambda k: f"after-{k}-bins")
+def test_forecast_beats_unadjusted_profile_on_shock_days(shock: float, seen: int) -> None:
+    """On days with a volume shock the forecast beats the unadjusted profile."""
+    volumes = _days(np.full(60, shock), seed=int(shock * 10) + seen)
+    adjusted, unadjusted = _remaining_errors(volumes, true_profile("ZEPH"), seen)
+    assert adjusted < unadjusted
+
+
+def test_no_observation_is_the_profile() -> None:
+    """With nothing observed the forecast is the profile's expected volume."""
+    profile = default_profile("ZEPH")
+    np.testing.assert_array_equal(profile.expected_volume, forecast(profile, {}).volume)
+
+
+def test_scale_is_shrunk_toward_one_early() -> None:
+    """Double volume in the first bin gives log s = w log 2 with w = f / (f + 0.05)."""
+    profile = default_profile("ZEPH")
+    first = float(profile.expected_volume[0])
+    today = forecast(profile, {0: ObservedBin(2 * first)})
+    fraction = float(profile.volume_share[0])
+    expected = 2.0 ** (fraction / (fraction + 0.05))
+    assert expected == pytest.approx(today.volume_scale)
+
+
+def test_scale_follows_the_observed_ratio_late() -> None:
+    """After most of the day the scale is close to the observed ratio."""
+    profile = default_profile("ZEPH")
+    observed = {i: ObservedBin(1.5 * float(v)) for i, v in enumerate(profile.expected_volume[:60])}
+    assert 1.5 == pytest.approx(forecast(profile, observed).volume_scale, rel=0.05)
+
+
+def test_scale_is_bounded() -> None:
+    """A day with 100 times the volume is capped at the upper bound."""
+    profile = default_profile("ZEPH")
+    observed = {i: ObservedBin(100 * float(v)) for i, v in enumerate(profile.expected_volume[:40])}
+    assert VOLUME_SCALE_BOUNDS[1] == forecast(profile, observed).volume_scale
+
+
+def test_observed_bins_keep_what_was_seen() -> None:
+    """Observed bins hold the observed volume and spread."""
+    today = forecast(default_profile("ZEPH"), {0: ObservedBin(12_345.0, spread=0.07)})
+    assert (12_345.0, 0.07) == (today.volume[0], today.spread[0])
+
+
+def test_wide_spreads_raise_the_spread_forecast() -> None:
+    """Spreads twice the profile in recent bins raise the forecast spread, shrunk: 1 < r < 2."""
+    profile = default_profile("ZEPH")
+    observed = {
+        i: ObservedBin(float(profile.expected_volume[i]), spread=2 * float(profile.spread[i]))
+        for i in range(12)
+    }
+    ratio = forecast(profile, observed).spread_ratio
+    expected = 2.0 ** (12 / (12 + 6))
+    assert expected == pytest.approx(ratio)
+
+
+def test_volatility_ratio_from_ranges() -> None:
+    """High-low ranges implying twice the profile volatility give a shrunk ratio 2^(m/(m+m0))."""
+    profile = default_profile("ZEPH")
+    observed = {}
+    for i in range(12):
+        # Parkinson: ln(H/L) = sigma * sqrt(4 ln 2) makes the bin's estimate exactly sigma.
+        log_range = 2 * float(profile.volatility[i]) * np.sqrt(4 * np.log(2))
+        observed[i] = ObservedBin(1000.0, high=50.0 * np.exp(log_range), low=50.0)
+    expected = 2.0 ** (12 / (12 + 6))
+    assert expected == pytest.approx(forecast(profile, observed).volatility_ratio)
+
+
+def test_forecast_mid_session_for_symbol_without_profile() -> None:
+    """A symbol without a profile forecasts from the default, from any bin of the day."""
+    session = Session()
+    today = forecast(default_profile("NEWCO", session), {30: ObservedBin(5_000.0)})
+    assert (78, (30,)) == (today.volume.shape[0], today.observed)
+
+
+def test_observed_index_outside_session_is_rejected() -> None:
+    """An observed bin index outside the session raises InputError."""
+    with pytest.raises(InputError):
+        forecast(default_profile("ZEPH"), {78: ObservedBin(1.0)})
