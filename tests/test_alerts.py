@@ -195,3 +195,21 @@ def test_bad_threshold_names_the_field(changes: dict[str, object], field: str) -
     with pytest.raises(InputError) as info:
         AlertConfig(**changes)  # type: ignore[arg-type]
     assert field == info.value.field
+
+
+@pytest.mark.parametrize(
+    ("gap", "expected"),
+    [
+        (9_000, "9,000 shares behind plan (9.0 % of the order, 4.5 bins of planned trading)."),
+        (-9_000, "9,000 shares ahead of plan (9.0 % of the order, 4.5 bins of planned trading)."),
+    ],
+    ids=["behind", "ahead"],
+)
+def test_deviation_message_says_which_way(gap: float, expected: str) -> None:
+    """The raised message states the gap in shares, % of the order and bins, and its direction."""
+    checks = alerts.deviation(
+        quantity=100_000, deviation_shares=gap, deviation_bins=gap / 2_000, config=CONFIG
+    )
+    book = AlertBook()
+    messages = [book.apply(c, scope="A", order_id="A", symbol="ZEPH", ts=TS) for c in checks]
+    assert [expected] == [m.message for m in messages if m is not None]

@@ -41,7 +41,7 @@ default_profile            info      no liquidity profile for a symbol: the stat
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields
 from datetime import datetime
 from typing import Any
@@ -135,6 +135,13 @@ class AlertConfig:
                 )
 
 
+Text = str | Callable[[], str]
+
+
+def _text(text: Text) -> str:
+    return text() if callable(text) else text
+
+
 @dataclass(frozen=True)
 class Check:
     """The verdict of one rule on one condition, before hysteresis.
@@ -144,8 +151,9 @@ class Check:
         severity: info, warning or critical.
         breach: The condition is bad enough to raise now.
         recovered: The condition is good enough to clear now (never true with ``breach``).
-        message: Plain-language message for a raise.
-        clear_message: Plain-language message for a clear.
+        message: Plain-language message for a raise (or a function making it: the text is
+            only built when the alert is actually raised, which keeps a bin close cheap).
+        clear_message: Plain-language message for a clear (or a function making it).
         details: Numbers behind the verdict (JSON-able).
     """
 
@@ -153,8 +161,8 @@ class Check:
     severity: Severity
     breach: bool
     recovered: bool
-    message: str
-    clear_message: str
+    message: Text
+    clear_message: Text
     details: Mapping[str, Any] = field(default_factory=dict)
 
 
@@ -193,7 +201,7 @@ class AlertBook:
                 code=check.code,
                 severity=check.severity,
                 state="raised",
-                message=check.message,
+                message=_text(check.message),
                 details=dict(check.details),
                 ts=ts,
             )
@@ -205,7 +213,7 @@ class AlertBook:
                 code=check.code,
                 severity="info",
                 state="cleared",
-                message=check.clear_message,
+                message=_text(check.clear_message),
                 details=dict(check.details),
                 ts=ts,
             )
@@ -296,10 +304,12 @@ def deviation(
                 severity="warning",
                 breach=big and this_side,
                 recovered=small or not this_side,
-                message=(
+                message=lambda word=word: (  # type: ignore[misc]
                     f"{_shares(gap)} shares {word} plan ({pct:.1f} % of the order{bins_text})."
                 ),
-                clear_message=f"Back within tolerance of the plan ({pct:.1f} % of the order).",
+                clear_message=lambda: (
+                    f"Back within tolerance of the plan ({pct:.1f} % of the order)."
+                ),
                 details=details,
             )
         )
@@ -314,11 +324,11 @@ def completion(*, quantity: float, shortfall: float, config: AlertConfig) -> Che
         severity="critical",
         breach=shortfall >= 1 and pct >= config.infeasible_pct,
         recovered=shortfall < 1 or pct < config.clear_ratio * config.infeasible_pct,
-        message=(
+        message=lambda: (
             f"The order cannot complete under its participation cap: about {_shares(shortfall)} "
             f"shares ({pct:.1f} %) would be left at the end. Raise the cap or extend the end."
         ),
-        clear_message="Completion is feasible again under the participation cap.",
+        clear_message=lambda: "Completion is feasible again under the participation cap.",
         details={"shortfall_shares": round(shortfall), "shortfall_pct": pct},
     )
 
@@ -345,11 +355,11 @@ def _ratio_check(
         severity="warning",
         breach=high or low,
         recovered=within,
-        message=(
+        message=lambda: (
             f"Observed {what} {observed:,.4g} is far {direction} the forecast {expected:,.4g} "
             f"({shown} times)."
         ),
-        clear_message=f"{what.capitalize()} is back near its forecast ({shown} times).",
+        clear_message=lambda: f"{what.capitalize()} is back near its forecast ({shown} times).",
         details={
             "observed": observed,
             "forecast": expected,
@@ -392,11 +402,11 @@ def limit_blocking(*, blocked: bool, side: str, limit: float | None, price: floa
         severity="warning",
         breach=blocked,
         recovered=not blocked,
-        message=(
+        message=lambda: (
             f"The market ({price}) is {beyond} the {side} limit {limit}: the next bin's target is "
             "zero and the rest of the order is re-planned over the bins left."
         ),
-        clear_message=f"The market ({price}) is back within the limit {limit}.",
+        clear_message=lambda: f"The market ({price}) is back within the limit {limit}.",
         details={"limit_price": limit, "price": price},
     )
 
@@ -411,11 +421,11 @@ def stale(*, age_seconds: float | None, bin_seconds: float, config: AlertConfig)
         severity="critical",
         breach=breach,
         recovered=age_seconds is None,
-        message=(
+        message=lambda: (
             f"No market bin for {age_text} (more than {config.stale_bins:g} bins): forecasts "
             "and targets are running on old data. Check the market data feed."
         ),
-        clear_message="Market bins are arriving again.",
+        clear_message=lambda: "Market bins are arriving again.",
         details={"age_seconds": age_seconds, "limit_seconds": limit},
     )
 
@@ -428,11 +438,11 @@ def replan_moved(*, move_shares: float, quantity: float, config: AlertConfig) ->
         severity="info",
         breach=pct >= config.replan_move_pct,
         recovered=pct < config.clear_ratio * config.replan_move_pct,
-        message=(
+        message=lambda: (
             f"The re-plan moved the schedule by up to {_shares(abs(move_shares))} shares "
             f"({pct:.1f} % of the order) against the previous plan."
         ),
-        clear_message=f"Re-plans are stable again (largest move {pct:.1f} % of the order).",
+        clear_message=lambda: f"Re-plans are stable again (largest move {pct:.1f} % of the order).",
         details={"move_shares": round(move_shares), "move_pct": pct},
     )
 
