@@ -408,31 +408,32 @@ def forecast(
         scale = _shrunk_ratio(math.log(ratio), weight, VOLUME_SCALE_BOUNDS)
 
     recent = indexes[-recent_bins:]
-    spread_pairs = [
-        (observed[i].spread, profile.spread[i])
-        for i in recent
-        if observed[i].spread is not None and observed[i].spread >= 0
-    ]  # type: ignore[operator]
+    seen_spread = expected_spread = 0.0
+    spread_bins = 0
+    seen_variance = expected_variance = 0.0
+    variance_bins = 0
+    for i in recent:
+        spread_i = observed[i].spread
+        if spread_i is not None and spread_i >= 0:
+            seen_spread += spread_i
+            expected_spread += float(profile.spread[i])
+            spread_bins += 1
+        variance_i = observed[i].variance
+        if variance_i is not None:
+            seen_variance += variance_i
+            expected_variance += float(profile.volatility[i]) ** 2
+            variance_bins += 1
     spread_ratio = 1.0
-    expected_spread = sum(p for _, p in spread_pairs)
-    if spread_pairs and expected_spread > 0:
-        ratio = max(sum(s for s, _ in spread_pairs) / expected_spread, 1e-12)  # type: ignore[misc]
-        m = len(spread_pairs)
-        spread_ratio = _shrunk_ratio(math.log(ratio), m / (m + prior_bins), SPREAD_RATIO_BOUNDS)
-    variance_pairs = [
-        (observed[i].variance, profile.volatility[i] ** 2)
-        for i in recent
-        if observed[i].variance is not None
-    ]
-    volatility_ratio = 1.0
-    if variance_pairs:
-        ratio = max(
-            sum(v for v, _ in variance_pairs) / sum(p for _, p in variance_pairs),  # type: ignore[misc]
-            1e-12,
+    if spread_bins and expected_spread > 0:
+        log_ratio = math.log(max(seen_spread / expected_spread, 1e-12))
+        spread_ratio = _shrunk_ratio(
+            log_ratio, spread_bins / (spread_bins + prior_bins), SPREAD_RATIO_BOUNDS
         )
-        m = len(variance_pairs)
+    volatility_ratio = 1.0
+    if variance_bins and expected_variance > 0:
+        log_ratio = 0.5 * math.log(max(seen_variance / expected_variance, 1e-12))
         volatility_ratio = _shrunk_ratio(
-            0.5 * math.log(ratio), m / (m + prior_bins), VOLATILITY_RATIO_BOUNDS
+            log_ratio, variance_bins / (variance_bins + prior_bins), VOLATILITY_RATIO_BOUNDS
         )
 
     volume *= scale

@@ -254,7 +254,7 @@ def build_problem(
     aversion = preferences.risk_aversion / (price * forecast.average_daily_volume)
     risk = (aversion * price * price * reference ** (2.0 - p)) * sigma * sigma
     if preferences.completion_penalty == FORCE:
-        terminal: float | str = FORCE
+        terminal = math.inf  # Problem reads inf as "force"
     else:
         terminal = float(preferences.completion_penalty) * 1e-4 * price * reference ** (1.0 - p)
     caps = None if max_participation is None else max_participation * volume

@@ -11,13 +11,16 @@ import argparse
 from collections.abc import Callable
 from datetime import date
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from tracker.cli.calibrate import add_session_arguments, session_from_args
 from tracker.cli.simulate_day import add_day_parser
 from tracker.errors import InputError
 
-ActionParsers = argparse._SubParsersAction  # type: ignore[type-arg]
+if TYPE_CHECKING:
+    ActionParsers = argparse._SubParsersAction[argparse.ArgumentParser]
+else:
+    ActionParsers = argparse._SubParsersAction
 
 HISTORY_HEADER = (
     "# Invented data: {symbol} is a made-up stock on the Harbour Lane Exchange (HLX), an "
