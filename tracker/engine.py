@@ -1365,9 +1365,7 @@ class Engine:
         self, order: _Order, index: int, quantity: int, max_quantity: int | None, ts: datetime
     ) -> TargetMessage:
         bin_start, bin_end = self._bin_times(order, index)
-        # model_construct: every value is built here from validated state (no re-validation on
-        # the hot path of a bin close; serialization is unchanged).
-        return TargetMessage.model_construct(
+        return TargetMessage(
             order_id=order.order_id,
             symbol=order.symbol,
             side=order.side,  # type: ignore[arg-type]
@@ -1396,7 +1394,7 @@ class Engine:
         cost = plan.expected_cost if plan is not None and order.life.state in LIVE else None
         notional = order.remaining * plan.price if plan is not None else 0.0
         cost_bps = cost / notional * 1e4 if cost is not None and notional > 0 else None
-        return StatusMessage.model_construct(
+        return StatusMessage(
             order_id=order.order_id,
             symbol=order.symbol,
             side=order.side,  # type: ignore[arg-type]
