@@ -591,3 +591,14 @@ def test_engine_replan_on_plan_reproduces_remaining_plan() -> None:
         target = next(o for o in outputs if isinstance(o, TargetMessage))
         # Cumulative target by the end of the next bin against the first plan: within rounding.
         assert abs(target.cumulative_target - planned[index + 1]) <= 2.0
+
+
+def test_engine_error_keeps_the_fields_sent(recorder: Recorder) -> None:
+    """An error raised by the engine carries the message's fields as sent (no added nulls)."""
+    outputs = recorder.feed(fill("NOPE", "f1", 500, 20.0, ts=at(1)))
+    error = next(o for o in outputs if isinstance(o, ErrorMessage))
+    expected = (
+        '{"type":"fill","fill_id":"f1","order_id":"NOPE","quantity":500,"price":20.0,'
+        '"ts":"2026-03-02T14:31:00Z"}'
+    )
+    assert expected == error.payload

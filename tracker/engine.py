@@ -51,6 +51,7 @@ Decisions (see the README of the engine in the module docstrings of :mod:`tracke
 from __future__ import annotations
 
 import heapq
+import json
 import math
 from collections import Counter
 from collections.abc import Mapping
@@ -84,6 +85,7 @@ from tracker.wire import (
     Tick,
     encode,
     payload_text,
+    to_json_object,
 )
 
 FloatArray = npt.NDArray[np.float64]
@@ -431,10 +433,16 @@ class Engine:
             topic, order_id = f"{root}/control", event.order_id
         else:
             topic, order_id = f"{root}/tick", None
+        # The payload as sent, as near as the decoded message can say: only the fields it set.
+        sent = {
+            key: value
+            for key, value in to_json_object(event).items()
+            if key == "type" or key in event.model_fields_set
+        }
         return ErrorMessage(
             reason=reason,
             topic=topic,
-            payload=payload_text(encode(event)),
+            payload=payload_text(json.dumps(sent, separators=(",", ":"), ensure_ascii=False)),
             ts=event.ts,
             order_id=order_id,
         )
