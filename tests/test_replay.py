@@ -14,6 +14,8 @@ from typing import Any
 
 import pytest
 
+from tracker.cli import main
+from tracker.engine import Engine
 from tracker.errors import InputError
 from tracker.records import Record
 from tracker.replay import (
@@ -26,66 +28,11 @@ from tracker.replay import (
     replay,
     write_outputs,
 )
-from tracker.wire import (
-    ErrorMessage,
-    FillMessage,
-    Inbound,
-    OrderMessage,
-    Outbound,
-    Tick,
-    payload_text,
-)
+from tracker.wire import ErrorMessage, Inbound, Outbound, Tick
 
 
-class _InterimEngine:
-    """Until tracker.engine lands: accepts orders, counts fills, rejects fills of unknown orders."""
-
-    def __init__(self) -> None:
-        self.filled: dict[str, int] = {}
-        self.fill_ids: set[str] = set()
-
-    def handle(self, event: Inbound) -> list[Outbound]:
-        if isinstance(event, OrderMessage) and event.action == "new":
-            self.filled[event.order_id] = 0
-        if isinstance(event, FillMessage):
-            if event.order_id not in self.filled:
-                return [
-                    ErrorMessage(
-                        reason=f"fill for unknown order {event.order_id!r}",
-                        topic=f"tracker/fills/{event.order_id}",
-                        payload=event.model_dump_json(),
-                        ts=event.ts,
-                    )
-                ]
-            if event.fill_id not in self.fill_ids:
-                self.fill_ids.add(event.fill_id)
-                self.filled[event.order_id] += event.quantity
-        return []
-
-    def reject(self, topic: str, payload: bytes | str, reason: str, ts: datetime) -> ErrorMessage:
-        return ErrorMessage(reason=reason, topic=topic, payload=payload_text(payload), ts=ts)
-
-    def summary(self) -> dict[str, Any]:
-        return {
-            "orders": [
-                {
-                    "order_id": k,
-                    "filled": v,
-                    "quantity": 0,
-                    "average_price": None,
-                    "arrival_price": None,
-                }
-                for k, v in sorted(self.filled.items())
-            ]
-        }
-
-
-def make_engine() -> Any:
-    """A fresh engine."""
-    try:
-        from tracker.engine import Engine
-    except ImportError:
-        return _InterimEngine()
+def make_engine() -> Engine:
+    """A fresh engine with default settings."""
     return Engine()
 
 
@@ -360,15 +307,45 @@ def test_rejected_line_does_not_move_time(tmp_path: Path) -> None:
     assert expected == tick_times(spy.events)
 
 
-def test_line_without_ts_uses_the_message_time(tmp_path: Path) -> None:
-    """A line recorded without ts is ordered by the message's own ts."""
+def test_late_fill_without_line_ts_is_accepted(tmp_path: Path) -> None:
+    """A line recorded without ts is left to the engine's rules: a late fill still counts."""
     late = fill("F1", 100, 60)
     early = fill("F2", 100, 30)
     del late["ts"], early["ts"]
     path = write(tmp_path, [order(0), late, early])
-    errors, _ = run_file(path)
-    expected = [3]
-    assert expected == [error.line for error in errors]
+    errors, summary = run_file(path)
+    expected: tuple[list[int], int] = ([], 200)
+    assert expected == ([error.line for error in errors], filled(summary))
+
+
+def test_line_without_ts_moves_ticks_by_the_message_time(tmp_path: Path) -> None:
+    """A line recorded without ts derives ticks from the message's own ts."""
+    line = fill("F1", 100, 2.5)
+    del line["ts"]
+    path = write(tmp_path, [order(0.5), line])
+    spy = Spy()
+    replay(read_input(path), spy)
+    assert [at(1), at(2)] == tick_times(spy.events)
+
+
+def test_journal_is_replayed_in_its_own_order(tmp_path: Path) -> None:
+    """A journal's records are fed as journaled: its ticks, and no time-order check."""
+    from tracker.journal import Journal
+
+    path = tmp_path / "day.sqlite"
+    with Journal(path, durability="normal") as journal:
+        for line in (order(0), fill("F1", 100, 60), fill("F2", 50, 30)):
+            payload = json.dumps(line["payload"]).encode()
+            journal.append(line["topic"], payload, line["ts"])
+        journal.append("tracker/tick", json.dumps({"type": "tick", "ts": at(70)}).encode(), at(70))
+    spy = Spy()
+    result = replay(read_input(path), spy, check_time=False)
+    expected = ([], 150, [at(70)])
+    assert expected == (
+        [e.line for e in result.errors],
+        filled(result.summary),
+        tick_times(spy.events),
+    )
 
 
 def test_reader_keeps_raw_text_payload() -> None:
@@ -408,3 +385,42 @@ def test_summary_writes_nan_as_null() -> None:
     """summary.json never holds NaN (not JSON): it becomes null."""
     expected = '{\n  "x": null\n}\n'
     assert expected == dumps_summary({"x": float("nan")})
+
+
+def test_cli_writes_the_five_files(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """`tracker replay INPUT --out DIR` writes the four JSON Lines files and summary.json."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60)])
+    code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--no-progress"])
+    assert (0, sorted(OUTPUT_FILES)) == (code, sorted(p.name for p in (tmp_path / "out").iterdir()))
+
+
+def test_cli_summary_lists_the_order(tmp_path: Path) -> None:
+    """summary.json lists each order with the fields the desk reads."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60)])
+    main(["replay", str(path), "--out", str(tmp_path / "out"), "--no-progress"])
+    (entry,) = json.loads((tmp_path / "out" / "summary.json").read_text())["orders"]
+    expected = {"order_id", "quantity", "filled", "average_price", "arrival_price"}
+    assert expected <= set(entry)
+
+
+def test_cli_bad_config_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A config file that is not TOML is a one-line error and exit code 2."""
+    path = write(tmp_path, [order(0)])
+    config = tmp_path / "engine.toml"
+    config.write_text("this is = = not toml\n")
+    code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--config", str(config)])
+    expected = (2, True)
+    assert expected == (code, "engine.toml" in capsys.readouterr().err)
+
+
+def test_cli_profile_named_for_another_symbol_exits_2(tmp_path: Path) -> None:
+    """A profile file must be named for the symbol it holds."""
+    from tracker.liquidity import default_profile
+
+    folder = tmp_path / "profiles"
+    folder.mkdir()
+    (folder / "KALO.json").write_text(json.dumps(default_profile("ZEPH").to_mapping()))
+    path = write(tmp_path, [order(0)])
+    code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--profiles", str(folder)])
+    expected = 2
+    assert expected == code

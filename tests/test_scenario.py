@@ -16,14 +16,20 @@ from typing import Any
 
 import pytest
 
+from tracker.cli import main
+from tracker.engine import Engine
 from tracker.errors import InputError
 from tracker.records import Record
+from tracker.replay import OUTPUT_FILES, read_input, replay, write_outputs
 from tracker.scenario import (
     CANCEL,
     SHOCK,
     VOLUME_SHARE_CAP,
+    DayRun,
     Scenario,
     record_line,
+    run_day,
+    write_day,
 )
 from tracker.wire import (
     BinMessage,
@@ -276,3 +282,86 @@ def test_record_line_round_trips(tmp_path: Path) -> None:
     record = Record(line=1, topic="tracker/control", payload={"a": 1}, ts="2026-03-10T14:00:00Z")
     expected = {"topic": "tracker/control", "payload": {"a": 1}, "ts": "2026-03-10T14:00:00Z"}
     assert expected == json.loads(record_line(record))
+
+
+# ------------------------------------------------------------------ closed loop, real engine
+
+
+@pytest.fixture(scope="module")
+def closed_loop() -> DayRun:
+    """The seed-7 day run in-process against the real engine."""
+    return run_day(7)
+
+
+def test_closed_loop_equals_replay_of_its_recording(closed_loop: DayRun, tmp_path: Path) -> None:
+    """Replaying the recording of a closed-loop day reproduces its outputs byte for byte."""
+    path = write_day(closed_loop, tmp_path / "day.jsonl")
+    write_outputs(closed_loop.result, tmp_path / "live")
+    write_outputs(replay(read_input(path), Engine()), tmp_path / "replayed")
+    differing = [
+        name
+        for name in OUTPUT_FILES
+        if (tmp_path / "live" / name).read_bytes() != (tmp_path / "replayed" / name).read_bytes()
+    ]
+    expected: list[str] = []
+    assert expected == differing
+
+
+def test_router_never_fills_more_than_the_bin_target(closed_loop: DayRun) -> None:
+    """In each bin an order's fills stay within the largest target the engine gave for it."""
+    targets: dict[tuple[str, datetime], int] = {}
+    for t in closed_loop.result.targets:
+        if t.bin_start is not None:
+            key = (t.order_id, t.bin_start)
+            targets[key] = max(targets.get(key, 0), t.quantity)
+    filled: Counter[tuple[str, datetime]] = Counter()
+    seen: set[str] = set()
+    for record in closed_loop.records:
+        payload = record.payload
+        if not isinstance(payload, dict) or payload.get("type") != "fill":
+            continue
+        if payload["fill_id"] in seen or payload["order_id"] == "ORIN-B9":
+            continue
+        seen.add(payload["fill_id"])
+        ts = datetime.fromisoformat(payload["ts"])
+        start = ts - timedelta(
+            minutes=ts.minute % 5, seconds=ts.second, microseconds=ts.microsecond
+        )
+        filled[(payload["order_id"], start)] += payload["quantity"]
+    over = [key for key, quantity in filled.items() if quantity > targets.get(key, 0)]
+    expected: list[Any] = []
+    assert expected == over
+
+
+def test_closed_loop_rejects_exactly_the_bad_messages(closed_loop: DayRun) -> None:
+    """The day's errors are the four malformed messages and the fill for an unknown order."""
+    topics = [e.topic for e in closed_loop.result.errors]
+    expected = [
+        "tracker/fills/ZEPH-B1",
+        "tracker/fills/KALO-S1",
+        "tracker/fills/MIRA-B1",
+        "tracker/fills/ORIN-B9",
+        "tracker/bins/KALO",
+    ]
+    assert expected == topics
+
+
+def test_closed_loop_shows_the_shock_amend_and_cancel(closed_loop: DayRun) -> None:
+    """The engine saw the shock (volume alert), the cancel (state) and the amend (quantity)."""
+    codes = {a.code for a in closed_loop.result.alerts}
+    orders = {o["order_id"]: o for o in closed_loop.result.summary["orders"]}
+    expected = (True, "cancelled", 55_000)
+    assert expected == (
+        "volume_shock" in codes,
+        orders["KALO-S1"]["state"],
+        orders["MIRA-B1"]["quantity"],
+    )
+
+
+def test_simulate_day_command_writes_the_recording(tmp_path: Path) -> None:
+    """`tracker simulate day -o FILE` writes a replay file that replays without surprises."""
+    path = tmp_path / "day.jsonl"
+    code = main(["simulate", "day", "--seed", "3", "-o", str(path)])
+    result = replay(read_input(path), Engine())
+    expected = (0, 5)
+    assert expected == (code, len(result.errors))

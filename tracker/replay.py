@@ -18,12 +18,15 @@ each accepted message to :meth:`Engine.handle`. Every line ends in exactly one o
      that is not ISO 8601 with an offset;
   2. message level: :func:`tracker.wire.decode` (bad JSON in a raw payload, missing field, wrong
      type, negative or NaN quantity, unknown type, wrong topic for the payload);
-  3. time order: a line whose time is earlier than the latest time already replayed;
+  3. time order: a line whose recorded ``ts`` is earlier than that of a line before it (the
+     recording is out of order). A line recorded without ``ts`` is left to the engine's own
+     per-stream rules (bins per symbol, order messages per order; a late fill is legitimate). A
+     journal is not checked: its order is, by definition, the order the live engine applied;
   4. the engine's own verdict (a fill for an unknown order, ...): every ErrorMessage the engine
      returns while handling a line gets that line's number.
 
-  The line's *time* is its recorded ``ts`` (when the shell received it); a line recorded without one
-  uses the message's own ``ts``.
+  The line's *time*, for derived ticks, is its recorded ``ts`` (when the shell received it), else
+  the message's own ``ts``; time never moves backwards.
 
 Ticks (the rule)
 ----------------
@@ -73,10 +76,16 @@ from tracker.wire import (
 
 __all__ = [
     "DEFAULT_TICK_SECONDS",
+    "OUTPUT_FILES",
     "SQLITE_HEADER",
     "BadLine",
     "ReplayResult",
     "Replayer",
+    "dumps_summary",
+    "finish_summary",
+    "has_ticks",
+    "is_journal",
+    "parse_line",
     "read_input",
     "read_jsonl",
     "replay",
@@ -120,7 +129,7 @@ class EngineLike(Protocol):
     def handle(self, event: Inbound) -> list[Outbound]: ...
 
     def reject(
-        self, topic: str, payload: bytes | str, reason: str, ts: datetime
+        self, topic: str, payload: bytes | str, reason: str, ts: datetime | None
     ) -> ErrorMessage: ...
 
     def summary(self) -> dict[str, Any]: ...
@@ -231,6 +240,19 @@ def parse_line(number: int, raw_bytes: bytes | str) -> Record | BadLine:
     return Record(line=number, topic=topic, payload=payload, ts=usable_ts)
 
 
+def is_journal(path: str | Path) -> bool:
+    """Whether a file is a SQLite database (the daemon's journal), by its first 16 bytes.
+
+    Raises:
+        InputError: The file cannot be read.
+    """
+    try:
+        with open(path, "rb") as handle:
+            return handle.read(len(SQLITE_HEADER)) == SQLITE_HEADER
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}", field="INPUT") from exc
+
+
 def read_input(path: str | Path) -> Iterator[Record | BadLine]:
     """Read a recording: a SQLite journal of the daemon, or else a JSON Lines file.
 
@@ -241,15 +263,10 @@ def read_input(path: str | Path) -> Iterator[Record | BadLine]:
         InputError: The file cannot be read, or it is a journal and the journal reader is missing.
     """
     path = Path(path)
-    try:
-        with open(path, "rb") as handle:
-            head = handle.read(len(SQLITE_HEADER))
-    except OSError as exc:
-        raise InputError(f"cannot read {path}: {exc.strerror}", field="INPUT") from exc
-    if head == SQLITE_HEADER:
+    if is_journal(path):
         try:
             from tracker.journal import read_journal
-        except ImportError as exc:
+        except ImportError as exc:  # pragma: no cover - the journal ships with the package
             raise InputError(
                 f"{path} is a SQLite journal, and reading journals needs tracker.journal, which "
                 "this installation lacks; export the journal to JSON Lines or update tracker",
@@ -318,6 +335,8 @@ class Replayer:
         derive_ticks: Inject ticks derived from the lines' times (see the module docstring). Turn
             off when the recording holds its own ticks.
         tick_seconds: Interval of derived ticks.
+        check_time: Reject a line whose recorded ``ts`` is earlier than an earlier line's. Off for
+            a journal, whose order is by definition the order the live engine applied.
     """
 
     def __init__(
@@ -327,6 +346,7 @@ class Replayer:
         root: str = "tracker",
         derive_ticks: bool = True,
         tick_seconds: float = DEFAULT_TICK_SECONDS,
+        check_time: bool = True,
     ) -> None:
         if not (math.isfinite(tick_seconds) and tick_seconds > 0):
             raise InputError(
@@ -335,9 +355,11 @@ class Replayer:
         self.engine = engine
         self.root = root
         self.derive_ticks = derive_ticks
+        self.check_time = check_time
         self._tick = timedelta(seconds=tick_seconds)
         self._tick_topic = f"{root}/tick"
         self._last: datetime | None = None
+        self._recorded: datetime | None = None
         self._seen: set[bytes] = set()
         self.lines = 0
         self.accepted = 0
@@ -379,21 +401,29 @@ class Replayer:
         if key in self._seen:
             self.redelivered += 1
             return []
-        when = recorded if recorded is not None else _message_time(message)
-        if when is not None and self._last is not None and when < self._last:
+        if (
+            self.check_time
+            and recorded is not None
+            and self._recorded is not None
+            and recorded < self._recorded
+        ):
             return [
                 self._reject(
                     record.line,
                     record.topic,
                     raw,
-                    f"time goes backwards: this line's time {_iso(when)} is earlier than "
-                    f"{_iso(self._last)}, already replayed; a recording must be in time order -- "
-                    "sort the lines by 'ts' or fix this line's time",
+                    f"time goes backwards: this line's ts {_iso(recorded)} is earlier than "
+                    f"{_iso(self._recorded)} of a line before it; a recording must be in the "
+                    "order the messages were received -- sort the lines by 'ts' or fix this "
+                    "line's ts",
                     recorded,
                 )
             ]
         outputs: list[Outbound] = []
-        if when is not None:
+        when = recorded if recorded is not None else _message_time(message)
+        if recorded is not None:
+            self._recorded = recorded
+        if when is not None and (self._last is None or when > self._last):
             if self.derive_ticks and self._last is not None:
                 outputs.extend(self._ticks_until(when, record.line))
             self._last = when
@@ -432,7 +462,7 @@ class Replayer:
         self, line: int, topic: str, raw: str, reason: str, recorded: datetime | None
     ) -> ErrorMessage:
         self.rejected += 1
-        ts = recorded or self._last or _EPOCH
+        ts = recorded or self._last
         error = self.engine.reject(topic, raw, reason, ts)
         return error.model_copy(update={"line": line})
 
@@ -459,6 +489,7 @@ def replay(
     root: str = "tracker",
     *,
     tick_seconds: float = DEFAULT_TICK_SECONDS,
+    check_time: bool = True,
     progress: Callable[[int], None] | None = None,
 ) -> ReplayResult:
     """Run an engine over a whole recording.
@@ -471,6 +502,7 @@ def replay(
         engine: A fresh engine (it is fed every line).
         root: The MQTT topic root the recording was made under.
         tick_seconds: Interval of derived ticks.
+        check_time: Reject lines whose recorded ts goes backwards (turn off for a journal).
         progress: Called with the number of lines done, every few thousand lines and at the end.
 
     Returns:
@@ -478,7 +510,11 @@ def replay(
     """
     lines = list(records)
     replayer = Replayer(
-        engine, root=root, derive_ticks=not has_ticks(lines, root), tick_seconds=tick_seconds
+        engine,
+        root=root,
+        derive_ticks=not has_ticks(lines, root),
+        tick_seconds=tick_seconds,
+        check_time=check_time,
     )
     result = ReplayResult()
     for done, record in enumerate(lines, start=1):

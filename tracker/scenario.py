@@ -89,9 +89,9 @@ class SymbolSpec:
 
 #: The invented symbols of the demo day.
 SYMBOLS: tuple[SymbolSpec, ...] = (
-    SymbolSpec("ZEPH", 1_200_000, 42.10, 0.015),
-    SymbolSpec("KALO", 800_000, 18.55, 0.01),
-    SymbolSpec("MIRA", 500_000, 67.30, 0.03),
+    SymbolSpec("ZEPH", 1_200_000, 42.10, 0.02),
+    SymbolSpec("KALO", 900_000, 18.55, 0.01),
+    SymbolSpec("MIRA", 700_000, 67.30, 0.03),
 )
 
 
@@ -157,6 +157,16 @@ class Shock:
 #: The midday liquidity shock on ZEPH.
 SHOCK = Shock("ZEPH", time(12, 0), time(12, 45), volume_factor=0.2, spread_factor=3.0)
 
+#: The invented market follows the shapes of the stated default profile
+#: (:func:`tracker.liquidity.default_profile`), which the demo engine uses for want of a calibrated
+#: one; the symbols differ in volume, price and spread.
+DEFAULT_SHAPES: dict[str, Any] = {
+    "volume_shape": (1.5, 0.08, 1.2, 0.04),
+    "spread_shape": (1.5, 0.05, 0.0, 1.0),
+    "variance_shape": (1.5, 0.08, 0.4, 0.04),
+    "daily_volatility": 0.02,
+}
+
 #: Bin messages are published this long after the bin closes.
 BIN_LATENCY = timedelta(seconds=1)
 
@@ -164,9 +174,9 @@ BIN_LATENCY = timedelta(seconds=1)
 #: partial, the share of the bin's real volume the router can take, and the part of the half
 #: spread paid.
 SLICES = 4
-MISS_PROBABILITY = 0.10
-PARTIAL_PROBABILITY = 0.35
-VOLUME_SHARE_CAP = 0.25
+MISS_PROBABILITY = 0.08
+PARTIAL_PROBABILITY = 0.30
+VOLUME_SHARE_CAP = 0.30
 
 
 @dataclass(frozen=True, slots=True)
@@ -431,7 +441,9 @@ class Scenario:
                 return None
             if draw[0] < MISS_PROBABILITY:
                 return None
-            fraction = 0.3 + 0.7 * draw[1] if draw[1] < PARTIAL_PROBABILITY else 1.0
+            fraction = (
+                0.5 + draw[1] / PARTIAL_PROBABILITY / 2 if draw[1] < PARTIAL_PROBABILITY else 1.0
+            )
             key = (market_bin.symbol, market_bin.start)
             quantity = min(
                 math.floor(ask * fraction),
@@ -588,6 +600,7 @@ def generate_market(session: Session, day: date, seed: int) -> dict[str, list[Ma
             price=spec.open_price,
             average_daily_volume=spec.average_daily_volume,
             midday_spread=spec.midday_spread,
+            **DEFAULT_SHAPES,
         )
         frame = simulate_day(spec.symbol, day, seed * 100 + number, session, params)
         market[spec.symbol] = [
