@@ -10,14 +10,21 @@ stopped even when a test fails.
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
+import functools
+import json
 import shutil
 import signal
 import socket
 import subprocess
+import sys
 import time
+from collections.abc import Callable
+from datetime import datetime, timedelta
 from pathlib import Path
 from types import TracebackType
-from typing import Self
+from typing import Any, Self
 
 import pytest
 
@@ -128,3 +135,252 @@ class PrivateMosquitto:
         tb: TracebackType | None,
     ) -> None:
         self.stop()
+
+
+# ------------------------------------------------------------------------------------------------
+# Daemons, publishers and collectors shared by the daemon tests
+
+
+def wait_until(predicate: Callable[[], bool], timeout: float, what: str) -> None:
+    """Poll ``predicate`` every 50 ms until it holds; fail the test after ``timeout`` seconds."""
+    deadline = time.monotonic() + timeout
+    while not predicate():
+        if time.monotonic() > deadline:
+            pytest.fail(f"timed out after {timeout} s waiting for {what}")
+        time.sleep(0.05)
+
+
+async def async_wait_until(predicate: Callable[[], bool], timeout: float, what: str) -> None:
+    """The asyncio form of :func:`wait_until`."""
+    deadline = time.monotonic() + timeout
+    while not predicate():
+        if time.monotonic() > deadline:
+            pytest.fail(f"timed out after {timeout} s waiting for {what}")
+        await asyncio.sleep(0.05)
+
+
+@functools.lru_cache(maxsize=1)
+def _day() -> tuple[tuple[str, bytes, str], ...]:
+    from tracker.scenario import run_day
+
+    rows = []
+    for record in run_day().records:
+        payload = record.payload
+        if isinstance(payload, str):
+            data = payload.encode("utf-8")
+        else:
+            data = json.dumps(payload, separators=(",", ":")).encode("utf-8")
+        rows.append((record.topic, data, record.ts or ""))
+    return tuple(rows)
+
+
+def day_messages(root: str) -> list[tuple[str, bytes]]:
+    """The invented demo day (tracker.scenario) as ``(topic, payload)`` under ``root``.
+
+    It is the closed-loop day recorded in-process, published open-loop: orders, bins, fills, the
+    scenario's deliberately malformed messages and its one exact redelivery.
+    """
+    return [(root + topic[len("tracker") :], payload) for topic, payload, _ in _day()]
+
+
+def day_start() -> str:
+    """An instant one second before the day's first message (for a simulated daemon clock)."""
+    first = datetime.fromisoformat(_day()[0][2])
+    return (first - timedelta(seconds=1)).isoformat()
+
+
+def journaled(path: Path, root: str) -> list[tuple[str, bytes]]:
+    """The non-tick records of a journal as ``(topic, payload)``, in order (read-only)."""
+    from tracker.journal import read_journal
+
+    if not path.exists():
+        return []
+    tick = f"{root}/tick"
+    return [
+        (r.topic, bytes(r.payload))  # type: ignore[arg-type]
+        for r in read_journal(path)
+        if r.topic != tick
+    ]
+
+
+def has_all(path: Path, root: str, messages: list[tuple[str, bytes]]) -> bool:
+    """Whether the journal holds every distinct message (redelivered copies may add more)."""
+    try:
+        return set(messages) <= set(journaled(path, root))
+    except Exception:  # a journal being created can be briefly unreadable
+        return False
+
+
+class DaemonProcess:
+    """``python -m tracker run`` in a subprocess, for kill -9 and signal tests."""
+
+    def __init__(
+        self,
+        folder: Path,
+        broker_url: str,
+        *,
+        root: str,
+        instance: str,
+        journal: Path | None = None,
+        summary: Path | None = None,
+        extra: tuple[str, ...] = (),
+    ) -> None:
+        self.folder = folder
+        folder.mkdir(parents=True, exist_ok=True)
+        self.journal = journal or folder / "journal.sqlite"
+        self.summary = summary or folder / "summary.json"
+        self.log = folder / "daemon.log"
+        self.args = [
+            sys.executable,
+            "-m",
+            "tracker",
+            "run",
+            "--broker",
+            broker_url,
+            "--root",
+            root,
+            "--instance",
+            instance,
+            "--journal",
+            str(self.journal),
+            "--summary",
+            str(self.summary),
+            "--clock-start",
+            day_start(),
+            "--clock-speed",
+            "1",
+            "--log-format",
+            "json",
+            *extra,
+        ]
+        self.process: subprocess.Popen[bytes] | None = None
+        self._log_handle: Any = None
+
+    def start(self) -> None:
+        """Start the daemon (its log appends to ``daemon.log``)."""
+        self._log_handle = open(self.log, "ab")  # noqa: SIM115 -- closed in wait()/kill()
+        self.process = subprocess.Popen(
+            self.args, stdout=self._log_handle, stderr=subprocess.STDOUT, cwd=self.folder
+        )
+
+    def wait_connected(self, timeout: float = 60.0) -> None:
+        """Wait until the log says the daemon is connected."""
+
+        def connected() -> bool:
+            assert self.process is not None
+            if self.process.poll() is not None:
+                pytest.fail(f"daemon exited with {self.process.returncode}: {self.log_text()}")
+            return b'"connected"' in self.log.read_bytes()
+
+        wait_until(connected, timeout, "the daemon to connect")
+
+    def log_text(self) -> str:
+        """The daemon's log so far."""
+        return self.log.read_text(errors="replace") if self.log.exists() else ""
+
+    def terminate(self, timeout: float = 60.0) -> int:
+        """SIGTERM and wait; return the exit code."""
+        assert self.process is not None
+        self.process.send_signal(signal.SIGTERM)
+        return self.wait(timeout)
+
+    def kill(self) -> None:
+        """kill -9."""
+        if self.process is not None and self.process.poll() is None:
+            self.process.kill()
+            self.wait(30)
+
+    def wait(self, timeout: float) -> int:
+        """Wait for the process to exit; return its exit code."""
+        assert self.process is not None
+        try:
+            code = self.process.wait(timeout=timeout)
+        finally:
+            if self._log_handle is not None:
+                self._log_handle.close()
+                self._log_handle = None
+        return code
+
+    def cleanup(self) -> None:
+        """Kill the process if it still runs (fixture teardown)."""
+        self.kill()
+
+
+async def publish_all(port: int, messages: list[tuple[str, bytes]], *, client_id: str) -> None:
+    """Publish every message at QoS 1, in order, and wait for each acknowledgement."""
+    import aiomqtt
+
+    async with aiomqtt.Client("127.0.0.1", port, identifier=client_id, timeout=30) as client:
+        for topic, payload in messages:
+            await client.publish(topic, payload, qos=1)
+
+
+class Collector:
+    """Subscribes to a root's output topics and keeps every message, in arrival order."""
+
+    KINDS = ("targets", "alerts", "status", "errors")
+
+    def __init__(self, port: int, root: str, *, client_id: str) -> None:
+        self.port = port
+        self.root = root
+        self.client_id = client_id
+        self.messages: list[tuple[str, bytes, bool]] = []
+        self._task: asyncio.Task[None] | None = None
+        self._client: Any = None
+        self.last = time.monotonic()
+
+    async def __aenter__(self) -> Collector:
+        import aiomqtt
+
+        self._client = aiomqtt.Client("127.0.0.1", self.port, identifier=self.client_id, timeout=30)
+        await self._client.__aenter__()
+        for kind in self.KINDS:
+            await self._client.subscribe(f"{self.root}/{kind}/#", qos=1)
+        await self._client.subscribe(f"{self.root}/errors", qos=1)
+        await self._client.subscribe(f"{self.root}/health/#", qos=1)
+        self._task = asyncio.create_task(self._listen())
+        return self
+
+    async def _listen(self) -> None:
+        async for message in self._client.messages:
+            payload = message.payload
+            assert isinstance(payload, bytes | bytearray)
+            self.messages.append((message.topic.value, bytes(payload), bool(message.retain)))
+            self.last = time.monotonic()
+
+    async def settle(self, quiet: float = 0.5, timeout: float = 60.0) -> None:
+        """Wait until nothing arrived for ``quiet`` seconds."""
+        await async_wait_until(
+            lambda: time.monotonic() - self.last >= quiet, timeout, "the outputs to settle"
+        )
+
+    def outputs(self) -> dict[str, list[bytes]]:
+        """Live (not retained) outputs by topic, in arrival order."""
+        by_topic: dict[str, list[bytes]] = {}
+        for topic, payload, retained in self.messages:
+            if retained or "/health/" in topic:
+                continue
+            by_topic.setdefault(topic, []).append(payload)
+        return by_topic
+
+    async def __aexit__(self, *exc: object) -> None:
+        assert self._task is not None
+        self._task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await self._task
+        await self._client.__aexit__(None, None, None)
+
+
+def replay_by_topic(journal: Path, root: str) -> tuple[dict[str, list[bytes]], dict[str, Any]]:
+    """Replay a journal with a fresh engine: outputs by topic (encoded) and the summary."""
+    from tracker.engine import Engine
+    from tracker.journal import read_journal
+    from tracker.replay import replay
+    from tracker.wire import encode, topic_of
+
+    result = replay(read_journal(journal), Engine(), root)
+    by_topic: dict[str, list[bytes]] = {}
+    for message in [*result.targets, *result.alerts, *result.status, *result.errors]:
+        by_topic.setdefault(topic_of(message, root), []).append(encode(message))
+    # replay groups by kind; within one topic the order is the engine's order either way
+    return by_topic, result.summary

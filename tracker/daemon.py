@@ -180,6 +180,7 @@ class Daemon:
         self._persisted_mark = 0
         self.recovered = 0
         self.republished = 0
+        self.received = 0  # deliveries journaled by this run
         self.stopped_cleanly = False
         self.bus = Bus(
             settings.broker,
@@ -384,6 +385,7 @@ class Daemon:
                 rows.append((f"{self.root}/tick", encode(tick), ts))
             else:
                 rows.append((item.topic, self._limited(item), ts))
+                self.received += 1
         seqs = self.journal.append_many(rows, published_through=self._mark_to_persist())
         for item in batch:
             if isinstance(item, Delivery):
