@@ -391,6 +391,7 @@ class _Reduced:
     p: float
     terminal: float  # inf when forced
     scale: float
+    start: FloatArray  # strictly feasible trades (fractions of Q) to start from
 
     def expand(self, x: FloatArray) -> FloatArray:
         """Original-size trades (shares) from the reduced inventories ``x`` (fractions)."""
@@ -421,10 +422,7 @@ def _reduce(problem: Problem) -> _Reduced:
     terminal = problem.terminal_penalty * quantity**p
     caps = caps[active]
     caps = np.where(caps >= 1.0, np.inf, caps)
-    start = _start(caps, math.isinf(terminal))
-    scale = _unscaled_objective(start, h, k, c, beta, b, p, terminal)
-    if not (scale > 0.0 and math.isfinite(scale)):
-        scale = 1.0
+    start, scale = _start(caps, h, k, c, beta, b, p, terminal)
     return _Reduced(
         bins=int(active.size),
         active=active,
@@ -439,15 +437,41 @@ def _reduce(problem: Problem) -> _Reduced:
         p=p,
         terminal=terminal / scale,
         scale=scale,
+        start=start,
     )
 
 
-def _start(caps: FloatArray, forced: bool) -> FloatArray:
-    """A strictly feasible starting schedule (fractions of Q): proportional to the caps."""
+def _start(
+    caps: FloatArray,
+    h: FloatArray,
+    k: FloatArray,
+    c: FloatArray,
+    beta: float,
+    b: float,
+    p: float,
+    terminal: float,
+) -> tuple[FloatArray, float]:
+    """A strictly feasible starting schedule (fractions of Q) and the cost scale.
+
+    The start trades in proportion to the caps (evenly without caps). The scale is the cost of
+    that schedule when it completes the order: a yardstick that does not depend on how large the
+    terminal penalty is. Under a finite terminal penalty the start keeps a small remainder, small
+    enough that its terminal cost does not dwarf the yardstick.
+    """
     weight = np.minimum(caps, 1.0)
     total = float(weight.sum())
-    v = weight / total if forced else 0.9 * weight / max(total, 1.0)
-    return v
+    if float(caps.sum()) > 1.0:  # room to complete strictly inside the caps (inf: no cap)
+        completing = weight / total
+        scale = _unscaled_objective(completing, h, k, c, beta, b, p, math.inf)
+        if not (scale > 0.0 and math.isfinite(scale)):
+            scale = 1.0
+        if math.isinf(terminal):
+            return completing, scale
+        left = 0.1 if terminal == 0.0 else min(0.1, (0.5 * scale / terminal) ** (1.0 / p))
+        return (1.0 - max(left, 1e-9)) * completing, scale
+    start = 0.9 * weight  # the caps cannot complete the order
+    scale = _unscaled_objective(start, h, k, c, beta, b, p, terminal)
+    return start, scale if scale > 0.0 and math.isfinite(scale) else 1.0
 
 
 def _unscaled_objective(
@@ -536,10 +560,20 @@ def _interior_point(
         d_point = c1 * x_pow
         dd_point = c2 * x_pow / x_safe
         x_end = x[end_idx]
-        end_pow = a_end * p_end * x_end ** (p_end - 1.0)
-        d_point[end_idx] += end_pow - b_end * (1.0 - x_end)
-        dd_point[end_idx] += end_pow * (p_end - 1.0) / x_end + b_end
-        return v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point
+        end_pow = a_end * x_end ** (p_end - 1.0)
+        d_point[end_idx] += p_end * end_pow - b_end * (1.0 - x_end)
+        dd_point[end_idx] += p_end * (p_end - 1.0) * end_pow / x_end + b_end
+        # The objective (up to a constant per problem), for the line search.
+        value = np.add.reduceat(v * (h + k * v_beta - 0.5 * b * v) + c * x_pow * x_safe, offsets)
+        value[end_problem] += end_pow * x_end + 0.5 * b_end * (1.0 - x_end) ** 2
+        return v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point, value
+
+    def barrier(state: tuple[FloatArray, ...], mu: FloatArray) -> FloatArray:
+        """The log-barrier function per problem: objective - mu * sum(log(slack))."""
+        v, gap_hi, x_end = state[:3]
+        logs = np.add.reduceat(np.log(v) + cap_f * np.log(gap_hi), offsets)
+        logs[end_problem] += np.log(x_end)
+        return state[7] - mu * logs
 
     def gradient(d_bin: FloatArray, d_point: FloatArray, d_end: FloatArray) -> FloatArray:
         """Gradient in x from derivatives per bin (in v), per point and per free end point."""
@@ -581,7 +615,7 @@ def _interior_point(
 
     # Start: the strictly feasible schedule proportional to the caps, multipliers on the
     # central path for mu = 1/m (the objective is about 1 there by construction).
-    v0 = np.concatenate([_start(r.caps, math.isinf(r.terminal)) for r in problems])
+    v0 = np.concatenate([r.start for r in problems])
     x = 1.0 - _segment_cumsum(v0, offsets, sizes)
     x[fixed_idx] = 0.0
     mu0 = 1.0 / n_end
@@ -596,17 +630,31 @@ def _interior_point(
     dual_tolerance = 1e-3 * math.sqrt(tolerance)
     done = np.zeros(count, dtype=bool)
     iterations = np.zeros(count, dtype=int)
+    stalled = np.zeros(count, dtype=bool)
+    best_dual = np.full(count, np.inf)
+    flat = np.zeros(count, dtype=int)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         state = evaluate(x)
         r_dual = dual_residual(state, lo, hi, end)
         for _ in range(_MAX_ITERATIONS):
             gap = complementarity(state, lo, hi, end)
             dual_inf = np.maximum.reduceat(np.abs(r_dual), offsets)
-            done |= (dual_inf <= dual_tolerance) & (gap <= gap_tolerance)
+            # Converged: complementarity below its tolerance and the dual residual too, or no
+            # further move possible. The latter happens where a trade or inventory is pinned
+            # at 0 under a term that is steep there (small beta, p near 1): it cannot get below
+            # ~1e-16 in floating point (it is a difference of numbers near 1), so its slope and
+            # the dual residual stay finite while the objective has nothing left to gain.
+            # (Checked against Clarabel in tests/test_solve_references.py.)
+            # The same when the residual has stopped improving for a few iterations.
+            improved = dual_inf < 0.5 * best_dual
+            best_dual = np.where(improved, dual_inf, best_dual)
+            flat = np.where(improved | (gap > gap_tolerance), 0, flat + 1)
+            stalled |= flat >= 5
+            done |= (gap <= gap_tolerance) & ((dual_inf <= dual_tolerance) | stalled)
             if done.all():
                 break
             iterations += ~done
-            v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point = state
+            v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point, _ = state
             mu = np.maximum(0.1 * gap, 0.1 * gap_tolerance) / n_constraints
             mu_e = np.repeat(mu, sizes)
             mu_end = mu[end_problem]
@@ -647,8 +695,11 @@ def _interior_point(
             step = np.minimum(1.0, _BOUNDARY_FRACTION * limit)
             step[done] = 0.0
             old = merit(state, r_dual, lo, hi, end, mu)
-            # Backtrack on the residual norm, per problem (rarely needed: convex problem).
-            for _ in range(50):
+            armijo: tuple[FloatArray, FloatArray] | None = None  # computed when first needed
+            # Backtrack per problem until the step reduces the residual norm or satisfies
+            # Armijo's condition on the barrier function (either is progress for a convex
+            # problem; the second keeps going where the residual norm is a poor guide).
+            for _ in range(60):
                 step_e = np.repeat(step, sizes)
                 x_new = x + step_e * dx
                 lo_new = lo + step_e * d_lo
@@ -660,7 +711,16 @@ def _interior_point(
                 ok = (new <= (1.0 - 0.01 * step) ** 2 * old) | done
                 if ok.all():
                     break
+                if armijo is None:
+                    old_barrier = barrier(state, mu)
+                    slope = -np.add.reduceat(rhs * dx, offsets)  # of the barrier along dx
+                    armijo = (old_barrier + 1e-13 * np.abs(old_barrier), 1e-4 * slope)
+                ok |= barrier(state_new, mu) <= armijo[0] + step * armijo[1]
+                if ok.all():
+                    break
                 step = np.where(ok, step, 0.5 * step)
+            moved = np.maximum.reduceat(np.abs(x_new - x), offsets)
+            stalled = (moved <= 1e-14) | (step < 1e-6)
             x, lo, hi, end, state, r_dual = x_new, lo_new, hi_new, end_new, state_new, r_new
         else:
             raise SolveError(
@@ -677,8 +737,11 @@ def _solve_tridiagonal(diag: FloatArray, off: FloatArray, rhs: FloatArray) -> Fl
     if diag.size == 1:
         return rhs / diag
     _, _, solution, info = lapack.dptsv(diag, off, rhs[:, None])
-    if info != 0:  # not positive definite in floating point: pivot instead
+    if info != 0:  # not positive definite in floating point: pivot, then regularise
         _, _, _, solution, info = lapack.dgtsv(off, diag, off, rhs[:, None])
+        if info != 0:
+            shift = 1e-12 * float(np.abs(diag).max()) + 1e-300
+            _, _, _, solution, info = lapack.dgtsv(off, diag + shift, off, rhs[:, None])
         if info != 0:
             raise SolveError(f"singular Newton system (LAPACK info {info})")
     result: FloatArray = solution[:, 0]
