@@ -37,12 +37,21 @@ Events:
 Outputs of one event are ordered by order id (symbol-level alerts first), and within an order as
 produced: target, status, alerts. Floats are rounded only on the wire (:func:`tracker.wire.encode`).
 
-Decisions (see the README of the engine in the module docstrings of :mod:`tracker.alerts`):
+Decisions (the alert codes, severities, thresholds and hysteresis are in :mod:`tracker.alerts`):
 
 * Overfill: the fill is recorded (it happened in the market), ``fill_overfill`` is raised
   (critical) and targets are never negative: remaining is ``max(quantity - filled, 0)``.
 * A fill for an unknown order: one ErrorMessage (the line is rejected) and one
   ``fill_unknown_order`` alert (critical) on ``{root}/alerts/{order_id}``.
+* Deviation from plan is measured against the *baseline* (the plan made at the start, or at the
+  latest amendment), never against the latest re-plan, which starts from the realized inventory
+  and so has no gap by construction. "Bins" of deviation are bins of the baseline's average
+  planned trading (its quantity over its number of bins).
+* Symbol-wide conditions (liquidity shock, stale data, default profile) are published once per
+  symbol on ``{root}/alerts`` with ``order_id`` null, not once per order; the summary counts the
+  alerts of each order only.
+* Raised conditions of an order that ends (done, cancelled, expired) are dropped without a
+  "cleared" message: the end of the order says it.
 * Time going backwards is judged per stream: bins per symbol (by bin start), order messages per
   order, ticks among ticks, control among control messages. Fills carry their execution time and
   may arrive late: they are not rejected for it.
@@ -106,11 +115,9 @@ class EngineConfig(AlertConfig):
     Attributes:
         expiry_grace_seconds: An order expires this long after its end (fills of its last bin
             that arrive within the grace still count as live).
-        root: Topic root, used to name the topic of an error the engine raises itself.
     """
 
     expiry_grace_seconds: float = 0.0
-    root: str = DEFAULT_ROOT
 
     def __post_init__(self) -> None:
         super().__post_init__()
@@ -122,18 +129,6 @@ class EngineConfig(AlertConfig):
         ):
             raise InputError(
                 f"must be a number of seconds >= 0; got {grace!r}", field="expiry_grace_seconds"
-            )
-        root = self.root
-        if (
-            not isinstance(root, str)
-            or not root
-            or any(c in root for c in "#+")
-            or (root.startswith("/") or root.endswith("/"))
-        ):
-            raise InputError(
-                f"must be a topic prefix such as 'tracker' (no '#', '+', leading or trailing "
-                f"'/'); got {root!r}",
-                field="root",
             )
 
     @classmethod
@@ -277,14 +272,18 @@ class Engine:
         config: Thresholds and settings (defaults when ``None``).
         profiles: Liquidity profiles by symbol; a symbol without one uses
             :func:`tracker.liquidity.default_profile` (an info alert says so, once per symbol).
+        root: The topic root, to name the topic of a message the engine itself rejects.
     """
 
     def __init__(
         self,
         config: EngineConfig | None = None,
         profiles: Mapping[str, Profile] | None = None,
+        *,
+        root: str = DEFAULT_ROOT,
     ) -> None:
         self.config = config or EngineConfig()
+        self.root = root
         self._profiles: dict[str, Profile] = dict(profiles or {})
         self._orders: dict[str, _Order] = {}
         self._symbols: dict[str, _Symbol] = {}
@@ -360,7 +359,7 @@ class Engine:
         """
         order_id = None
         for kind in ("orders", "fills"):
-            prefix = f"{self.config.root}/{kind}/"
+            prefix = f"{self.root}/{kind}/"
             if topic.startswith(prefix) and "/" not in topic[len(prefix) :]:
                 candidate = topic[len(prefix) :]
                 if 0 < len(candidate) <= 64:
@@ -422,7 +421,7 @@ class Engine:
     # ---------------------------------------------------------------- helpers
 
     def _error(self, event: Inbound, reason: str) -> ErrorMessage:
-        root = self.config.root
+        root = self.root
         if isinstance(event, OrderMessage):
             topic, order_id = f"{root}/orders/{event.order_id}", event.order_id
         elif isinstance(event, FillMessage):

@@ -104,8 +104,7 @@ def _whole_shares(value: Any) -> int:
             raise ValueError(f"must be a finite number of whole shares; got {value!r}")
         if not value.is_integer():
             raise ValueError(f"must be whole shares (an integer); got {value!r}")
-        value = int(value)
-    return value
+    return int(value)
 
 
 def _finite_number(value: Any) -> float:
