@@ -350,7 +350,24 @@ class AlertMessage(_Outbound):
 
 
 class StatusMessage(_Outbound):
-    """Where an order stands (retained per order on the wire)."""
+    """Where an order stands (retained per order on the wire).
+
+    Attributes:
+        state: pending, working, halted, done, cancelled or expired.
+        filled, remaining: Shares filled, and shares still to fill (never negative).
+        progress_pct: Filled as % of the order (capped at 100).
+        planned_filled: Shares the baseline plan (made at the start or the latest amendment)
+            expected filled by the end of the last closed bin.
+        deviation_shares: ``planned_filled - filled``: positive = behind plan, negative = ahead.
+        deviation_pct: The same as % of the order quantity.
+        deviation_bins: The same in bins of the baseline's average planned trading per bin
+            (null before the order has a plan).
+        volume_scale: Today's volume multiplier on the symbol's profile (1 = a normal day).
+        expected_cost, expected_cost_bps: Expected cost to go of the current plan (half spread,
+            fees and impact; not the risk term), in currency and in basis points of the value of
+            the remaining shares at the plan's price; null when the order is not live.
+        plan_version: Version of the latest plan (1 = the plan made at the start).
+    """
 
     type: Literal["status"] = "status"
     order_id: str
