@@ -298,6 +298,7 @@ class Engine:
         self._ends: list[tuple[datetime, str]] = []
         self._to_plan: dict[str, str] = {}
         self._out: list[Outbound] = []
+        self._positions: dict[tuple[str, datetime], tuple[date, float]] = {}
 
     # ---------------------------------------------------------------- public API
 
@@ -315,6 +316,7 @@ class Engine:
         """
         self._out = []
         self._to_plan = {}
+        self._positions = {}
         try:
             if isinstance(event, FillMessage):
                 self._on_fill(event)
@@ -1123,9 +1125,14 @@ class Engine:
         session = sym.profile.session
         moment = max(order.start, now)
         n = session.n_bins
-        if self._local_day(sym, moment) != order.day:
+        key = (sym.name, moment)
+        cached = self._positions.get(key)
+        if cached is None:  # one timezone conversion per symbol and time, not per order
+            cached = (self._local_day(sym, moment), session.position(moment))
+            self._positions[key] = cached
+        day, position = cached
+        if day != order.day:
             return n, 1.0
-        position = session.position(moment)
         if position <= 0:
             first, fraction = 0, 1.0
         elif position >= n:

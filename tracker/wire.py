@@ -33,6 +33,7 @@ from typing import Annotated, Any, Literal
 
 from pydantic import (
     AfterValidator,
+    AwareDatetime,
     BaseModel,
     BeforeValidator,
     ConfigDict,
@@ -151,6 +152,8 @@ def _non_negative(value: float) -> float:
 
 Id = Annotated[str, BeforeValidator(_check_id)]
 Time = Annotated[datetime, BeforeValidator(_aware_time), PlainSerializer(_format_time)]
+# Outbound times come from validated state; pydantic's own aware check is enough (and fast).
+OutTime = Annotated[AwareDatetime, PlainSerializer(_format_time)]
 Shares = Annotated[int, BeforeValidator(_whole_shares), AfterValidator(_positive)]
 NonNegativeShares = Annotated[int, BeforeValidator(_whole_shares), AfterValidator(_non_negative)]
 Price = Annotated[float, BeforeValidator(_finite_number), AfterValidator(_positive)]
@@ -321,14 +324,14 @@ class TargetMessage(_Outbound):
     order_id: str
     symbol: str
     side: Side
-    bin_start: Time | None
-    bin_end: Time | None
+    bin_start: OutTime | None
+    bin_end: OutTime | None
     quantity: int
     cumulative_target: int
     remaining: int
     max_quantity: int | None
     plan_version: int
-    ts: Time
+    ts: OutTime
 
 
 class AlertMessage(_Outbound):
@@ -346,7 +349,7 @@ class AlertMessage(_Outbound):
     state: Literal["raised", "cleared"] = "raised"
     message: str
     details: dict[str, Any] = Field(default_factory=dict)
-    ts: Time
+    ts: OutTime
 
 
 class StatusMessage(_Outbound):
@@ -389,7 +392,7 @@ class StatusMessage(_Outbound):
     expected_cost: float | None
     expected_cost_bps: float | None
     plan_version: int
-    ts: Time
+    ts: OutTime
 
 
 class ErrorMessage(_Outbound):
@@ -399,7 +402,7 @@ class ErrorMessage(_Outbound):
     reason: str
     topic: str
     payload: str
-    ts: Time | None
+    ts: OutTime | None
     line: int | None = None
     order_id: str | None = None
 
