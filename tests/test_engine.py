@@ -602,3 +602,90 @@ def test_engine_error_keeps_the_fields_sent(recorder: Recorder) -> None:
         '"ts":"2026-03-02T14:31:00Z"}'
     )
     assert expected == error.payload
+
+
+# ------------------------------------------------------------------ more transitions and rules
+
+
+def test_resume_before_start_returns_to_pending(recorder: Recorder) -> None:
+    """An order halted before its start resumes to pending, not working."""
+    recorder.feed(new_order())
+    recorder.feed(control("halt", order_id="A", ts=at(-20)))
+    recorder.feed(control("resume", order_id="A", ts=at(-10)))
+    assert State.PENDING == recorder.engine.state_of("A")  # type: ignore[attr-defined]
+
+
+def test_removing_the_limit_unblocks(recorder: Recorder) -> None:
+    """An amend with limit_price null removes the limit: the target is no longer zero."""
+    started(recorder, limit_price=20.1)
+    recorder.feed(closed_bin(0, price=20.3))
+    recorder.feed(amend("A", limit_price=None, ts=at(6)))
+    target = recorder.targets("A")[-1]
+    states = [a.state for a in recorder.alerts("limit_blocking", "A")]
+    assert target.quantity > 0
+    assert ["raised", "cleared"] == states
+
+
+def test_amend_resets_the_baseline(recorder: Recorder) -> None:
+    """After an amendment the deviation is measured against the new plan (zero at first)."""
+    started(recorder)
+    for index in range(6):
+        recorder.feed(closed_bin(index))
+    behind = recorder.statuses("A")[-1].deviation_shares
+    recorder.feed(amend("A", quantity=60_000, ts=at(31)))
+    after = recorder.statuses("A")[-1].deviation_shares
+    assert behind > 0
+    assert 0 == after
+
+
+def test_large_fill_ahead_moves_the_plan_materially(recorder: Recorder) -> None:
+    """Filling a third of the order at once raises ahead_of_plan and replan_moved once each."""
+    started(recorder, quantity=90_000)
+    recorder.feed(fill("A", "big", 30_000, 20.0, ts=at(2)))
+    recorder.feed(closed_bin(0))
+    recorder.feed(closed_bin(1))
+    codes = sorted(a.code for a in recorder.alerts(order_id="A") if a.state == "raised")
+    assert ["ahead_of_plan", "replan_moved"] == codes
+
+
+def test_expiry_grace_lets_last_fills_count_as_live() -> None:
+    """With a grace period, a fill just after the end arrives before the order expires."""
+    recorder = Recorder(Engine(EngineConfig(expiry_grace_seconds=30)))
+    recorder.feed(order("S", "ZEPH", "buy", 5_000, at(0), at(10), ts=at(-1)))
+    recorder.feed(tick(at(0)))
+    recorder.feed(tick(at(10)))
+    recorder.feed(fill("S", "late", 1_000, 20.0, ts=at(10.2)))
+    recorder.feed(tick(at(11)))
+    expected = (State.EXPIRED, [])
+    assert expected == (
+        recorder.engine.state_of("S"),  # type: ignore[attr-defined]
+        recorder.alerts("fill_after_close"),
+    )
+
+
+def test_reject_names_the_order_of_the_topic() -> None:
+    """An error for a payload on an order topic carries that order id."""
+    error = Engine().reject("tracker/fills/ZEPH-1", b"{", "not JSON", None)
+    expected = ("ZEPH-1", "tracker/fills/ZEPH-1", "{")
+    assert expected == (error.order_id, error.topic, error.payload)
+
+
+def test_custom_root_names_the_topic_of_engine_errors() -> None:
+    """The engine's own errors use the root it was given."""
+    engine = Engine(root="desk7")
+    error = engine.handle(fill("NOPE", "f1", 1, 20.0, ts=at(1)))[0]
+    assert isinstance(error, ErrorMessage)
+    assert "desk7/fills/NOPE" == error.topic
+
+
+def test_status_is_retained_per_order_in_memory_publisher() -> None:
+    """The in-memory publisher keeps the latest status of each order as retained."""
+    from tracker.testing import MemoryPublisher
+
+    publisher = MemoryPublisher()
+    recorder = Recorder(Engine(), publisher=publisher)
+    started(recorder)
+    recorder.feed(fill("A", "f1", 500, 20.0, ts=at(1)))
+    retained = publisher.retained["tracker/status/A"].json()
+    assert (500, "working") == (retained["filled"], retained["state"])
+    assert "tracker/targets/A" in publisher.topics()
