@@ -689,3 +689,23 @@ def test_status_is_retained_per_order_in_memory_publisher() -> None:
     retained = publisher.retained["tracker/status/A"].json()
     assert (500, "working") == (retained["filled"], retained["state"])
     assert "tracker/targets/A" in publisher.topics()
+
+
+def test_solver_failure_keeps_previous_plan_and_alerts(
+    recorder: Recorder, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """If the solver fails, the engine goes on: one critical alert, no new plan version."""
+    import tracker.engine as engine_module
+    from tracker.errors import SolveError
+
+    started(recorder)
+
+    def fail(*_: object, **__: object) -> None:
+        raise SolveError("did not converge")
+
+    monkeypatch.setattr(engine_module, "solve_batch", fail)
+    monkeypatch.setattr(engine_module, "solve", fail)
+    recorder.feed(closed_bin(0))
+    alerts = recorder.alerts("replan_failed", "A")
+    assert ["critical"] == [a.severity for a in alerts]
+    assert 1 == recorder.targets("A")[-1].plan_version

@@ -1172,17 +1172,21 @@ class Engine:
             plan_from = first + 1 if blocked else first
             problem: Problem | None = None
             if plan_from < order.end_bin:
-                problem = build_problem(
-                    quantity=float(order.remaining),
-                    first_bin=plan_from,
-                    end_bin=order.end_bin,
-                    forecast=sym.forecast,
-                    preferences=order.prefs,
-                    max_participation=order.max_participation,
-                    price=price,
-                    first_fraction=fraction if plan_from == first else 1.0,
-                    reference_quantity=float(order.quantity),
-                )
+                try:
+                    problem = build_problem(
+                        quantity=float(order.remaining),
+                        first_bin=plan_from,
+                        end_bin=order.end_bin,
+                        forecast=sym.forecast,
+                        preferences=order.prefs,
+                        max_participation=order.max_participation,
+                        price=price,
+                        first_fraction=fraction if plan_from == first else 1.0,
+                        reference_quantity=float(order.quantity),
+                    )
+                except InputError as exc:  # never expected: the inputs were checked at the edge
+                    self._emit(self._replan_failed(order, ts, str(exc)))
+                    continue
             jobs.append((order, self._to_plan[order_id], first, fraction, blocked, problem))
         schedules = self._solve([job[5] for job in jobs], ts)
         for (order, reason, first, fraction, blocked, problem), schedule in zip(
@@ -1205,12 +1209,12 @@ class Engine:
         real = [p for p in problems if p is not None]
         try:
             solved: list[Schedule | None] = list(solve_batch(real)) if real else []
-        except TrackerError:
+        except (TrackerError, ArithmeticError, ValueError):
             solved = []
             for problem in real:  # find the one that fails; keep the others
                 try:
                     solved.append(solve(problem))
-                except TrackerError:
+                except (TrackerError, ArithmeticError, ValueError):
                     solved.append(None)
         iterator = iter(solved)
         return [next(iterator) if p is not None else None for p in problems]
@@ -1228,17 +1232,7 @@ class Engine:
     ) -> None:
         sym = self._symbols[order.symbol]
         if problem is not None and schedule is None:
-            self._emit(
-                self._event(
-                    REPLAN_FAILED,
-                    "critical",
-                    "The re-plan could not be solved; the previous plan stands. Report this "
-                    "with the replay file.",
-                    order,
-                    order.symbol,
-                    ts,
-                )
-            )
+            self._emit(self._replan_failed(order, ts, "the solver did not converge"))
             return
         price = self._price(order, sym)
         if schedule is not None:
@@ -1328,6 +1322,17 @@ class Engine:
             rules.limit_blocking(
                 blocked=blocked, side=order.side, limit=order.limit_price, price=sym.last_close
             ),
+            order,
+            order.symbol,
+            ts,
+        )
+
+    def _replan_failed(self, order: _Order, ts: datetime, why: str) -> AlertMessage:
+        return self._event(
+            REPLAN_FAILED,
+            "critical",
+            f"The re-plan failed ({why}); the previous plan and target stand. Report this with "
+            "the replay file.",
             order,
             order.symbol,
             ts,
