@@ -568,10 +568,6 @@ class Engine:
             )
             return
         order.life.apply(Event.START)
-        sym = self._symbols[order.symbol]
-        self._ensure_day_for_order(sym, order)
-        if sym.stale_since is None:
-            sym.stale_since = max(now, order.start)
         self._to_plan[order.order_id] = "start"
 
     def _expire(self, order: _Order, now: datetime) -> None:
@@ -1166,6 +1162,8 @@ class Engine:
             sym = self._symbols[order.symbol]
             self._ensure_day_for_order(sym, order)
             now = self._clock or ts
+            if sym.stale_since is None:  # staleness is judged from when an order first works
+                sym.stale_since = now
             first, fraction = self._horizon(order, sym, now)
             price = self._price(order, sym)
             blocked = self._beyond_limit(order, sym)
