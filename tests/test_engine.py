@@ -143,6 +143,7 @@ def test_halt_then_resume(recorder: Recorder) -> None:
     recorder.clear()
     recorder.feed(closed_bin(0))
     during_halt = recorder.targets("A")
+    assert ["halted"] == [s.state for s in recorder.statuses("A")]
     recorder.feed(control("resume", order_id="A", ts=at(6)))
     resumed = recorder.targets("A")
     assert 0 == halted_target.quantity

@@ -1079,8 +1079,11 @@ class Engine:
         self._check_fill_prices(sym, message, ts)
         self._advance(ts)
         for order_id in sym.orders:
-            if self._orders[order_id].life.state is State.WORKING:
+            order = self._orders[order_id]
+            if order.life.state is State.WORKING:
                 self._to_plan.setdefault(order_id, "bin")
+            elif order.life.state is State.HALTED:  # no target, but where it stands moved on
+                self._emit(self._status(order, ts))
 
     def _check_fill_prices(self, sym: _Symbol, message: BinMessage, ts: datetime) -> None:
         keep: list[tuple[str, FillMessage]] = []
