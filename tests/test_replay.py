@@ -424,3 +424,102 @@ def test_cli_profile_named_for_another_symbol_exits_2(tmp_path: Path) -> None:
     code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--profiles", str(folder)])
     expected = 2
     assert expected == code
+
+
+def test_cli_progress_on_request_goes_to_stderr(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """--progress draws the bar on stderr, never on stdout."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60)])
+    main(["replay", str(path), "--out", str(tmp_path / "out"), "--progress"])
+    captured = capsys.readouterr()
+    expected = (True, False)
+    assert expected == ("2/2" in captured.err, "2/2" in captured.out)
+
+
+def test_cli_no_progress_when_not_a_terminal(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Without --progress and with stderr not a terminal, stderr stays empty."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60)])
+    main(["replay", str(path), "--out", str(tmp_path / "out")])
+    expected = ""
+    assert expected == capsys.readouterr().err
+
+
+def test_cli_replays_a_journal_like_its_jsonl(tmp_path: Path) -> None:
+    """A journal and a JSON Lines file with the same messages and ticks give the same outputs."""
+    from tracker.journal import Journal
+
+    tick = {"topic": "tracker/tick", "payload": {"type": "tick", "ts": at(61)}, "ts": at(61)}
+    lines = [order(0), fill("F1", 100, 60), tick, fill("F2", 50, 90)]
+    path = write(tmp_path, lines)
+    with Journal(tmp_path / "day.sqlite", durability="normal") as journal:
+        for line in lines:
+            journal.append(line["topic"], json.dumps(line["payload"]).encode(), line["ts"])
+    main(["replay", str(path), "--out", str(tmp_path / "a"), "--no-progress"])
+    main(["replay", str(tmp_path / "day.sqlite"), "--out", str(tmp_path / "b"), "--no-progress"])
+    assert [(tmp_path / "a" / n).read_bytes() for n in OUTPUT_FILES] == [
+        (tmp_path / "b" / n).read_bytes() for n in OUTPUT_FILES
+    ]
+
+
+def test_cli_config_file_sets_engine_thresholds(tmp_path: Path) -> None:
+    """--config reads the [engine] table of a TOML file (as the daemon's config has it)."""
+    from tracker.cli.replay import load_config
+
+    config = tmp_path / "tracker.toml"
+    config.write_text("[engine]\nexpiry_grace_seconds = 30\n")
+    expected = 30
+    assert expected == load_config(config).expiry_grace_seconds
+
+
+def test_cli_config_unknown_threshold_exits_2(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An unknown engine threshold is a one-line error naming it, exit code 2."""
+    config = tmp_path / "engine.json"
+    config.write_text('{"no_such_threshold": 1}')
+    path = write(tmp_path, [order(0)])
+    code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--config", str(config)])
+    expected = (2, True)
+    assert expected == (code, "no_such_threshold" in capsys.readouterr().err)
+
+
+def test_cli_profiles_folder_is_used(tmp_path: Path) -> None:
+    """With a profile for ZEPH in --profiles, the default-profile alert does not appear."""
+    from tracker.liquidity import default_profile
+
+    folder = tmp_path / "profiles"
+    folder.mkdir()
+    (folder / "ZEPH.json").write_text(json.dumps(default_profile("ZEPH").to_mapping()))
+    bin_line = {
+        "topic": "tracker/bins/ZEPH",
+        "payload": {
+            "type": "bin",
+            "symbol": "ZEPH",
+            "start": at(0),
+            "end": at(300),
+            "volume": 10_000,
+            "vwap": 20.0,
+            "open": 20.0,
+            "high": 20.1,
+            "low": 19.9,
+            "close": 20.0,
+            "spread": 0.02,
+            "ts": at(301),
+        },
+        "ts": at(301),
+    }
+    path = write(tmp_path, [order(0), bin_line])
+    for name, extra in (("with", ["--profiles", str(folder)]), ("without", [])):
+        main(["replay", str(path), "--out", str(tmp_path / name), "--no-progress", *extra])
+    codes = {
+        name: [
+            json.loads(x)["code"]
+            for x in (tmp_path / name / "alerts.jsonl").read_text().splitlines()
+        ]
+        for name in ("with", "without")
+    }
+    expected = (False, True)
+    assert expected == ("default_profile" in codes["with"], "default_profile" in codes["without"])

@@ -180,13 +180,14 @@ def _progress_bar(total: int, show: bool) -> Iterator[Callable[[int], None] | No
     from rich.console import Console
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeRemainingColumn
 
+    console = Console(stderr=True)
     with Progress(
         "replaying",
         BarColumn(),
         MofNCompleteColumn(),
         TimeRemainingColumn(),
-        console=Console(stderr=True),
-        transient=True,
+        console=console,
+        transient=console.is_terminal,  # a log file keeps the final bar
     ) as bar:
         task = bar.add_task("replay", total=total)
 
