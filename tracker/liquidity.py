@@ -387,7 +387,11 @@ def forecast(
         )
     indexes = sorted(observed)
     for index in indexes:
-        if isinstance(index, bool) or not isinstance(index, int) or not 0 <= index < n:
+        if (
+            isinstance(index, bool)
+            or not isinstance(index, int | np.integer)
+            or not (0 <= index < n)
+        ):
             raise InputError(
                 f"must be a bin index from 0 to {n - 1}; got {index!r}", field="observed"
             )
@@ -397,6 +401,8 @@ def forecast(
                 f"{observed[index].volume!r} in bin {index}",
                 field="volume",
             )
+    observed = {int(i): observed[i] for i in indexes}
+    indexes = [int(i) for i in indexes]
     seen = np.array(indexes)
     observed_volume = np.array([observed[i].volume for i in indexes])
     fraction = float(profile.volume_share[seen].sum())

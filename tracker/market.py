@@ -301,6 +301,8 @@ def simulate_history(
     if isinstance(days, bool) or not isinstance(days, int) or days < 1:
         raise InputError(f"must be a whole number of days >= 1; got {days!r}", field="days")
     check_symbol(symbol)
+    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+        raise InputError(f"must be a whole number >= 0; got {seed!r}", field="seed")
     rng = np.random.default_rng(seed)
     return simulate_days(symbol, trading_days(first_day, days), rng, session, params)
 
