@@ -61,6 +61,28 @@ def test_remaining_volume_error_falls_through_the_morning(normal_days: np.ndarra
     assert sorted(errors, reverse=True) == errors
 
 
+def test_day_volume_error_falls_all_day(normal_days: np.ndarray) -> None:
+    """The error of the whole day's volume (observed + forecast) falls at every checkpoint."""
+    profile = true_profile("ZEPH")
+    errors = []
+    for seen in (0, 6, 12, 24, 39, 52, 66, 72):
+        errors.append(
+            np.mean(
+                [
+                    abs(
+                        forecast(
+                            profile, {i: ObservedBin(float(d[i])) for i in range(seen)}
+                        ).volume.sum()
+                        / d.sum()
+                        - 1.0
+                    )
+                    for d in normal_days
+                ]
+            )
+        )
+    assert sorted(errors, reverse=True) == errors
+
+
 @pytest.mark.parametrize("shock", [2.0, 0.5], ids=["double-volume", "half-volume"])
 @pytest.mark.parametrize("seen", [6, 12, 39, 66], ids=lambda k: f"after-{k}-bins")
 def test_forecast_beats_unadjusted_profile_on_shock_days(shock: float, seen: int) -> None:
