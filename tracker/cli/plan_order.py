@@ -26,16 +26,20 @@ ORDER_HELP = (
 )
 
 PREFERENCES_HELP = (
-    'Preferences (the order\'s "preferences" object; explicit values override the urgency '
-    "preset): risk_aversion (inventory aversion, dimensionless per unit of the symbol's daily "
-    "traded value; lambda = risk_aversion / (price x ADV) in 1/currency), completion_penalty "
-    '("force", the default: finish by the end; or basis points of price per unfinished share), '
-    "penalty_exponent (p in [1, 4], default 2), impact_law ("
-    + ", ".join(
-        f"{name}: {law.source}, beta {law.exponent:g}, eta {law.coefficient:.3g}"
+    "The problem per bin n (forecast volume V_n shares, spread s_n, volatility sigma_n of the "
+    "bin's log return, price P): h_n = s_n / 2 + fees; impact cost per share eta sigma_n "
+    "sqrt(N) P (v / V_n)^beta; inventory risk c_n = lambda (sigma_n P)^2 on the shares left; "
+    'caps u_n = max_participation x V_n. Preferences (the order\'s "preferences" object; '
+    "explicit values override the urgency preset): risk_aversion (inventory aversion, "
+    "dimensionless per unit of the symbol's daily traded value; lambda = risk_aversion / "
+    '(P x ADV) in 1/currency); completion_penalty ("force", the default: finish by the end; '
+    "or basis points of price per unfinished share); penalty_exponent (p in [1, 4], default 2); "
+    "impact_law, one of "
+    + "; ".join(
+        f"{name} (beta {law.exponent:g}, eta {law.coefficient:.3g}: {law.source})"
         for name, law in IMPACT_LAWS.items()
     )
-    + "; default sqrt), impact_coefficient (eta), fee_bps (fees in bps of price, default 0). "
+    + " (default sqrt); impact_coefficient (eta); fee_bps (fees in bps of price, default 0). "
     "Urgency presets set risk_aversion: "
     + ", ".join(f"{name} {values['risk_aversion']:g}" for name, values in URGENCY.items())
     + " (default medium): low follows the volume curve, high front-loads."
