@@ -544,10 +544,10 @@ def _trimmed_mean(matrix: FloatArray, trim: float = TRIM) -> FloatArray:
 
 
 def _parse_start(column: Any, session: Session) -> tuple[Any, Any]:
-    """Parse ``start`` into local (day, minute-of-day, second) arrays; NaT where unparseable.
+    """Parse ``start`` into the session's local time; return it and the unparseable rows' mask.
 
     Strings with an offset (or Z) are converted to the session's zone; strings without one are
-    taken as the session's local time.
+    taken as the session's local time (a local time that does not exist that day is unparseable).
     """
     import pandas as pd
 
