@@ -376,8 +376,8 @@ class Replayer:
         """Handle one line; return what the engine said (and the line's error, if rejected)."""
         self.lines += 1
         if isinstance(record, BadLine):
-            return [self._reject(record.line, record.topic, record.raw, record.reason, record.ts)]
-        raw = payload_text(record.payload)
+            when = _parse_ts_or_none(record.ts)
+            return [self._reject(record.line, record.topic, record.raw, record.reason, when)]
         recorded: datetime | None = None
         if record.ts is not None:
             try:
@@ -387,7 +387,7 @@ class Replayer:
                     self._reject(
                         record.line,
                         record.topic,
-                        raw,
+                        payload_text(record.payload),
                         f"the line's 'ts' {record.ts!r} is not an ISO 8601 time with an offset; "
                         "write it like 2026-03-10T14:30:00Z, or leave it out",
                         None,
@@ -396,7 +396,11 @@ class Replayer:
         try:
             message = decode(record.topic, record.payload, root=self.root)
         except WireError as exc:
-            return [self._reject(record.line, record.topic, raw, exc.reason, recorded)]
+            return [
+                self._reject(
+                    record.line, record.topic, payload_text(record.payload), exc.reason, recorded
+                )
+            ]
         key = _identity(record.topic, message)
         if key in self._seen:
             self.redelivered += 1
@@ -411,7 +415,7 @@ class Replayer:
                 self._reject(
                     record.line,
                     record.topic,
-                    raw,
+                    payload_text(record.payload),
                     f"time goes backwards: this line's ts {_iso(recorded)} is earlier than "
                     f"{_iso(self._recorded)} of a line before it; a recording must be in the "
                     "order the messages were received -- sort the lines by 'ts' or fix this "
@@ -604,6 +608,15 @@ def _parse_ts(text: str) -> datetime:
     if value.tzinfo is None:
         raise ValueError("no offset")
     return value
+
+
+def _parse_ts_or_none(text: str | None) -> datetime | None:
+    if text is None:
+        return None
+    try:
+        return _parse_ts(text)
+    except ValueError:
+        return None
 
 
 def _iso(value: datetime) -> str:

@@ -123,7 +123,7 @@ def load_config(path: Path) -> EngineConfig:
     data = _read_mapping(path, "--config")
     engine_table = data.get("engine")
     if isinstance(engine_table, Mapping):
-        data = engine_table
+        data = dict(engine_table)
     return EngineConfig.from_mapping(data)
 
 
