@@ -365,3 +365,12 @@ def test_simulate_day_command_writes_the_recording(tmp_path: Path) -> None:
     result = replay(read_input(path), Engine())
     expected = (0, 5)
     assert expected == (code, len(result.errors))
+
+
+def test_payload_bytes_decode_to_the_same_message() -> None:
+    """The bytes published over MQTT decode to the same message as the recorded object."""
+    from tracker.scenario import payload_bytes
+
+    record = Scenario(7).inbound_until(datetime(2026, 3, 10, 13, 29, tzinfo=UTC))[0]
+    expected = decode(record.topic, record.payload)
+    assert expected == decode(record.topic, payload_bytes(record))

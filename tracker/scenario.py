@@ -27,7 +27,20 @@ What goes into the queue:
 * a few deliberately bad messages (:data:`MALFORMED`) and one exact redelivery of a fill, so the
   recording exercises the error path.
 
-The same seed gives the same day, message for message.
+The same seed gives the same day, message for message (given the same engine outputs).
+
+Driving it (in-process, :func:`run_day`, or over MQTT, ``tracker demo``)::
+
+    scenario = Scenario(seed)
+    while (due := scenario.next_time()) is not None:
+        # live: wait until the (scaled) clock reaches `due`
+        for record in scenario.inbound_until(due):
+            publish(record.topic, payload_bytes(record))   # or feed the engine directly
+        for message in outputs_received_meanwhile():        # targets, status, ...
+            scenario.on_output(message)
+
+Fills for a target are scheduled after the later of the target's ``ts`` and the latest time already
+handed out, so outputs that arrive late (over a broker) never make time go backwards.
 """
 
 from __future__ import annotations
@@ -65,6 +78,7 @@ __all__ = [
     "MarketBin",
     "Scenario",
     "ScenarioOrder",
+    "payload_bytes",
     "record_line",
     "run_day",
     "write_day",
@@ -651,6 +665,16 @@ def record_line(record: Record) -> str:
         payload = payload.decode("utf-8", errors="replace")
     obj = {"topic": record.topic, "payload": payload, "ts": record.ts}
     return json.dumps(obj, ensure_ascii=False, separators=(",", ":"))
+
+
+def payload_bytes(record: Record) -> bytes:
+    """A record's payload as the bytes to publish over MQTT (compact JSON, or the raw text)."""
+    payload = record.payload
+    if isinstance(payload, bytes):
+        return payload
+    if isinstance(payload, str):
+        return payload.encode("utf-8")
+    return json.dumps(payload, ensure_ascii=False, separators=(",", ":")).encode("utf-8")
 
 
 def run_day(
