@@ -523,3 +523,11 @@ def test_cli_profiles_folder_is_used(tmp_path: Path) -> None:
     }
     expected = (False, True)
     assert expected == ("default_profile" in codes["with"], "default_profile" in codes["without"])
+
+
+def test_reader_ignores_a_byte_order_mark(tmp_path: Path) -> None:
+    """A UTF-8 byte-order mark before the first line is not an error."""
+    path = tmp_path / "in.jsonl"
+    path.write_text("\ufeff" + json.dumps(order(0)) + "\n", encoding="utf-8")
+    (line,) = list(read_jsonl(path))
+    assert isinstance(line, Record)

@@ -181,6 +181,8 @@ def parse_line(number: int, raw_bytes: bytes | str) -> Record | BadLine:
     else:
         text = raw_bytes
     text = text.rstrip("\r\n")
+    if number == 1:
+        text = text.removeprefix("\ufeff")  # a byte-order mark some editors write
     try:
         obj = json.loads(text)
     except (json.JSONDecodeError, RecursionError) as exc:
