@@ -13,6 +13,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import functools
+import getpass
 import json
 import shutil
 import signal
@@ -69,6 +70,9 @@ class PrivateMosquitto:
             "\n".join(
                 [
                     f"listener {self.port} 127.0.0.1",
+                    # Started as root, mosquitto would switch to user "mosquitto", which cannot
+                    # write its log or its saved sessions in our temp folder.
+                    f"user {getpass.getuser()}",
                     "allow_anonymous true",
                     "persistence true",
                     f"persistence_location {folder}/",
@@ -378,7 +382,7 @@ def replay_by_topic(journal: Path, root: str) -> tuple[dict[str, list[bytes]], d
     from tracker.replay import replay
     from tracker.wire import encode, topic_of
 
-    result = replay(read_journal(journal), Engine(), root)
+    result = replay(read_journal(journal), Engine(root=root), root)
     by_topic: dict[str, list[bytes]] = {}
     for message in [*result.targets, *result.alerts, *result.status, *result.errors]:
         by_topic.setdefault(topic_of(message, root), []).append(encode(message))

@@ -98,7 +98,8 @@ def build_engine(settings: Settings) -> Engine:
 
     config = EngineConfig.from_mapping(settings.engine) if settings.engine else None
     profiles = load_profiles(settings.profiles) if settings.profiles is not None else {}
-    return Engine(config=config, profiles=profiles)
+    # The engine names the topic of errors it raises itself: it must use the daemon's root.
+    return Engine(config=config, profiles=profiles, root=settings.root)
 
 
 class _TickRequest:

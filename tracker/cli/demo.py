@@ -389,7 +389,7 @@ def _replay(journal: Path, out: Path, root: str) -> tuple[dict[str, list[bytes]]
     from tracker.replay import replay, write_outputs
     from tracker.wire import encode
 
-    result = replay(read_journal(journal), Engine(), root)
+    result = replay(read_journal(journal), Engine(root=root), root)
     write_outputs(result, out)
     replayed: dict[str, list[bytes]] = {}
     for kind, messages in (
