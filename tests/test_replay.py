@@ -328,18 +328,20 @@ def test_line_without_ts_moves_ticks_by_the_message_time(tmp_path: Path) -> None
     assert [at(1), at(2)] == tick_times(spy.events)
 
 
-def test_journal_is_replayed_in_its_own_order(tmp_path: Path) -> None:
-    """A journal's records are fed as journaled: its ticks, and no time-order check."""
+def test_journal_is_replayed_with_its_own_ticks(tmp_path: Path) -> None:
+    """A journal's records are fed as journaled: its ticks only, a late fill still counted."""
     from tracker.journal import Journal
 
     path = tmp_path / "day.sqlite"
+    late = fill("F2", 50, 30)
+    late["ts"] = at(65)  # received after F1, executed before it
     with Journal(path, durability="normal") as journal:
-        for line in (order(0), fill("F1", 100, 60), fill("F2", 50, 30)):
+        for line in (order(0), fill("F1", 100, 60), late):
             payload = json.dumps(line["payload"]).encode()
             journal.append(line["topic"], payload, line["ts"])
         journal.append("tracker/tick", json.dumps({"type": "tick", "ts": at(70)}).encode(), at(70))
     spy = Spy()
-    result = replay(read_input(path), spy, check_time=False)
+    result = replay(read_input(path), spy)
     expected = ([], 150, [at(70)])
     assert expected == (
         [e.line for e in result.errors],

@@ -21,7 +21,8 @@ each accepted message to :meth:`Engine.handle`. Every line ends in exactly one o
   3. time order: a line whose recorded ``ts`` is earlier than that of a line before it (the
      recording is out of order). A line recorded without ``ts`` is left to the engine's own
      per-stream rules (bins per symbol, order messages per order; a late fill is legitimate). A
-     journal is not checked: its order is, by definition, the order the live engine applied;
+     journal is checked the same way: the live daemon fed each record through this same class as
+     it journaled it (its receive times never go backwards), so a replay decides as it did;
   4. the engine's own verdict (a fill for an unknown order, ...): every ErrorMessage the engine
      returns while handling a line gets that line's number.
 
@@ -337,8 +338,8 @@ class Replayer:
         derive_ticks: Inject ticks derived from the lines' times (see the module docstring). Turn
             off when the recording holds its own ticks.
         tick_seconds: Interval of derived ticks.
-        check_time: Reject a line whose recorded ``ts`` is earlier than an earlier line's. Off for
-            a journal, whose order is by definition the order the live engine applied.
+        check_time: Reject a line whose recorded ``ts`` is earlier than an earlier line's (keep it
+            on wherever the live daemon keeps it on, so that replays decide as live did).
     """
 
     def __init__(
@@ -508,7 +509,7 @@ def replay(
         engine: A fresh engine (it is fed every line).
         root: The MQTT topic root the recording was made under.
         tick_seconds: Interval of derived ticks.
-        check_time: Reject lines whose recorded ts goes backwards (turn off for a journal).
+        check_time: Reject lines whose recorded ts goes backwards (as the live daemon does).
         progress: Called with the number of lines done, every few thousand lines and at the end.
 
     Returns:

@@ -82,11 +82,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 def run(args: argparse.Namespace) -> int:
     """Replay INPUT into DIR; print a one-line account; return 0."""
     from tracker.engine import Engine
-    from tracker.replay import is_journal, read_input, replay, stderr_is_terminal, write_outputs
+    from tracker.replay import read_input, replay, stderr_is_terminal, write_outputs
 
     config = load_config(Path(args.config)) if args.config else None
     profiles = load_profiles(Path(args.profiles)) if args.profiles else {}
-    journal = is_journal(Path(args.input))
     records = list(read_input(Path(args.input)))
     engine = Engine(config=config, profiles=profiles)
     show = stderr_is_terminal() if args.progress is None else bool(args.progress)
@@ -96,7 +95,6 @@ def run(args: argparse.Namespace) -> int:
             engine,
             args.root,
             tick_seconds=args.tick_seconds,
-            check_time=not journal,
             progress=advance,
         )
     write_outputs(result, Path(args.out))
