@@ -231,7 +231,7 @@ class _Symbol:
     last_index: int | None = None
     last_close: float | None = None
     last_bin_end: datetime | None = None
-    stale_since: datetime | None = None  # reference time of the staleness judgement
+    stale_at: datetime | None = None  # stale if no bin arrives by then (None: not watched)
     orders: dict[str, None] = field(default_factory=dict)  # every order id, ordered set
     unchecked: list[tuple[str, FillMessage]] = field(default_factory=list)
 
@@ -299,6 +299,7 @@ class Engine:
         self._to_plan: dict[str, str] = {}
         self._out: list[Outbound] = []
         self._positions: dict[tuple[str, datetime], tuple[date, float]] = {}
+        self._stale_due: datetime | None = None
 
     # ---------------------------------------------------------------- public API
 
@@ -522,7 +523,7 @@ class Engine:
         sym.bins = {}
         sym.last_index = None
         sym.last_bin_end = None
-        sym.stale_since = None
+        sym.stale_at = None
         sym.unchecked = []
         sym.forecast = forecast(sym.profile, {})
 
@@ -596,22 +597,45 @@ class Engine:
             )
         )
 
+    def _arm_staleness(self, sym: _Symbol, reference: datetime) -> None:
+        """Watch ``sym``: stale if no bin arrives within ``stale_bins`` bins of ``reference``."""
+        limit = timedelta(seconds=self.config.stale_bins * sym.session_bin_seconds)
+        sym.stale_at = reference + limit
+        if self._stale_due is None or sym.stale_at < self._stale_due:
+            self._stale_due = sym.stale_at
+
     def _judge_staleness(self, now: datetime) -> None:
+        """Raise ``market_data_stale`` for watched symbols whose next bin is overdue.
+
+        Cheap on every event: nothing is looked at before the earliest deadline. A symbol is
+        judged once when its deadline passes (then unwatched until its next bin or plan): raised
+        if it is in session, on its day, with a working order; otherwise just unwatched.
+        """
+        if self._stale_due is None or now <= self._stale_due:
+            return
+        due: datetime | None = None
         for name in sorted(self._symbols):
             sym = self._symbols[name]
-            session = sym.profile.session
-            if sym.stale_since is None or session.bin_index(now) is None:
+            deadline = sym.stale_at
+            if deadline is None:
+                continue
+            if now <= deadline:
+                due = deadline if due is None else min(due, deadline)
+                continue
+            sym.stale_at = None
+            if sym.profile.session.bin_index(now) is None:
+                continue
+            if sym.day is not None and self._local_day(sym, now) != sym.day:
                 continue
             if not any(self._orders[o].life.state is State.WORKING for o in sym.orders):
                 continue
-            reference = sym.last_bin_end or sym.stale_since
-            if sym.day is not None and self._local_day(sym, now) != sym.day:
-                continue
-            age = (now - reference).total_seconds()
+            limit = self.config.stale_bins * sym.session_bin_seconds
+            age = (now - deadline).total_seconds() + limit
             check = rules.stale(
-                age_seconds=max(age, 0.0), bin_seconds=sym.session_bin_seconds, config=self.config
+                age_seconds=age, bin_seconds=sym.session_bin_seconds, config=self.config
             )
             self._apply_check(check, None, name, now)
+        self._stale_due = due
 
     # ---------------------------------------------------------------- handlers
 
@@ -1064,6 +1088,7 @@ class Engine:
             sym.name,
             ts,
         )
+        self._arm_staleness(sym, ts)  # judged from when the last bin arrived (event time)
         for order_id in sym.orders:
             order = self._orders[order_id]
             if order.arrival_price is None and message.start >= order.start:
@@ -1165,8 +1190,9 @@ class Engine:
             sym = self._symbols[order.symbol]
             self._ensure_day_for_order(sym, order)
             now = self._clock or ts
-            if sym.stale_since is None:  # staleness is judged from when an order first works
-                sym.stale_since = now
+            if sym.stale_at is None:  # watch the feed from when an order works, in session
+                opening = sym.day_bins[0][0] if sym.day_bins else now
+                self._arm_staleness(sym, max(now, opening, sym.last_bin_end or now))
             first, fraction = self._horizon(order, sym, now)
             price = self._price(order, sym)
             blocked = self._beyond_limit(order, sym)
