@@ -1021,7 +1021,10 @@ class Engine:
         session = sym.profile.session
         day = self._local_day(sym, message.start)
         index = session.bin_index(message.start)
-        expected = session.bins(day)[index] if index is not None else None
+        expected = None
+        if index is not None:
+            bins = sym.day_bins if sym.day == day else session.bins(day)
+            expected = bins[index]
         if index is None or expected is None or (message.start, message.end) != expected:
             grid = f"{session.start:%H:%M}-{session.end:%H:%M} {session.timezone}"
             raise _Rejected(
