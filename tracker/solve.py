@@ -266,15 +266,20 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
 def _finish(problem: Problem, trades: FloatArray, method: str, iterations: int) -> Schedule:
     """Wrap final trades into a Schedule: trajectory, objective, breakdown and status."""
     quantity = problem.quantity
+    trades = np.maximum(trades, 0.0)
+    executed = np.cumsum(trades)
+    left = quantity - float(executed[-1])
+    if quantity > 0.0 and abs(left) <= 1e-9 * quantity and (problem.forced or left < 0.0):
+        # Rounding only: the last bin that trades takes exactly what is left, so a completed
+        # order ends at exactly zero and never below.
+        last = int(np.flatnonzero(trades)[-1])
+        trades[last] = max(trades[last] + left, 0.0)
+        executed = np.cumsum(trades)
+        executed[last:] = quantity
     trajectory = np.empty(problem.bins + 1)
     trajectory[0] = quantity
-    np.subtract(quantity, np.cumsum(trades), out=trajectory[1:])
-    if abs(trajectory[-1]) <= 1e-9 * quantity and (problem.forced or trajectory[-1] < 0.0):
-        # The last bin takes exactly what is left, so a completed order ends at exactly zero.
-        trades[-1] += trajectory[-1]
-        trajectory[-1] = 0.0
-    if trajectory.min() < 0.0:  # rounding only: every path keeps sum(trades) <= quantity
-        np.maximum(trajectory, 0.0, out=trajectory)
+    np.subtract(quantity, executed, out=trajectory[1:])
+    np.maximum(trajectory, 0.0, out=trajectory)
     cost = _breakdown(problem, trades, trajectory[1:])
     shortfall = float(trajectory[-1])
     capped = problem.caps is not None and float(problem.caps.sum()) < quantity
