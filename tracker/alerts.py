@@ -142,6 +142,10 @@ def _text(text: Text) -> str:
     return text() if callable(text) else text
 
 
+def _details(details: Mapping[str, Any] | Callable[[], Mapping[str, Any]]) -> dict[str, Any]:
+    return dict(details() if callable(details) else details)
+
+
 @dataclass(frozen=True)
 class Check:
     """The verdict of one rule on one condition, before hysteresis.
@@ -154,7 +158,8 @@ class Check:
         message: Plain-language message for a raise (or a function making it: the text is
             only built when the alert is actually raised, which keeps a bin close cheap).
         clear_message: Plain-language message for a clear (or a function making it).
-        details: Numbers behind the verdict (JSON-able).
+        details: Numbers behind the verdict (JSON-able), or a function making them (built only
+            on a raise or a clear).
     """
 
     code: str
@@ -163,7 +168,7 @@ class Check:
     recovered: bool
     message: Text
     clear_message: Text
-    details: Mapping[str, Any] = field(default_factory=dict)
+    details: Mapping[str, Any] | Callable[[], Mapping[str, Any]] = field(default_factory=dict)
 
 
 class AlertBook:
@@ -202,7 +207,7 @@ class AlertBook:
                 severity=check.severity,
                 state="raised",
                 message=_text(check.message),
-                details=dict(check.details),
+                details=_details(check.details),
                 ts=ts,
             )
         if key in self._raised and check.recovered and not check.breach:
@@ -214,7 +219,7 @@ class AlertBook:
                 severity="info",
                 state="cleared",
                 message=_text(check.clear_message),
-                details=dict(check.details),
+                details=_details(check.details),
                 ts=ts,
             )
         return None
@@ -290,7 +295,7 @@ def deviation(
         or (bins is not None and bins < r * config.deviation_bins)
     )
     bins_text = f", {bins:.1f} bins of planned trading" if bins is not None else ""
-    details = {
+    details = lambda: {  # noqa: E731 - built only on a raise or clear
         "deviation_shares": round(deviation_shares),
         "deviation_pct": pct,
         "deviation_bins": bins,
@@ -329,7 +334,7 @@ def completion(*, quantity: float, shortfall: float, config: AlertConfig) -> Che
             f"shares ({pct:.1f} %) would be left at the end. Raise the cap or extend the end."
         ),
         clear_message=lambda: "Completion is feasible again under the participation cap.",
-        details={"shortfall_shares": round(shortfall), "shortfall_pct": pct},
+        details=lambda: {"shortfall_shares": round(shortfall), "shortfall_pct": pct},
     )
 
 
@@ -360,7 +365,7 @@ def _ratio_check(
             f"({shown} times)."
         ),
         clear_message=lambda: f"{what.capitalize()} is back near its forecast ({shown} times).",
-        details={
+        details=lambda: {
             "observed": observed,
             "forecast": expected,
             "ratio": None if math.isinf(ratio) else ratio,
@@ -407,7 +412,7 @@ def limit_blocking(*, blocked: bool, side: str, limit: float | None, price: floa
             "zero and the rest of the order is re-planned over the bins left."
         ),
         clear_message=lambda: f"The market ({price}) is back within the limit {limit}.",
-        details={"limit_price": limit, "price": price},
+        details=lambda: {"limit_price": limit, "price": price},
     )
 
 
@@ -426,7 +431,7 @@ def stale(*, age_seconds: float | None, bin_seconds: float, config: AlertConfig)
             "and targets are running on old data. Check the market data feed."
         ),
         clear_message=lambda: "Market bins are arriving again.",
-        details={"age_seconds": age_seconds, "limit_seconds": limit},
+        details=lambda: {"age_seconds": age_seconds, "limit_seconds": limit},
     )
 
 
@@ -443,7 +448,7 @@ def replan_moved(*, move_shares: float, quantity: float, config: AlertConfig) ->
             f"({pct:.1f} % of the order) against the previous plan."
         ),
         clear_message=lambda: f"Re-plans are stable again (largest move {pct:.1f} % of the order).",
-        details={"move_shares": round(move_shares), "move_pct": pct},
+        details=lambda: {"move_shares": round(move_shares), "move_pct": pct},
     )
 
 

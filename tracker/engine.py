@@ -1266,7 +1266,8 @@ class Engine:
             return
         price = self._price(order, sym)
         if schedule is not None:
-            cumulative = np.cumsum(schedule.trades)
+            trajectory = schedule.trajectory
+            cumulative = trajectory[0] - trajectory[1:]  # cumulative trades, one array operation
             plan_first = first + 1 if blocked else first
             expected_cost = float(
                 schedule.cost.get("fixed_cost", 0.0)
@@ -1316,11 +1317,12 @@ class Engine:
             if max_quantity is not None:
                 quantity = min(quantity, max_quantity)
             self._emit(self._target(order, first, quantity, max_quantity, ts))
-        self._emit(self._status(order, ts))
-        # Alerts.
         closed = sym.last_index if sym.day == order.day else None
+        deviation = self._deviation(order, closed)
+        self._emit(self._status(order, ts, deviation))
+        # Alerts.
         if reason == "bin":
-            gap, gap_bins = self._deviation(order, closed)
+            _, gap, gap_bins = deviation
             behind, ahead = rules.deviation(
                 quantity=order.quantity,
                 deviation_shares=gap,
@@ -1368,16 +1370,17 @@ class Engine:
             ts,
         )
 
-    def _deviation(self, order: _Order, closed: int | None) -> tuple[float, float | None]:
-        """Planned minus filled shares (positive = behind) against the baseline, and in bins."""
+    def _deviation(self, order: _Order, closed: int | None) -> tuple[float, float, float | None]:
+        """Against the baseline: planned filled shares, the gap (planned - filled, positive =
+        behind) and the gap in bins of the baseline's average planned trading."""
         baseline = order.baseline
         if baseline is None:
-            return 0.0, None
+            return 0.0, 0.0, None
         planned = baseline.expected_filled(closed)
         gap = planned - order.filled
         bins = baseline.cumulative.size
         per_bin = baseline.quantity / bins if bins else 0.0
-        return gap, (gap / per_bin if per_bin > 0 else None)
+        return planned, gap, (gap / per_bin if per_bin > 0 else None)
 
     @staticmethod
     def _move(previous: _Plan, plan: _Plan, order: _Order) -> float:
@@ -1433,12 +1436,17 @@ class Engine:
         first, _ = self._horizon(order, sym, self._clock or ts)
         return self._target(order, first, 0, None, ts)
 
-    def _status(self, order: _Order, ts: datetime) -> StatusMessage:
-        sym = self._symbols[order.symbol]
-        closed = sym.last_index if sym.day == order.day else None
-        baseline = order.baseline
-        planned = baseline.expected_filled(closed) if baseline is not None else 0.0
-        gap, gap_bins = self._deviation(order, closed)
+    def _status(
+        self,
+        order: _Order,
+        ts: datetime,
+        deviation: tuple[float, float, float | None] | None = None,
+    ) -> StatusMessage:
+        if deviation is None:
+            sym = self._symbols[order.symbol]
+            closed = sym.last_index if sym.day == order.day else None
+            deviation = self._deviation(order, closed)
+        planned, gap, gap_bins = deviation
         plan = order.plan
         cost = plan.expected_cost if plan is not None and order.life.state in LIVE else None
         notional = order.remaining * plan.price if plan is not None else 0.0
