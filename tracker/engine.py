@@ -1342,22 +1342,28 @@ class Engine:
                     order.symbol,
                     ts,
                 )
-        self._apply_check(
-            rules.completion(quantity=order.quantity, shortfall=shortfall, config=self.config)
-            if status == CAPPED_SHORTFALL
-            else rules.completion(quantity=order.quantity, shortfall=0.0, config=self.config),
-            order,
-            order.symbol,
-            ts,
-        )
-        self._apply_check(
-            rules.limit_blocking(
-                blocked=blocked, side=order.side, limit=order.limit_price, price=sym.last_close
-            ),
-            order,
-            order.symbol,
-            ts,
-        )
+        # These two can only breach in one known case; otherwise they matter only if raised.
+        capped = status == CAPPED_SHORTFALL
+        if capped or self._book.is_raised(order.order_id, rules.COMPLETION_INFEASIBLE):
+            self._apply_check(
+                rules.completion(
+                    quantity=order.quantity,
+                    shortfall=shortfall if capped else 0.0,
+                    config=self.config,
+                ),
+                order,
+                order.symbol,
+                ts,
+            )
+        if blocked or self._book.is_raised(order.order_id, rules.LIMIT_BLOCKING):
+            self._apply_check(
+                rules.limit_blocking(
+                    blocked=blocked, side=order.side, limit=order.limit_price, price=sym.last_close
+                ),
+                order,
+                order.symbol,
+                ts,
+            )
 
     def _replan_failed(self, order: _Order, ts: datetime, why: str) -> AlertMessage:
         return self._event(
