@@ -371,7 +371,7 @@ def test_redelivered_bin_changes_nothing(recorder: Recorder) -> None:
     ("message", "expected"),
     [
         (closed_bin(0, volume=1), "already accepted"),
-        (closed_bin(-1 + 1, price=20.0, volume=12_000, spread=0.5), "already accepted"),
+        (closed_bin(0, spread=0.5), "already accepted"),
     ],
     ids=["different-volume", "different-spread"],
 )
