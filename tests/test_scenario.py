@@ -33,6 +33,7 @@ from tracker.scenario import (
 )
 from tracker.wire import (
     BinMessage,
+    ControlMessage,
     FillMessage,
     OrderMessage,
     StatusMessage,
@@ -130,6 +131,13 @@ def test_the_day_has_one_amend_and_one_cancel(day: list[tuple[Record, Any]]) -> 
     actions = Counter(m.action for _, m in day if isinstance(m, OrderMessage))
     expected = {"new": 4, "amend": 1, "cancel": 1}
     assert expected == dict(actions)
+
+
+def test_the_day_has_a_halt_and_a_resume(day: list[tuple[Record, Any]]) -> None:
+    """The desk halts one order and resumes it a quarter of an hour later."""
+    commands = [(m.command, m.order_id) for _, m in day if isinstance(m, ControlMessage)]
+    expected = [("halt", "ZEPH-S2"), ("resume", "ZEPH-S2")]
+    assert expected == commands
 
 
 def test_the_day_has_five_malformed_messages(day: list[tuple[Record, Any]]) -> None:
@@ -374,3 +382,29 @@ def test_payload_bytes_decode_to_the_same_message() -> None:
     record = Scenario(7).inbound_until(datetime(2026, 3, 10, 13, 29, tzinfo=UTC))[0]
     expected = decode(record.topic, record.payload)
     assert expected == decode(record.topic, payload_bytes(record))
+
+
+def test_no_fill_while_halted(closed_loop: DayRun) -> None:
+    """The router sends no fill for the halted order between its halt and its resume."""
+    from tracker.scenario import HALT
+
+    order_id, halt, resume = HALT
+    zone = Scenario(7).session.zone
+    start = datetime.combine(date(2026, 3, 10), halt, tzinfo=zone)
+    end = datetime.combine(date(2026, 3, 10), resume, tzinfo=zone)
+    during = [
+        r.line
+        for r in closed_loop.records
+        if r.topic == f"tracker/fills/{order_id}"
+        and r.ts is not None
+        and start <= datetime.fromisoformat(r.ts) < end
+    ]
+    expected: list[int] = []
+    assert expected == during
+
+
+def test_halt_and_resume_reach_the_engine(closed_loop: DayRun) -> None:
+    """The halt and the resume of the day each raise their alert."""
+    codes = [a.code for a in closed_loop.result.alerts if a.order_id == "ZEPH-S2"]
+    expected = (1, 1)
+    assert expected == (codes.count("order_halted"), codes.count("order_resumed"))

@@ -19,7 +19,7 @@ What goes into the queue:
   latency), from :mod:`tracker.market`'s invented generator; at midday ZEPH's liquidity collapses
   for a while (:data:`SHOCK`): volume falls to a fifth, the spread triples;
 * the parent orders (:data:`ORDERS`) at their submission times, one amend (MIRA's quantity and end
-  move) and one cancel (KALO's order stops early);
+  move), one cancel (KALO's order stops early) and a quarter-hour halt of ZEPH-S2 (:data:`HALT`);
 * fills: the router works each target over its bin in a few child slices. The fill model gives a
   slice nothing (a miss), part of what was asked, or all of it, at the bin's VWAP plus a fraction
   of the half spread against us, never more than a set share of the bin's real volume, never past
@@ -155,6 +155,9 @@ AMEND = ("MIRA-B1", time(11, 0), {"quantity": 55_000, "end": time(14, 0)})
 
 #: KALO-S1 is cancelled at 13:00, before its end.
 CANCEL = ("KALO-S1", time(13, 0))
+
+#: The desk halts ZEPH-S2 at 14:30 and resumes it at 14:45 (control messages).
+HALT = ("ZEPH-S2", time(14, 30), time(14, 45))
 
 
 @dataclass(frozen=True, slots=True)
@@ -346,6 +349,15 @@ class Scenario:
         )
         order_id, at = CANCEL
         self._push(self._local(at), f"{self.root}/orders/{order_id}", self._cancel(order_id, at))
+        order_id, halt, resume = HALT
+        for command, clock in (("halt", halt), ("resume", resume)):
+            payload = {
+                "type": "control",
+                "command": command,
+                "order_id": order_id,
+                "ts": _iso(self._local(clock)),
+            }
+            self._push(self._local(clock), f"{self.root}/control", _constant(payload))
 
     def _new_order(self, spec: ScenarioOrder, submit: datetime) -> Callable[[], Mapping[str, Any]]:
         def build() -> Mapping[str, Any]:
