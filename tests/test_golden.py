@@ -62,3 +62,23 @@ def test_the_day_has_targets_and_alerts(replayed: Path) -> None:
     alerts = (replayed / "alerts.jsonl").read_text(encoding="utf-8").splitlines()
     expected = ({"ZEPH-B1", "KALO-S1", "MIRA-B1", "ZEPH-S2"}, True)
     assert expected == (orders, len(alerts) > 0)
+
+
+def test_replay_in_another_process_matches_golden(tmp_path: Path) -> None:
+    """`python -m tracker replay` under another hash seed writes the golden files exactly."""
+    import os
+    import subprocess
+    import sys
+
+    env = {**os.environ, "PYTHONHASHSEED": "12345"}
+    subprocess.run(
+        [sys.executable, "-m", "tracker", "replay", str(DAY), "--out", str(tmp_path)],
+        check=True,
+        env=env,
+        capture_output=True,
+    )
+    differing = [
+        n for n in OUTPUT_FILES if (tmp_path / n).read_bytes() != (GOLDEN / n).read_bytes()
+    ]
+    expected: list[str] = []
+    assert expected == differing
