@@ -114,9 +114,15 @@ _TICK = _TickRequest()
 class _Clock:
     """The daemon's clock: wall (UTC) or simulated; never earlier than ``floor``."""
 
-    def __init__(self, settings: Settings, floor: datetime | None) -> None:
+    def __init__(
+        self,
+        settings: Settings,
+        floor: datetime | None,
+        source: Callable[[], datetime] | None = None,
+    ) -> None:
         self.speed = settings.clock_speed
-        self.simulated = settings.clock_start is not None
+        self.simulated = settings.clock_start is not None or source is not None
+        self._source = source
         origin = settings.clock_start
         if origin is not None and floor is not None and floor > origin:
             origin = floor  # a restarted simulation resumes where the journal stopped
@@ -125,7 +131,9 @@ class _Clock:
         self._floor = floor
 
     def __call__(self) -> datetime:
-        if self._origin is not None:
+        if self._source is not None:
+            now = self._source()
+        elif self._origin is not None:
             elapsed = (_time.monotonic() - self._started) * self.speed
             now = self._origin + timedelta(seconds=elapsed)
         else:
@@ -148,6 +156,9 @@ class Daemon:
         engine: The engine to drive; built from the settings when ``None``.
         on_output: Called with every output as it is queued for publication (the demo's live
             table uses it; also handy in tests).
+        clock: The time source (UTC datetimes) when it is not the wall clock nor the simulated
+            clock of the settings: the demo drives one that never runs ahead of its script.
+            ``settings.clock_speed`` still tells how many of its seconds pass per real second.
 
     Example::
 
@@ -162,8 +173,10 @@ class Daemon:
         *,
         engine: EngineLike | None = None,
         on_output: Callable[[Outbound], None] | None = None,
+        clock: Callable[[], datetime] | None = None,
     ) -> None:
         self.settings = settings
+        self._clock_source = clock
         self.root = settings.root
         self._engine_given = engine
         self._on_output = on_output
@@ -215,7 +228,7 @@ class Daemon:
             self.engine: EngineLike = engine
             self._replayer = Replayer(engine, root=self.root, derive_ticks=False)
             floor = _parse_ts(self._journal.last_ts) if self._journal.last_ts else None
-            self._clock = _Clock(self.settings, floor)
+            self._clock = _Clock(self.settings, floor, self._clock_source)
             self._recover()
         except BaseException:
             self._close_journal()

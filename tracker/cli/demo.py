@@ -225,7 +225,8 @@ async def play_day(
         )
         await _forget_session(broker, settings.client_id)
         started = _time.monotonic()
-        published = await _run_live(settings, scenario, show_table)
+        clock = _SimClock(settings.clock_start, speed)
+        published = await _run_live(settings, scenario, clock, show_table)
         wall = _time.monotonic() - started
         await _forget_session(broker, settings.client_id)
     finally:
@@ -260,7 +261,9 @@ async def _forget_session(broker: Any, client_id: str) -> None:
         pass
 
 
-async def _run_live(settings: Any, scenario: Any, show_table: bool) -> dict[str, list[bytes]]:
+async def _run_live(
+    settings: Any, scenario: Any, clock: _SimClock, show_table: bool
+) -> dict[str, list[bytes]]:
     """Daemon + scripted market/router until the day is over; the daemon's outputs by kind."""
     from tracker.daemon import Daemon
     from tracker.wire import encode
@@ -272,26 +275,27 @@ async def _run_live(settings: Any, scenario: Any, show_table: bool) -> dict[str,
         published.setdefault(_kind(message), []).append(encode(message))
         table.see(message)
 
-    async with Daemon(settings, on_output=on_output) as daemon:
+    async with Daemon(settings, on_output=on_output, clock=clock) as daemon:
         runner = asyncio.create_task(daemon.run(), name="demo.daemon")
         try:
             await asyncio.wait_for(daemon.bus.connected.wait(), 30)
             with _live(table, show_table) as refresh:
-                await _drive(settings, scenario, daemon, refresh)
+                await _drive(settings, scenario, clock, daemon, refresh)
         finally:
             daemon.stop()
             await asyncio.wait_for(runner, 60)
     return published
 
 
-async def _drive(settings: Any, scenario: Any, daemon: Any, refresh: Callable[[], None]) -> None:
+async def _drive(
+    settings: Any, scenario: Any, clock: _SimClock, daemon: Any, refresh: Callable[[], None]
+) -> None:
     """Publish the scenario's messages as they fall due; feed the daemon's targets to its router."""
     import aiomqtt
 
     from tracker.bus import topic_matches
     from tracker.wire import StatusMessage, TargetMessage
 
-    clock = _SimClock(settings.clock_start, settings.clock_speed)
     broker = settings.broker
     root = settings.root
     watched = (f"{root}/targets/+", f"{root}/status/+")
@@ -329,8 +333,9 @@ async def _drive(settings: Any, scenario: Any, daemon: Any, refresh: Callable[[]
         listener = asyncio.create_task(listen(), name="demo.router")
         try:
             while True:
-                now = clock()
                 due = scenario.next_time()
+                clock.ceiling = finish if due is None else due
+                now = clock()
                 if due is not None and due <= now:
                     for record in scenario.inbound_until(now):
                         await client.publish(record.topic, _payload(record.payload), qos=1)
@@ -374,13 +379,25 @@ def _payload(payload: Any) -> bytes:
 
 
 class _SimClock:
+    """Simulated time at ``speed`` times real time that never passes ``ceiling``.
+
+    The driver keeps the ceiling at the next message of the script that is not yet published,
+    so at any speed the daemon's clock (and its ticks) never runs ahead of the script: time waits
+    for the publisher instead of skipping over its messages.
+    """
+
     def __init__(self, start: datetime, speed: float) -> None:
-        self.start = start
         self.speed = speed
-        self._t0 = _time.monotonic()
+        self.ceiling = start
+        self._now = start
+        self._last = _time.monotonic()
 
     def __call__(self) -> datetime:
-        return self.start + timedelta(seconds=(_time.monotonic() - self._t0) * self.speed)
+        now = _time.monotonic()
+        advanced = self._now + timedelta(seconds=(now - self._last) * self.speed)
+        self._last = now
+        self._now = max(self._now, min(advanced, self.ceiling))
+        return self._now
 
 
 def _replay(journal: Path, out: Path, root: str) -> tuple[dict[str, list[bytes]], dict[str, Any]]:
