@@ -588,35 +588,30 @@ def _interior_point(
         grad[fixed_idx] = 0.0
         return grad
 
-    def dual_residual(
+    def assess(
         state: tuple[FloatArray, ...], lo: FloatArray, hi: FloatArray, end: FloatArray
-    ) -> FloatArray:
-        d_bin, d_point = state[3], state[5]
-        return gradient(d_bin - lo + hi, d_point, end)
+    ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+        """The dual residual and, per problem, the sums the merit function needs.
 
-    def merit(
-        state: tuple[FloatArray, ...],
-        r_dual: FloatArray,
-        lo: FloatArray,
-        hi: FloatArray,
-        end: FloatArray,
-        mu: FloatArray,
-    ) -> FloatArray:
-        """Squared norm, per problem, of the residual of the perturbed KKT conditions."""
-        v, gap_hi, x_end = state[:3]
-        mu_e = np.repeat(mu, sizes)
-        cent = (lo * v - mu_e) ** 2 + cap_f * (hi * gap_hi - mu_e) ** 2 + r_dual * r_dual
-        total_sq = np.add.reduceat(cent, offsets)
-        total_sq[end_problem] += (end * x_end - mu[end_problem]) ** 2
-        return total_sq
+        Returns ``r_dual``, ``sum r_dual^2``, ``sum (lambda g)^2`` and ``sum lambda g`` (the gap),
+        so that the squared KKT residual for any ``mu`` is
+        ``sum r^2 + sum (lambda g)^2 - 2 mu gap + m mu^2`` (see :func:`merit`).
+        """
+        v, gap_hi, x_end, d_bin, _, d_point = state[:6]
+        r_dual = gradient(d_bin - lo + hi, d_point, end)
+        comp = lo * v + hi * gap_hi  # hi is 0 where no cap can bind
+        comp_sq = (lo * v) ** 2 + (hi * gap_hi) ** 2
+        comp_end = end * x_end
+        gap = np.add.reduceat(comp, offsets)
+        gap[end_problem] += comp_end
+        centre = np.add.reduceat(comp_sq, offsets)
+        centre[end_problem] += comp_end * comp_end
+        return r_dual, np.add.reduceat(r_dual * r_dual, offsets), centre, gap
 
-    def complementarity(
-        state: tuple[FloatArray, ...], lo: FloatArray, hi: FloatArray, end: FloatArray
-    ) -> FloatArray:
-        v, gap_hi, x_end = state[:3]
-        gap = np.add.reduceat(lo * v + hi * gap_hi, offsets)
-        gap[end_problem] += end * x_end
-        return gap
+    def merit(sums: tuple[FloatArray, ...], mu: FloatArray) -> FloatArray:
+        """Squared norm, per problem, of the residual of the KKT conditions perturbed by mu."""
+        _, dual_sq, centre, gap = sums
+        return dual_sq + centre - 2.0 * mu * gap + n_constraints * mu * mu
 
     # Start: the strictly feasible schedule proportional to the caps, multipliers on the
     # central path for mu = 1/m (the objective is about 1 there by construction).
@@ -640,9 +635,9 @@ def _interior_point(
     flat = np.zeros(count, dtype=int)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         state = evaluate(x)
-        r_dual = dual_residual(state, lo, hi, end)
+        sums = assess(state, lo, hi, end)
         for _ in range(_MAX_ITERATIONS):
-            gap = complementarity(state, lo, hi, end)
+            r_dual, _, _, gap = sums
             dual_inf = np.maximum.reduceat(np.abs(r_dual), offsets)
             # Converged: complementarity below its tolerance and the dual residual too, or no
             # further move possible. The latter happens where a trade or inventory is pinned
@@ -699,7 +694,7 @@ def _interior_point(
             )
             step = np.minimum(1.0, _BOUNDARY_FRACTION * limit)
             step[done] = 0.0
-            old = merit(state, r_dual, lo, hi, end, mu)
+            old = merit(sums, mu)
             armijo: tuple[FloatArray, FloatArray] | None = None  # computed when first needed
             # Backtrack per problem until the step reduces the residual norm or satisfies
             # Armijo's condition on the barrier function (either is progress for a convex
@@ -711,8 +706,8 @@ def _interior_point(
                 hi_new = hi + step_e * d_hi
                 end_new = end + step[end_problem] * d_end
                 state_new = evaluate(x_new)
-                r_new = dual_residual(state_new, lo_new, hi_new, end_new)
-                new = merit(state_new, r_new, lo_new, hi_new, end_new, mu)
+                sums_new = assess(state_new, lo_new, hi_new, end_new)
+                new = merit(sums_new, mu)
                 ok = (new <= (1.0 - 0.01 * step) ** 2 * old) | done
                 if ok.all():
                     break
@@ -726,7 +721,7 @@ def _interior_point(
                 step = np.where(ok, step, 0.5 * step)
             moved = np.maximum.reduceat(np.abs(x_new - x), offsets)
             stalled = (moved <= 1e-14) | (step < 1e-6)
-            x, lo, hi, end, state, r_dual = x_new, lo_new, hi_new, end_new, state_new, r_new
+            x, lo, hi, end, state, sums = x_new, lo_new, hi_new, end_new, state_new, sums_new
         else:
             raise SolveError(
                 f"the interior-point method did not converge in {_MAX_ITERATIONS} "
