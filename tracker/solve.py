@@ -410,23 +410,28 @@ class _Reduced:
 def _reduce(problem: Problem) -> _Reduced:
     """Scale the problem and take out the bins that cannot trade."""
     quantity = problem.quantity
-    caps = problem.cap_array / quantity
-    active = np.flatnonzero(caps > 0.0)
-    # Inventory after original bin n equals the inventory after the last active bin <= n; fold
-    # the risk weights of the skipped inventories into that one (or drop them if it is Q itself,
-    # a constant).
-    owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
-    c_reduced = np.zeros(active.size)
-    np.add.at(c_reduced, owner[owner >= 0], problem.inventory_penalty[owner >= 0])
     beta = problem.impact_exponent
     p = problem.penalty_exponent
-    h = problem.fixed_cost[active] * quantity
-    k = problem.temporary_impact[active] * quantity ** (1.0 + beta)
-    c = c_reduced * quantity**p
+    h = problem.fixed_cost * quantity
+    k = problem.temporary_impact * quantity ** (1.0 + beta)
+    c = problem.inventory_penalty * quantity**p
     b = problem.permanent_impact * quantity**2
     terminal = problem.terminal_penalty * quantity**p
-    caps = caps[active]
-    caps = np.where(caps >= 1.0, np.inf, caps)
+    if problem.caps is None:
+        active = np.arange(problem.bins)
+        caps = np.full(problem.bins, np.inf)
+    else:
+        caps = problem.caps / quantity
+        active = np.flatnonzero(caps > 0.0)
+        if active.size < problem.bins:
+            # Inventory after original bin n equals the inventory after the last active bin
+            # <= n: fold the risk weights of the skipped inventories into that one (or drop
+            # them where it is Q itself, a constant).
+            owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
+            c_reduced = np.zeros(active.size)
+            np.add.at(c_reduced, owner[owner >= 0], c[owner >= 0])
+            h, k, c, caps = h[active], k[active], c_reduced, caps[active]
+        caps[caps >= 1.0] = np.inf  # a cap of Q or more never binds
     start, scale = _start(caps, h, k, c, beta, b, p, terminal)
     return _Reduced(
         bins=int(active.size),
