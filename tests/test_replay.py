@@ -472,8 +472,9 @@ def test_cli_config_file_sets_engine_thresholds(tmp_path: Path) -> None:
 
     config = tmp_path / "tracker.toml"
     config.write_text("[engine]\nexpiry_grace_seconds = 30\n")
-    expected = 30
-    assert expected == load_config(config).expiry_grace_seconds
+    expected = (30, None)
+    settings, root = load_config(config)
+    assert expected == (settings.expiry_grace_seconds, root)
 
 
 def test_cli_config_unknown_threshold_exits_2(
@@ -533,3 +534,35 @@ def test_reader_ignores_a_byte_order_mark(tmp_path: Path) -> None:
     path.write_text("\ufeff" + json.dumps(order(0)) + "\n", encoding="utf-8")
     (line,) = list(read_jsonl(path))
     assert isinstance(line, Record)
+
+
+def test_cli_takes_the_root_from_a_daemon_config(tmp_path: Path) -> None:
+    """With the daemon's config file, a recording under its topic root replays without errors."""
+    config = tmp_path / "tracker.toml"
+    config.write_text('[daemon]\nroot = "desk7"\n\n[engine]\nexpiry_grace_seconds = 5\n')
+    lines = [order(0), fill("F1", 100, 60)]
+    for line in lines:
+        line["topic"] = line["topic"].replace("tracker/", "desk7/", 1)
+    path = write(tmp_path, lines)
+    main(["replay", str(path), "--out", str(tmp_path / "out"), "--config", str(config)])
+    expected = b""
+    assert expected == (tmp_path / "out" / "errors.jsonl").read_bytes()
+
+
+def test_cli_root_flag_names_the_engine_error_topics(tmp_path: Path) -> None:
+    """--root is the root of the recording and of the topics in the engine's error records."""
+    line = fill("F1", 100, 60, order_id="ORD9")
+    line["topic"] = "desk7/fills/ORD9"
+    path = write(tmp_path, [line])
+    main(["replay", str(path), "--out", str(tmp_path / "out"), "--root", "desk7"])
+    (error,) = (tmp_path / "out" / "errors.jsonl").read_text().splitlines()
+    expected = "desk7/fills/ORD9"
+    assert expected == json.loads(error)["topic"]
+
+
+def test_cli_bad_root_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A topic root with an MQTT wildcard is refused before anything is read."""
+    path = write(tmp_path, [order(0)])
+    code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--root", "desk/#"])
+    expected = (2, True)
+    assert expected == (code, "--root" in capsys.readouterr().err)

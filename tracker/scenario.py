@@ -705,7 +705,8 @@ def run_day(
 
     Args:
         seed: The scenario's seed.
-        engine: The engine (default: a fresh :class:`tracker.engine.Engine` with default settings).
+        engine: The engine (default: a fresh :class:`tracker.engine.Engine` with default settings
+            and this root).
         day: The trading day.
         root: MQTT topic root.
         tick_seconds: Interval of derived ticks (default: the replay default).
@@ -717,7 +718,7 @@ def run_day(
     if engine is None:
         from tracker.engine import Engine
 
-        engine = Engine()
+        engine = Engine(root=root)
     scenario = Scenario(seed, day=day, root=root)
     replayer = Replayer(engine, root=root, tick_seconds=tick_seconds or DEFAULT_TICK_SECONDS)
     result = ReplayResult()

@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from tracker.errors import InputError
+from tracker.wire import DEFAULT_ROOT
 
 if TYPE_CHECKING:
     from tracker.engine import EngineConfig
@@ -60,7 +61,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         help="engine thresholds, a TOML or JSON file (keys as in EngineConfig); defaults otherwise",
     )
     parser.add_argument(
-        "--root", default="tracker", help="MQTT topic root of the recording (default: tracker)"
+        "--root",
+        help="MQTT topic root of the recording (default: the [daemon] root of --config, else "
+        "tracker)",
     )
     parser.add_argument(
         "--tick-seconds",
@@ -81,19 +84,21 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 def run(args: argparse.Namespace) -> int:
     """Replay INPUT into DIR; print a one-line account; return 0."""
+    from tracker.config import validate_root
     from tracker.engine import Engine
     from tracker.replay import read_input, replay, stderr_is_terminal, write_outputs
 
-    config = load_config(Path(args.config)) if args.config else None
+    config, config_root = load_config(Path(args.config)) if args.config else (None, None)
+    root = validate_root(args.root or config_root or DEFAULT_ROOT, field="--root")
     profiles = load_profiles(Path(args.profiles)) if args.profiles else {}
     records = list(read_input(Path(args.input)))
-    engine = Engine(config=config, profiles=profiles)
+    engine = Engine(config=config, profiles=profiles, root=root)
     show = stderr_is_terminal() if args.progress is None else bool(args.progress)
     with _progress_bar(len(records), show) as advance:
         result = replay(
             records,
             engine,
-            args.root,
+            root,
             tick_seconds=args.tick_seconds,
             progress=advance,
         )
@@ -108,10 +113,14 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def load_config(path: Path) -> EngineConfig:
+def load_config(path: Path) -> tuple[EngineConfig, str | None]:
     """Read engine thresholds from a TOML (``.toml``) or JSON file.
 
-    A file whose top level holds an ``engine`` table (a daemon configuration file) gives that table.
+    A daemon configuration file (tables ``[engine]``, ``[daemon]``, ...) gives its ``[engine]``
+    table, and the topic root of its ``[daemon]`` table.
+
+    Returns:
+        The engine settings, and the topic root the file names (``None`` if none).
 
     Raises:
         InputError: The file is missing, not TOML/JSON, or a threshold is unknown or out of range.
@@ -119,10 +128,13 @@ def load_config(path: Path) -> EngineConfig:
     from tracker.engine import EngineConfig
 
     data = _read_mapping(path, "--config")
-    engine_table = data.get("engine")
-    if isinstance(engine_table, Mapping):
-        data = dict(engine_table)
-    return EngineConfig.from_mapping(data)
+    root: str | None = None
+    engine_table, daemon_table = data.get("engine"), data.get("daemon")
+    if isinstance(engine_table, Mapping) or isinstance(daemon_table, Mapping):
+        if isinstance(daemon_table, Mapping) and isinstance(daemon_table.get("root"), str):
+            root = daemon_table["root"]
+        data = dict(engine_table) if isinstance(engine_table, Mapping) else {}
+    return EngineConfig.from_mapping(data), root
 
 
 def load_profiles(folder: Path) -> dict[str, Profile]:
