@@ -66,6 +66,7 @@ def add_day_parser(actions: argparse._SubParsersAction[argparse.ArgumentParser])
 
 def run(args: argparse.Namespace) -> int:
     """Run the day, write the recording (and the outputs if asked); print a one-line account."""
+    from tracker.config import validate_root
     from tracker.replay import write_outputs
     from tracker.scenario import run_day, write_day
 
@@ -73,8 +74,9 @@ def run(args: argparse.Namespace) -> int:
         day = date.fromisoformat(args.date)
     except ValueError as exc:
         raise InputError(f"must be a date YYYY-MM-DD; got {args.date!r}", field="--date") from exc
+    root = validate_root(args.root, field="--root")
     path = Path(args.output or f"day-{day.isoformat()}-seed{args.seed}.jsonl")
-    result = run_day(args.seed, day=day, root=args.root)
+    result = run_day(args.seed, day=day, root=root)
     write_day(result, path)
     if args.outputs:
         write_outputs(result.result, Path(args.outputs))
