@@ -103,20 +103,35 @@ def _fill_payload_text(**changes: Any) -> str:
     return json.dumps(payload)
 
 
-# One row per kind of bad line: (the bad line placed at line 3, a phrase its reason must hold).
+# One row per kind of bad line: (the bad line placed at line 3, the part of its reason that says
+# what to do about it).
 # Lines 1, 2 and 4 are a new order and two good fills (100 and 200 shares).
 MALFORMED = [
-    pytest.param('{"topic": "tracker/fills/ORD1", "payload": {', "not JSON", id="not-json"),
-    pytest.param("[1, 2, 3]", "not an object", id="line-not-object"),
     pytest.param(
-        {"payload": fill("F9", 300, 120)["payload"], "ts": at(120)}, "'topic'", id="no-topic"
+        '{"topic": "tracker/fills/ORD1", "payload": {',
+        "each line must be one object",
+        id="not-json",
     ),
-    pytest.param({"topic": "tracker/fills/ORD1", "ts": at(120)}, "'payload'", id="no-payload"),
-    pytest.param({**fill("F9", 300, 120), "payload": 42}, "'payload'", id="payload-number"),
-    pytest.param({**fill("F9", 300, 120), "ts": "yesterday"}, "ISO 8601", id="bad-line-ts"),
+    pytest.param("[1, 2, 3]", "each line must be one object", id="line-not-object"),
+    pytest.param(
+        {"payload": fill("F9", 300, 120)["payload"], "ts": at(120)},
+        "give the MQTT topic",
+        id="no-topic",
+    ),
+    pytest.param(
+        {"topic": "tracker/fills/ORD1", "ts": at(120)}, "give the message object", id="no-payload"
+    ),
+    pytest.param(
+        {**fill("F9", 300, 120), "payload": 42}, "give the message object", id="payload-number"
+    ),
+    pytest.param(
+        {**fill("F9", 300, 120), "ts": "yesterday"},
+        "write it like 2026-03-10T14:30:00Z",
+        id="bad-line-ts",
+    ),
     pytest.param(
         {"topic": "tracker/fills/ORD1", "payload": '{"type": "fill", "fill_id": ', "ts": at(120)},
-        "not valid JSON",
+        "send one JSON object",
         id="payload-text-not-json",
     ),
     pytest.param(
@@ -124,35 +139,41 @@ MALFORMED = [
             **fill("F9", 300, 120),
             "payload": {k: v for k, v in fill("F9", 300, 120)["payload"].items() if k != "price"},
         },
-        "price",
+        "price: is required",
         id="missing-field",
     ),
-    pytest.param(fill("F9", "300", 120), "quantity", id="wrong-type"),
-    pytest.param(fill("F9", -300, 120), "quantity", id="negative-quantity"),
+    pytest.param(fill("F9", "300", 120), "quantity: must be a JSON number", id="wrong-type"),
+    pytest.param(fill("F9", -300, 120), "quantity: must be greater than 0", id="negative-quantity"),
     pytest.param(
         {
             "topic": "tracker/fills/ORD1",
             "payload": _fill_payload_text(quantity=float("nan")),
             "ts": at(120),
         },
-        "NaN",
+        "NaN is not valid JSON",
         id="nan-quantity",
     ),
     pytest.param(
         {**fill("F9", 300, 120), "payload": {**fill("F9", 300, 120)["payload"], "type": "trade"}},
-        "unknown message type",
+        "one of bin, control, fill, order, tick",
         id="unknown-type",
     ),
     pytest.param(
-        {**fill("F9", 300, 120), "topic": "tracker/orders/ORD1"}, "topic", id="wrong-topic"
+        {**fill("F9", 300, 120), "topic": "tracker/orders/ORD1"},
+        "publish fill messages to tracker/fills/",
+        id="wrong-topic",
     ),
     pytest.param(
         {**fill("F9", 300, 120), "topic": "tracker/fills/ORD2"},
-        "must match",
+        "they must match",
         id="topic-id-mismatch",
     ),
-    pytest.param(fill("F9", 300, 120, order_id="ORD9"), "ORD9", id="unknown-order"),
-    pytest.param(fill("F9", 300, 30), "backwards", id="time-backwards"),
+    pytest.param(
+        fill("F9", 300, 120, order_id="ORD9"),
+        "send the order (action 'new') before its fills",
+        id="unknown-order",
+    ),
+    pytest.param(fill("F9", 300, 30), "sort the lines by 'ts'", id="time-backwards"),
 ]
 
 

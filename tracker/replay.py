@@ -5,7 +5,8 @@ Theory of operation
 A recording is a sequence of :class:`~tracker.records.Record` -- the lines of a JSON Lines file
 (``{"topic": ..., "payload": ..., "ts": ...}`` per line) or the rows of the daemon's SQLite journal.
 :class:`Replayer` feeds them, one at a time, through the same edge the live shell uses and hands
-each accepted message to :meth:`Engine.handle`. Every line ends in exactly one of three ways:
+each accepted message to :meth:`Engine.handle`. Every line (blank lines aside: they are skipped)
+ends in exactly one of three ways:
 
 * **accepted** -- it decoded, it is in time order, and the engine took it; its outputs are kept.
 * **redelivered** -- it is an exact copy (same topic, same decoded message) of a line accepted
