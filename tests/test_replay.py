@@ -216,20 +216,59 @@ def test_blank_lines_are_skipped_without_error(tmp_path: Path) -> None:
     assert expected == ([error.line for error in errors], filled(summary))
 
 
-def test_redelivery_changes_nothing(tmp_path: Path) -> None:
-    """An exact copy of an accepted fill (a broker redelivery) changes no output file."""
-    lines: list[Mapping[str, Any] | str] = [order(0), fill("F1", 100, 60), fill("F2", 200, 180)]
-    once = write(tmp_path, lines, "once.jsonl")
-    twice = write(tmp_path, [*lines[:2], lines[1], lines[2]], "twice.jsonl")
-    write_outputs(replay(read_input(once), make_engine()), tmp_path / "once")
-    write_outputs(replay(read_input(twice), make_engine()), tmp_path / "twice")
+def bin_line(seconds: float) -> dict[str, Any]:
+    """The ZEPH bin that closes at T0 + 5 minutes, published ``seconds`` after T0."""
+    payload = {
+        "type": "bin",
+        "symbol": "ZEPH",
+        "start": at(0),
+        "end": at(300),
+        "volume": 10_000,
+        "vwap": 20.0,
+        "open": 20.0,
+        "high": 20.1,
+        "low": 19.9,
+        "close": 20.0,
+        "spread": 0.02,
+        "ts": at(seconds),
+    }
+    return {"topic": "tracker/bins/ZEPH", "payload": payload, "ts": at(seconds)}
+
+
+def control_line(command: str, seconds: float) -> dict[str, Any]:
+    """A halt or resume of ORD1."""
+    payload = {"type": "control", "command": command, "order_id": "ORD1", "ts": at(seconds)}
+    return {"topic": "tracker/control", "payload": payload, "ts": at(seconds)}
+
+
+DAY_LINES: list[dict[str, Any]] = [
+    order(0),
+    fill("F1", 100, 60),
+    control_line("halt", 120),
+    control_line("resume", 180),
+    fill("F2", 200, 240),
+    bin_line(301),
+    fill("F3", 300, 360),
+]
+
+
+@pytest.mark.parametrize("index", [0, 1, 2, 3, 5], ids=["order", "fill", "halt", "resume", "bin"])
+def test_redelivery_changes_nothing(tmp_path: Path, index: int) -> None:
+    """A copy of an accepted message, delivered again later, changes no output and no order."""
+    copy = {**DAY_LINES[index], "ts": at(361)}  # the broker re-sends it after the last line
+    once = write(tmp_path, DAY_LINES, "once.jsonl")
+    twice = write(tmp_path, [*DAY_LINES, copy], "twice.jsonl")
+    first = replay(read_input(once), make_engine())
+    second = replay(read_input(twice), make_engine())
+    write_outputs(first, tmp_path / "once")
+    write_outputs(second, tmp_path / "twice")
     differing = [
         name
         for name in OUTPUT_FILES[:-1]
         if (tmp_path / "once" / name).read_bytes() != (tmp_path / "twice" / name).read_bytes()
     ]
-    expected = []
-    assert expected == differing
+    expected: tuple[list[str], bool] = ([], True)
+    assert expected == (differing, first.summary["orders"] == second.summary["orders"])
 
 
 def test_redelivery_is_counted_not_rejected(tmp_path: Path) -> None:
