@@ -408,3 +408,20 @@ def test_halt_and_resume_reach_the_engine(closed_loop: DayRun) -> None:
     codes = [a.code for a in closed_loop.result.alerts if a.order_id == "ZEPH-S2"]
     expected = (1, 1)
     assert expected == (codes.count("order_halted"), codes.count("order_resumed"))
+
+
+def test_target_without_a_bin_withdraws_planned_slices() -> None:
+    """A target with no bin (nothing to trade) still withdraws the slices planned before it."""
+    scenario = Scenario(7)
+    first = scenario.inbound_until(datetime(2026, 3, 10, 13, 29, tzinfo=UTC))
+    order = decode(first[0].topic, first[0].payload)
+    assert isinstance(order, OrderMessage)
+    start = datetime(2026, 3, 10, 13, 30, tzinfo=UTC)
+    scenario.on_output(target(order, start, 0.05, order.ts))
+    nothing = target(order, start, 0.0, order.ts).model_copy(
+        update={"bin_start": None, "bin_end": None}
+    )
+    scenario.on_output(nothing)
+    records = scenario.inbound_until(start + BIN)
+    expected: list[str] = []
+    assert expected == [r.topic for r in records if "fills/ZEPH-B1" in r.topic]

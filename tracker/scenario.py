@@ -426,11 +426,11 @@ class Scenario:
 
     def _work(self, target: TargetMessage) -> None:
         working = self._orders.get(target.order_id)
-        if working is None or not working.active or target.bin_start is None:
+        if working is None:
             return
-        if target.bin_end is None:
+        working.version += 1  # any new target replaces what is still planned for this order
+        if not working.active or target.bin_start is None or target.bin_end is None:
             return
-        working.version += 1  # a new target replaces what is still planned for this order
         market_bin = self._bins.get((working.spec.symbol, target.bin_start.astimezone(UTC)))
         if market_bin is None:
             return
