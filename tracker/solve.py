@@ -252,9 +252,15 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
             general.append((index, _reduce(problem)))
         else:
             results[index] = schedule
-    if general:
-        solutions, iterations = _interior_point([reduced for _, reduced in general], tolerance)
-        for (index, reduced), x, count in zip(general, solutions, iterations, strict=True):
+    # One interior-point run per impact and penalty exponent: numpy takes other code paths for
+    # a scalar exponent than for an array of them, and the last bits would then depend on which
+    # problems share a batch. Grouped, a problem gets the same answer alone or in any batch.
+    groups: dict[tuple[float, float], list[tuple[int, _Reduced]]] = {}
+    for index, reduced in general:
+        groups.setdefault((reduced.beta, reduced.p), []).append((index, reduced))
+    for members in groups.values():
+        solutions, iterations = _interior_point([reduced for _, reduced in members], tolerance)
+        for (index, reduced), x, count in zip(members, solutions, iterations, strict=True):
             results[index] = _finish(problems[index], reduced.expand(x), "interior_point", count)
     return [schedule for schedule in results if schedule is not None]
 
@@ -744,9 +750,9 @@ def _solve_tridiagonal(diag: FloatArray, off: FloatArray, rhs: FloatArray) -> Fl
     _, _, solution, info = lapack.dptsv(diag, off, rhs[:, None])
     if info != 0:  # not positive definite in floating point: pivot, then regularise
         _, _, _, solution, info = lapack.dgtsv(off, diag, off, rhs[:, None])
-        if info != 0:
-            shift = 1e-12 * float(np.abs(diag).max()) + 1e-300
-            _, _, _, solution, info = lapack.dgtsv(off, diag + shift, off, rhs[:, None])
+        if info != 0:  # each row's own shift, so that problems in a batch stay independent
+            shifted = diag + 1e-12 * np.abs(diag) + 1e-300
+            _, _, _, solution, info = lapack.dgtsv(off, shifted, off, rhs[:, None])
         if info != 0:
             raise SolveError(f"singular Newton system (LAPACK info {info})")
     result: FloatArray = solution[:, 0]
