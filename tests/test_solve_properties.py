@@ -272,3 +272,55 @@ def test_objective_matches_cvxpy_on_generated_problems(problem: Problem) -> None
     # 1e-8 of the scale above the optimum (e.g. a zero terminal penalty: trade nothing).
     tol = 1e-7 * abs(reference.objective) + 1e-9 * scale
     assert actual <= reference.objective + tol
+
+
+@pytest.mark.parametrize("beta", [1.0, 1.5, 2.0], ids=["beta=1", "beta=1.5", "beta=2"])
+def test_nothing_to_gain_trades_nothing(beta: float) -> None:
+    """With no risk and no terminal penalty every trade only costs, so none is made."""
+    problem = Problem(
+        quantity=1.0,
+        bins=5,
+        fixed_cost=[0.0, 0.0, 0.0, 0.02, 0.0],
+        temporary_impact=0.02,
+        impact_exponent=beta,
+        penalty_exponent=1.0,
+        terminal_penalty=0.0,
+    )
+    # Every term is >= 0 and zero trades make them all 0 (by hand from the formula). Near v = 0
+    # the impact term is flat (k v^(1 + beta)), so trading 1e-5 of Q costs about 1e-15: the
+    # shortfall is checked to 1e-4 of Q, the objective to 1e-9.
+    schedule = solve(problem)
+    assert 0.0 == pytest.approx(schedule.objective, abs=1e-9)
+    assert 1.0 == pytest.approx(schedule.shortfall, abs=1e-4)
+
+
+# A batch found by test_solve_batch_equals_solve_one_by_one: once the second problem has converged
+# its frozen block of the batch's Newton system stops being positive definite, LAPACK's dptsv
+# fails on it, and the fallback solve of the whole batch changes the rounding of the first one
+# (18 iterations alone, 22 in the batch; trajectories 2e-8 of Q apart).
+BATCH_CASE = [
+    {
+        "quantity": 1.0,
+        "bins": 15,
+        "temporary_impact": [0.02] * 14 + [0.00036631277777468356],
+        "impact_exponent": 0.25,
+        "penalty_exponent": 1.0,
+    },
+    {
+        "quantity": 1.0,
+        "bins": 25,
+        "fixed_cost": [0.0] * 23 + [0.02, 0.0],
+        "temporary_impact": [0.02] * 21
+        + [0.18975471672717054, 0.000995741367357279, 0.02, 0.007357588823428847],
+        "impact_exponent": 1.5,
+        "penalty_exponent": 1.0,
+    },
+]
+
+
+def test_batch_neighbours_do_not_change_a_schedule() -> None:
+    """A problem gets the same trajectory alone as next to a problem that converges first."""
+    batch = [Problem(**fields) for fields in BATCH_CASE]
+    alone = solve(batch[0])
+    together = solve_batch(batch)[0]
+    np.testing.assert_allclose(together.trajectory, alone.trajectory, rtol=0.0, atol=1e-12)
