@@ -626,3 +626,17 @@ def test_cli_bad_root_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]
     code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--root", "desk/#"])
     expected = (2, True)
     assert expected == (code, "--root" in capsys.readouterr().err)
+
+
+def test_repeated_tick_is_not_a_redelivery(tmp_path: Path) -> None:
+    """Two equal tick lines both reach the engine; neither is an error or a redelivery."""
+    tick = {"topic": "tracker/tick", "payload": {"type": "tick", "ts": at(7)}, "ts": at(7)}
+    path = write(tmp_path, [order(0), tick, tick])
+    spy = Spy()
+    result = replay(read_input(path), spy)
+    expected = ([at(7), at(7)], [], 0)
+    assert expected == (
+        tick_times(spy.events),
+        result.errors,
+        result.summary["replay"]["redelivered"],
+    )

@@ -11,7 +11,8 @@ ends in exactly one of three ways:
 * **accepted** -- it decoded, it is in time order, and the engine took it; its outputs are kept.
 * **redelivered** -- it is an exact copy (same topic, same decoded message) of a line accepted
   earlier, as an MQTT broker re-sends a QoS 1 message whose acknowledgement was lost. It changes
-  nothing and is not an error; it is counted in the summary.
+  nothing and is not an error; it is counted in the summary. (Ticks are exempt: the shell makes
+  them, and a repeated tick is simply handed to the engine, where it changes nothing.)
 * **rejected** -- exactly one :class:`~tracker.wire.ErrorMessage` with ``line`` set to the input's
   1-based line number and a reason a person can act on. The checks, in order:
 
@@ -405,8 +406,10 @@ class Replayer:
                     record.line, record.topic, payload_text(record.payload), exc.reason, recorded
                 )
             ]
-        key = _identity(record.topic, message)
-        if key in self._seen:
+        # Ticks are made by the shell, never redelivered by a broker; two equal ones are harmless
+        # to the engine and are not remembered (a long-running daemon makes one a second).
+        key = None if isinstance(message, Tick) else _identity(record.topic, message)
+        if key is not None and key in self._seen:
             self.redelivered += 1
             return []
         if (
@@ -447,7 +450,8 @@ class Replayer:
             self.rejected += 1
         else:
             self.accepted += 1
-            self._seen.add(key)
+            if key is not None:
+                self._seen.add(key)
         return outputs
 
     def _ticks_until(self, when: datetime, line: int) -> list[Outbound]:
