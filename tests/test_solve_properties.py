@@ -294,33 +294,56 @@ def test_nothing_to_gain_trades_nothing(beta: float) -> None:
     assert 1.0 == pytest.approx(schedule.shortfall, abs=1e-4)
 
 
-# A batch found by test_solve_batch_equals_solve_one_by_one: once the second problem has converged
-# its frozen block of the batch's Newton system stops being positive definite, LAPACK's dptsv
-# fails on it, and the fallback solve of the whole batch changes the rounding of the first one
-# (18 iterations alone, 22 in the batch; trajectories 2e-8 of Q apart).
-BATCH_CASE = [
-    {
-        "quantity": 1.0,
-        "bins": 15,
-        "temporary_impact": [0.02] * 14 + [0.00036631277777468356],
-        "impact_exponent": 0.25,
-        "penalty_exponent": 1.0,
-    },
-    {
-        "quantity": 1.0,
-        "bins": 25,
-        "fixed_cost": [0.0] * 23 + [0.02, 0.0],
-        "temporary_impact": [0.02] * 21
-        + [0.18975471672717054, 0.000995741367357279, 0.02, 0.007357588823428847],
-        "impact_exponent": 1.5,
-        "penalty_exponent": 1.0,
-    },
-]
+# Batches found by test_solve_batch_equals_solve_one_by_one, where a problem's schedule depended on
+# its neighbours (degenerate problems: idle bins, beta = 0.25, so last bits decide the path).
+BATCH_CASES = {
+    # The first problem took 18 iterations alone and 22 next to the second (trajectories 2e-8 of
+    # Q apart): the batch's Newton system fell back to another LAPACK routine for everyone.
+    "newton-fallback": [
+        {
+            "quantity": 1.0,
+            "bins": 15,
+            "temporary_impact": [0.02] * 14 + [0.00036631277777468356],
+            "impact_exponent": 0.25,
+            "penalty_exponent": 1.0,
+        },
+        {
+            "quantity": 1.0,
+            "bins": 25,
+            "fixed_cost": [0.0] * 23 + [0.02, 0.0],
+            "temporary_impact": [0.02] * 21
+            + [0.18975471672717054, 0.000995741367357279, 0.02, 0.007357588823428847],
+            "impact_exponent": 1.5,
+            "penalty_exponent": 1.0,
+        },
+    ],
+    # The second problem took 23 iterations alone and 25 behind the first (1.5e-5 of Q apart):
+    # its starting point came from a cumulative sum over the whole batch minus the first
+    # problem's total, which rounds differently from its own cumulative sum.
+    "start-point": [
+        {
+            "quantity": 1.0,
+            "bins": 31,
+            "temporary_impact": 0.02,
+            "impact_exponent": 0.25,
+            "penalty_exponent": 1.5,
+        },
+        {
+            "quantity": 1.0,
+            "bins": 31,
+            "fixed_cost": [0.0] * 29 + [0.02, 0.0],
+            "temporary_impact": [0.02] * 28 + [0.000995741367357279, 0.02, 0.000995741367357279],
+            "impact_exponent": 0.25,
+            "penalty_exponent": 1.5,
+            "terminal_penalty": 0.02,
+        },
+    ],
+}
 
 
-def test_batch_neighbours_do_not_change_a_schedule() -> None:
-    """A problem gets the same trajectory alone as next to a problem that converges first."""
-    batch = [Problem(**fields) for fields in BATCH_CASE]
-    alone = solve(batch[0])
-    together = solve_batch(batch)[0]
-    np.testing.assert_allclose(together.trajectory, alone.trajectory, rtol=0.0, atol=1e-12)
+@pytest.mark.parametrize("fields", list(BATCH_CASES.values()), ids=list(BATCH_CASES))
+def test_batch_neighbours_do_not_change_a_schedule(fields: list[dict[str, Any]]) -> None:
+    """Each problem of the batch gets the same trajectory as when solved alone."""
+    batch = [Problem(**problem) for problem in fields]
+    for alone, together in zip([solve(p) for p in batch], solve_batch(batch), strict=True):
+        np.testing.assert_allclose(together.trajectory, alone.trajectory, rtol=0.0, atol=1e-12)
