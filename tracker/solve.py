@@ -627,7 +627,8 @@ def _interior_point(
     # Start: the strictly feasible schedule proportional to the caps, multipliers on the
     # central path for mu = 1/m (the objective is about 1 there by construction).
     v0 = np.concatenate([r.start for r in problems])
-    x = 1.0 - _segment_cumsum(v0, offsets, sizes)
+    x = np.concatenate([1.0 - np.cumsum(r.start) for r in problems])  # per problem, not
+    # one running sum over the batch: a problem's start must not depend on its neighbours
     x[fixed_idx] = 0.0
     mu0 = 1.0 / n_end
     lo = mu0 / v0
@@ -661,7 +662,11 @@ def _interior_point(
             best_dual = np.where(improved, dual_inf, best_dual)
             flat = np.where(improved | (gap > gap_tolerance), 0, flat + 1)
             stalled |= flat >= 5
-            done |= (gap <= gap_tolerance) & ((dual_inf <= dual_tolerance) | stalled)
+            done |= (gap <= gap_tolerance) & (dual_inf <= dual_tolerance)
+            # A stall ends the run once the gap is within the tolerance itself (the objective
+            # is then as accurate as promised; where it is very flat, e.g. cubic impact near a
+            # zero trade, the trades are only accurate to about tolerance^(1/3)).
+            done |= stalled & (gap <= tolerance)
             if done.all():
                 break
             iterations += ~done
@@ -678,6 +683,13 @@ def _interior_point(
             off = -w[1:] * next_ok
             off[fixed_idx[fixed_idx > 0] - 1] = 0.0
             diag[fixed_idx] = 1.0
+            if done.any():
+                # Converged problems sit out as identity blocks: their rows may have stopped
+                # being positive definite, and a fallback solve must not touch the others.
+                frozen = np.repeat(done, sizes)
+                diag[frozen] = 1.0
+                rhs[frozen] = 0.0
+                off[frozen[:-1] | frozen[1:]] = 0.0
             dx = _solve_tridiagonal(diag, off, rhs)
             dx[fixed_idx] = 0.0
             d_previous = np.empty_like(dx)
@@ -757,10 +769,3 @@ def _solve_tridiagonal(diag: FloatArray, off: FloatArray, rhs: FloatArray) -> Fl
             raise SolveError(f"singular Newton system (LAPACK info {info})")
     result: FloatArray = solution[:, 0]
     return result
-
-
-def _segment_cumsum(values: FloatArray, offsets: np.ndarray, sizes: np.ndarray) -> FloatArray:
-    """Cumulative sums restarting at each segment start."""
-    total = np.cumsum(values)
-    before = np.concatenate(([0.0], total))[offsets]
-    return total - np.repeat(before, sizes)
