@@ -95,3 +95,21 @@ def test_python_defaults() -> None:
         problem.to_mapping()["terminal_penalty"],
     ) == (1.0, 2.0, FORCE)
     assert np.array_equal(np.full(3, np.inf), problem.cap_array)
+
+
+def test_from_arrays_builds_the_same_problem() -> None:
+    """The unchecked fast path gives the same problem as the checked constructor."""
+    checked = Problem.from_mapping({**GOOD, "caps": [100.0, 200.0, 300.0, 400.0]})
+    fast = Problem.from_arrays(
+        quantity=1000.0,
+        fixed_cost=np.full(4, 0.01),
+        temporary_impact=np.array([1e-4, 2e-4, 2e-4, 1e-4]),
+        impact_exponent=1.0,
+        permanent_impact=0.0,
+        inventory_penalty=np.full(4, 1e-6),
+        penalty_exponent=2.0,
+        terminal_penalty=math.inf,
+        caps=np.array([100.0, 200.0, 300.0, 400.0]),
+    )
+    assert checked.to_mapping() == fast.to_mapping()
+    assert not fast.fixed_cost.flags.writeable

@@ -234,6 +234,8 @@ def build_problem(
         )
     if not (price > 0 and math.isfinite(price)):
         raise InputError(f"must be a price > 0; got {price!r}", field="price")
+    if not (quantity >= 0 and math.isfinite(quantity)):
+        raise InputError(f"must be a number of shares >= 0; got {quantity!r}", field="quantity")
     if max_participation is not None and not 0 < max_participation <= 1:
         raise InputError(
             f"must be a fraction in (0, 1]; got {max_participation!r}", field="max_participation"
@@ -258,9 +260,10 @@ def build_problem(
     else:
         terminal = float(preferences.completion_penalty) * 1e-4 * price * reference ** (1.0 - p)
     caps = None if max_participation is None else max_participation * volume
-    return Problem(
+    # Every value above is derived from checked inputs and forecasts (volume >= 1, price > 0):
+    # skip the constructor's checks, a third of the time of this function.
+    return Problem.from_arrays(
         quantity=quantity,
-        bins=end_bin - first_bin,
         fixed_cost=fixed,
         temporary_impact=impact,
         impact_exponent=law.exponent,

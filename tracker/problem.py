@@ -256,6 +256,48 @@ class Problem:
         return self.caps
 
     @classmethod
+    def from_arrays(
+        cls,
+        *,
+        quantity: float,
+        fixed_cost: FloatArray,
+        temporary_impact: FloatArray,
+        impact_exponent: float,
+        permanent_impact: float,
+        inventory_penalty: FloatArray,
+        penalty_exponent: float,
+        terminal_penalty: float,
+        caps: FloatArray | None,
+    ) -> Problem:
+        """Build a problem from values the caller has already validated, without checking them.
+
+        For hot paths inside the package (the engine builds a thousand problems per bin close
+        from forecasts it has checked): the per-bin arrays must be ``float64`` of one length,
+        finite and >= 0 (``caps`` may hold ``inf``), the scalars in the ranges of the class
+        docstring, ``terminal_penalty`` a float (``inf`` = force). The arrays are made
+        read-only, not copied. Input from outside goes through the constructor instead.
+        """
+        problem = object.__new__(cls)
+        put = object.__setattr__
+        put(problem, "quantity", float(quantity))
+        put(problem, "bins", int(fixed_cost.shape[0]))
+        for name, array in (
+            ("fixed_cost", fixed_cost),
+            ("temporary_impact", temporary_impact),
+            ("inventory_penalty", inventory_penalty),
+        ):
+            array.setflags(write=False)
+            put(problem, name, array)
+        put(problem, "impact_exponent", float(impact_exponent))
+        put(problem, "permanent_impact", float(permanent_impact))
+        put(problem, "penalty_exponent", float(penalty_exponent))
+        put(problem, "terminal_penalty", float(terminal_penalty))
+        if caps is not None:
+            caps.setflags(write=False)
+        put(problem, "caps", caps)
+        return problem
+
+    @classmethod
     def from_mapping(cls, data: Any) -> Problem:
         """Build a problem from the JSON problem file's object.
 
