@@ -174,19 +174,18 @@ AC_IDS = list(AC_CASES)
 AC_VALUES = list(AC_CASES.values())
 
 
-def test_almgren_chriss_reference_formulas_are_consistent() -> None:
+@pytest.mark.parametrize("case", AC_VALUES, ids=AC_IDS)
+def test_almgren_chriss_reference_formulas_are_consistent(case: AlmgrenChriss) -> None:
     """The closed-form E and V of Almgren and Chriss (2000) equal their defining sums."""
-    for case in AC_VALUES:
-        x = case.trajectory()
-        n = -np.diff(x)
-        e_sum = (
-            case.gamma * case.shares**2 / 2.0
-            + case.epsilon * n.sum()
-            + case.eta_tilde / case.tau * float(n @ n)
-        )
-        v_sum = case.sigma**2 * case.tau * float(x[1:] @ x[1:])
-        assert e_sum == pytest.approx(case.expected_cost(), rel=1e-12)
-        assert v_sum == pytest.approx(case.variance(), rel=1e-12)
+    x = case.trajectory()
+    n = -np.diff(x)
+    e_sum = (
+        case.gamma * case.shares**2 / 2.0
+        + case.epsilon * n.sum()
+        + case.eta_tilde / case.tau * float(n @ n)
+    )
+    v_sum = case.sigma**2 * case.tau * float(x[1:] @ x[1:])
+    assert (e_sum, v_sum) == pytest.approx((case.expected_cost(), case.variance()), rel=1e-12)
 
 
 @pytest.mark.parametrize(
