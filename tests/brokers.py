@@ -59,7 +59,7 @@ def require_mosquitto() -> None:
 class PrivateMosquitto:
     """One mosquitto process with its own config, data and log under ``folder``."""
 
-    def __init__(self, folder: Path, *, port: int | None = None) -> None:
+    def __init__(self, folder: Path, *, port: int | None = None, max_inflight: int = 20) -> None:
         self.folder = folder
         self.folder.mkdir(parents=True, exist_ok=True)
         self.port = port or free_port()
@@ -78,7 +78,7 @@ class PrivateMosquitto:
                     f"persistence_location {folder}/",
                     "autosave_interval 1",
                     "max_queued_messages 0",
-                    "max_inflight_messages 20",
+                    f"max_inflight_messages {max_inflight}",
                     f"log_dest file {self.log}",
                     "log_type error",
                     "log_type warning",

@@ -37,7 +37,7 @@ import json
 import random
 import ssl
 from collections.abc import Awaitable, Callable, Iterable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import aiomqtt
@@ -129,20 +129,28 @@ class Outgoing:
     seq: int = 0
 
 
-@dataclass
 class Outbox:
     """A bounded FIFO of outgoing messages that survives reconnects.
 
     Producers wait in :meth:`put` when it is full (back-pressure). The writer :meth:`take` s items,
     which stay *in flight* until :meth:`done`; :meth:`requeue_in_flight` puts the unconfirmed ones
-    back at the front in their original order.
+    back at the front in their original order. (Single event loop: the bookkeeping has no await
+    inside, so it needs no lock.)
+
+    Args:
+        capacity: Messages queued plus in flight before :meth:`put` waits.
     """
 
-    capacity: int = 10_000
-    _queue: collections.deque[Outgoing] = field(default_factory=collections.deque)
-    _in_flight: dict[int, Outgoing] = field(default_factory=dict)
-    _ticket: int = 0
-    _changed: asyncio.Condition = field(default_factory=asyncio.Condition)
+    def __init__(self, capacity: int = 10_000) -> None:
+        self.capacity = capacity
+        self._queue: collections.deque[Outgoing] = collections.deque()
+        self._in_flight: dict[int, Outgoing] = {}
+        self._ticket = 0
+        self._ready = asyncio.Event()  # something to take
+        self._room = asyncio.Event()  # below capacity
+        self._room.set()
+        self._empty = asyncio.Event()  # nothing queued, nothing in flight
+        self._empty.set()
 
     def __len__(self) -> int:
         return len(self._queue) + len(self._in_flight)
@@ -152,49 +160,54 @@ class Outbox:
         """No room for another message."""
         return len(self) >= self.capacity
 
+    def _changed(self) -> None:
+        size = len(self)
+        (self._ready.set if self._queue else self._ready.clear)()
+        (self._room.set if size < self.capacity else self._room.clear)()
+        (self._empty.set if size == 0 else self._empty.clear)()
+
     async def put(self, item: Outgoing, *, timeout: float | None = None) -> None:
         """Add one message; wait while full (raises TimeoutError after ``timeout`` seconds)."""
-        async with self._changed:
-            await asyncio.wait_for(self._changed.wait_for(lambda: not self.full), timeout)
-            self._queue.append(item)
-            self._changed.notify_all()
+        while self.full:
+            await asyncio.wait_for(self._room.wait(), timeout)
+        self._queue.append(item)
+        self._changed()
 
     def extend(self, items: Iterable[Outgoing]) -> None:
         """Add messages without waiting, even past the capacity (recovery at start only)."""
         self._queue.extend(items)
+        self._changed()
 
     async def take(self) -> tuple[int, Outgoing]:
         """The next message and its ticket; it stays in flight until :meth:`done`."""
-        async with self._changed:
-            await self._changed.wait_for(lambda: bool(self._queue))
-            item = self._queue.popleft()
-            self._ticket += 1
-            self._in_flight[self._ticket] = item
-            return self._ticket, item
+        while not self._queue:
+            await self._ready.wait()
+        item = self._queue.popleft()
+        self._ticket += 1
+        self._in_flight[self._ticket] = item
+        self._changed()
+        return self._ticket, item
 
-    async def done(self, ticket: int) -> None:
+    def done(self, ticket: int) -> None:
         """The message of ``ticket`` was confirmed by the broker."""
-        async with self._changed:
-            self._in_flight.pop(ticket, None)
-            self._changed.notify_all()
+        self._in_flight.pop(ticket, None)
+        self._changed()
 
-    async def requeue_in_flight(self) -> int:
+    def requeue_in_flight(self) -> int:
         """Put every unconfirmed message back at the front, in order; return how many."""
-        async with self._changed:
-            items = [self._in_flight[t] for t in sorted(self._in_flight)]
-            self._in_flight.clear()
-            self._queue.extendleft(reversed(items))
-            self._changed.notify_all()
-            return len(items)
+        items = [self._in_flight[t] for t in sorted(self._in_flight)]
+        self._in_flight.clear()
+        self._queue.extendleft(reversed(items))
+        self._changed()
+        return len(items)
 
     async def wait_empty(self, timeout: float) -> bool:
         """Wait until every message is confirmed; False if ``timeout`` seconds passed first."""
-        async with self._changed:
-            try:
-                await asyncio.wait_for(self._changed.wait_for(lambda: len(self) == 0), timeout)
-            except TimeoutError:
-                return False
-            return True
+        try:
+            await asyncio.wait_for(self._empty.wait(), timeout)
+        except TimeoutError:
+            return False
+        return True
 
 
 class _Closing(Exception):
@@ -323,7 +336,7 @@ class Bus:
                 delays = iter(
                     backoff_delays(self.reconnect_min_seconds, self.reconnect_max_seconds)
                 )
-            requeued = await self.outbox.requeue_in_flight()
+            requeued = self.outbox.requeue_in_flight()
             delay = next(delays)
             self._log.warning(
                 "connection lost" if self.connections > connections else "cannot connect",
@@ -441,7 +454,7 @@ class Bus:
             await client.publish(item.topic, item.payload, qos=1, retain=item.retain)
         finally:
             slots.release()
-        await self.outbox.done(ticket)
+        self.outbox.done(ticket)
         if self._on_published is not None:
             result = self._on_published(item)
             if result is not None:

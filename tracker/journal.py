@@ -103,7 +103,9 @@ def _connect(path: Path, *, readonly: bool) -> sqlite3.Connection:
             # -shm file, which it creates next to the journal when missing).
             connection = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
         else:
-            connection = sqlite3.connect(path, isolation_level=None)
+            # The daemon commits from a worker thread (one call at a time, never concurrently),
+            # so that the event loop goes on reading and publishing while the disk syncs.
+            connection = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
     except sqlite3.Error as exc:
         raise JournalError(f"cannot open {path}: {exc}") from exc
     return connection
