@@ -55,7 +55,7 @@ import hashlib
 import json
 import math
 import sys
-from collections.abc import Callable, Iterable, Iterator, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -379,96 +379,132 @@ class Replayer:
 
     def feed(self, record: Record | BadLine) -> list[Outbound]:
         """Handle one line; return what the engine said (and the line's error, if rejected)."""
-        self.lines += 1
+        return self.feed_many([record])[0]
+
+    def feed_many(self, records: Sequence[Record | BadLine]) -> list[list[Outbound]]:
+        """Handle lines in order; return the outputs of each, exactly as :meth:`feed` would.
+
+        The engine gets the accepted messages (and derived ticks) of the lines in one
+        ``handle_many`` call where it has one, so that the bins of a bin close share a solve.
+        """
+        results: list[list[Outbound]] = [[] for _ in records]
+        pending: list[tuple[int, Inbound, int, bytes | None, bool]] = []
+        pending_keys: set[bytes] = set()
+
+        def flush() -> None:
+            events = [entry[1] for entry in pending]
+            handle_many = getattr(self.engine, "handle_many", None)
+            if handle_many is not None:
+                produced_all: list[list[Outbound]] = handle_many(events)
+            else:
+                produced_all = [self.engine.handle(event) for event in events]
+            for (index, _, line, key, is_line), produced in zip(pending, produced_all, strict=True):
+                rejected = False
+                for out in produced:
+                    if isinstance(out, ErrorMessage):
+                        rejected = True
+                        out = out.model_copy(update={"line": line})
+                    results[index].append(out)
+                if not is_line:
+                    continue  # a derived tick
+                if rejected:
+                    self.rejected += 1
+                else:
+                    self.accepted += 1
+                    if key is not None:
+                        self._seen.add(key)
+            pending.clear()
+            pending_keys.clear()
+
+        for index, record in enumerate(records):
+            self.lines += 1
+            staged = self._stage(record)
+            if isinstance(staged, ErrorMessage):
+                results[index].append(staged)
+                continue
+            message, key, recorded = staged
+            if key is not None and key in pending_keys:
+                flush()  # whether it is a redelivery depends on the first copy's fate
+            if key is not None and key in self._seen:
+                self.redelivered += 1
+                continue
+            if not self._in_order(recorded):
+                assert recorded is not None and self._recorded is not None
+                results[index].append(
+                    self._reject(
+                        record.line,
+                        record.topic,
+                        payload_text(record.payload),
+                        f"time goes backwards: this line's ts {_iso(recorded)} is earlier than "
+                        f"{_iso(self._recorded)} of a line before it; a recording must be in "
+                        "the order the messages were received -- sort the lines by 'ts' or fix "
+                        "this line's ts",
+                        recorded,
+                    )
+                )
+                continue
+            when = recorded if recorded is not None else _message_time(message)
+            if recorded is not None:
+                self._recorded = recorded
+            if when is not None and (self._last is None or when > self._last):
+                if self.derive_ticks and self._last is not None:
+                    for tick in self._ticks_until(when):
+                        pending.append((index, tick, record.line, None, False))
+                self._last = when
+            pending.append((index, message, record.line, key, True))
+            if key is not None:
+                pending_keys.add(key)
+        flush()
+        return results
+
+    def _stage(
+        self, record: Record | BadLine
+    ) -> ErrorMessage | tuple[Inbound, bytes | None, datetime | None]:
+        """The line's own checks: its error, or the decoded message, its identity and time."""
         if isinstance(record, BadLine):
             when = _parse_ts_or_none(record.ts)
-            return [self._reject(record.line, record.topic, record.raw, record.reason, when)]
+            return self._reject(record.line, record.topic, record.raw, record.reason, when)
         recorded: datetime | None = None
         if record.ts is not None:
             try:
                 recorded = _parse_ts(record.ts)
             except ValueError:
-                return [
-                    self._reject(
-                        record.line,
-                        record.topic,
-                        payload_text(record.payload),
-                        f"the line's 'ts' {record.ts!r} is not an ISO 8601 time with an offset; "
-                        "write it like 2026-03-10T14:30:00Z, or leave it out",
-                        None,
-                    )
-                ]
+                return self._reject(
+                    record.line,
+                    record.topic,
+                    payload_text(record.payload),
+                    f"the line's 'ts' {record.ts!r} is not an ISO 8601 time with an offset; "
+                    "write it like 2026-03-10T14:30:00Z, or leave it out",
+                    None,
+                )
         try:
             message = decode(record.topic, record.payload, root=self.root)
         except WireError as exc:
-            return [
-                self._reject(
-                    record.line, record.topic, payload_text(record.payload), exc.reason, recorded
-                )
-            ]
+            return self._reject(
+                record.line, record.topic, payload_text(record.payload), exc.reason, recorded
+            )
         # Ticks are made by the shell, never redelivered by a broker; two equal ones are harmless
         # to the engine and are not remembered (a long-running daemon makes one a second).
         key = None if isinstance(message, Tick) else _identity(record.topic, message)
-        if key is not None and key in self._seen:
-            self.redelivered += 1
-            return []
-        if (
+        return message, key, recorded
+
+    def _in_order(self, recorded: datetime | None) -> bool:
+        """False when the line's recorded time is earlier than an earlier line's."""
+        return not (
             self.check_time
             and recorded is not None
             and self._recorded is not None
             and recorded < self._recorded
-        ):
-            return [
-                self._reject(
-                    record.line,
-                    record.topic,
-                    payload_text(record.payload),
-                    f"time goes backwards: this line's ts {_iso(recorded)} is earlier than "
-                    f"{_iso(self._recorded)} of a line before it; a recording must be in the "
-                    "order the messages were received -- sort the lines by 'ts' or fix this "
-                    "line's ts",
-                    recorded,
-                )
-            ]
-        outputs: list[Outbound] = []
-        when = recorded if recorded is not None else _message_time(message)
-        if recorded is not None:
-            self._recorded = recorded
-        if when is not None and (self._last is None or when > self._last):
-            if self.derive_ticks and self._last is not None:
-                outputs.extend(self._ticks_until(when, record.line))
-            self._last = when
-        produced = self.engine.handle(message)
-        rejected = False
-        for out in produced:
-            if isinstance(out, ErrorMessage):
-                rejected = True
-                outputs.append(out.model_copy(update={"line": record.line}))
-            else:
-                outputs.append(out)
-        if rejected:
-            self.rejected += 1
-        else:
-            self.accepted += 1
-            if key is not None:
-                self._seen.add(key)
-        return outputs
+        )
 
-    def _ticks_until(self, when: datetime, line: int) -> list[Outbound]:
-        """Outputs of the derived ticks after the previous line's time and at or before ``when``."""
+    def _ticks_until(self, when: datetime) -> list[Tick]:
+        """The derived ticks after the previous line's time and at or before ``when``."""
         assert self._last is not None
         # Whole microseconds (timedelta // timedelta): exact, no float rounding at the boundaries.
         first = (self._last - _EPOCH) // self._tick + 1
         last = (when - _EPOCH) // self._tick
-        outputs: list[Outbound] = []
-        for k in range(first, last + 1):
-            tick = Tick(ts=_EPOCH + k * self._tick)
-            self.ticks_derived += 1
-            for out in self.engine.handle(tick):
-                if isinstance(out, ErrorMessage):
-                    out = out.model_copy(update={"line": line})
-                outputs.append(out)
-        return outputs
+        self.ticks_derived += max(last - first + 1, 0)
+        return [Tick(ts=_EPOCH + k * self._tick) for k in range(first, last + 1)]
 
     def _reject(
         self, line: int, topic: str, raw: str, reason: str, recorded: datetime | None
@@ -529,10 +565,12 @@ def replay(
         check_time=check_time,
     )
     result = ReplayResult()
-    for done, record in enumerate(lines, start=1):
-        result.add(replayer.feed(record))
-        if progress is not None and done % 2048 == 0:
-            progress(done)
+    chunk = 2048
+    for start in range(0, len(lines), chunk):
+        for outputs in replayer.feed_many(lines[start : start + chunk]):
+            result.add(outputs)
+        if progress is not None and start + chunk < len(lines):
+            progress(start + chunk)
     if progress is not None:
         progress(len(lines))
     result.summary = finish_summary(engine, replayer)
