@@ -429,6 +429,7 @@ class Replayer:
                 self.redelivered += 1
                 continue
             if not self._in_order(recorded):
+                assert isinstance(record, Record)  # a BadLine never gets past _stage
                 assert recorded is not None and self._recorded is not None
                 results[index].append(
                     self._reject(
