@@ -54,6 +54,8 @@ SYMBOLS = [f"HX{i:02d}" for i in range(50)]
 ROOT = "bench"
 RAW_ROOT = "raw"
 WINDOW = 256  # publications in flight at once (publisher pipelining)
+#: Bin closes 1..77 plan the next bin; close 78 (16:00) is the orders' end: no targets after it.
+LAST_BIN = 78
 
 
 def iso(moment: datetime) -> str:
@@ -433,7 +435,7 @@ async def run(args: argparse.Namespace) -> dict[str, Any]:
                 extra = 0
                 if args.day:
                     next_fill = args.fills
-                    for index in range(args.closes + 1, 79):
+                    for index in range(args.closes + 1, LAST_BIN):
                         at = DAY + timedelta(minutes=5 * index - 2)
                         batch = fill_messages(orders, args.day_fills, next_fill, at)
                         next_fill += len(batch)

@@ -15,6 +15,7 @@ import contextlib
 import functools
 import getpass
 import json
+import os
 import shutil
 import signal
 import socket
@@ -59,7 +60,14 @@ def require_mosquitto() -> None:
 class PrivateMosquitto:
     """One mosquitto process with its own config, data and log under ``folder``."""
 
-    def __init__(self, folder: Path, *, port: int | None = None, max_inflight: int = 20) -> None:
+    def __init__(
+        self,
+        folder: Path,
+        *,
+        port: int | None = None,
+        max_inflight: int = 20,
+        password_file: Path | None = None,
+    ) -> None:
         self.folder = folder
         self.folder.mkdir(parents=True, exist_ok=True)
         self.port = port or free_port()
@@ -73,7 +81,8 @@ class PrivateMosquitto:
                     # Started as root, mosquitto would switch to user "mosquitto", which cannot
                     # write its log or its saved sessions in our temp folder.
                     f"user {getpass.getuser()}",
-                    "allow_anonymous true",
+                    "allow_anonymous true" if password_file is None else "allow_anonymous false",
+                    "" if password_file is None else f"password_file {password_file}",
                     "persistence true",
                     f"persistence_location {folder}/",
                     "autosave_interval 1",
@@ -228,7 +237,9 @@ class DaemonProcess:
         journal: Path | None = None,
         summary: Path | None = None,
         extra: tuple[str, ...] = (),
+        env: dict[str, str] | None = None,
     ) -> None:
+        self.env = env
         self.folder = folder
         folder.mkdir(parents=True, exist_ok=True)
         self.journal = journal or folder / "journal.sqlite"
@@ -263,8 +274,9 @@ class DaemonProcess:
     def start(self) -> None:
         """Start the daemon (its log appends to ``daemon.log``)."""
         self._log_handle = open(self.log, "ab")  # noqa: SIM115 -- closed in wait()/kill()
+        env = None if self.env is None else {**os.environ, **self.env}
         self.process = subprocess.Popen(
-            self.args, stdout=self._log_handle, stderr=subprocess.STDOUT, cwd=self.folder
+            self.args, stdout=self._log_handle, stderr=subprocess.STDOUT, cwd=self.folder, env=env
         )
 
     def wait_connected(self, timeout: float = 60.0) -> None:

@@ -167,3 +167,32 @@ def test_tick_seconds_zero_turns_the_timer_off() -> None:
     """tick_seconds = 0 is allowed (no timer)."""
     settings = load_settings({"daemon.journal": "j", "daemon.tick_seconds": "0"}, {})
     assert 0.0 == settings.tick_seconds
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["run"], "--journal PATH"),
+        (["run", "--journal", "j", "--broker", "tcp://x"], "mqtt://"),
+        (["run", "--journal", "j", "--root", "a/#"], "wildcards"),
+    ],
+    ids=["no-journal", "bad-url", "bad-root"],
+)
+def test_run_command_refuses_bad_settings_with_exit_2(
+    argv: list[str],
+    message: str,
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """tracker run checks its settings before connecting: one line on stderr, exit code 2."""
+    from tracker.cli import main
+    from tracker.config import CONFIG_ENVIRONMENT, ENVIRONMENT
+
+    for name in [*ENVIRONMENT.values(), CONFIG_ENVIRONMENT]:
+        monkeypatch.delenv(name, raising=False)
+    monkeypatch.chdir(tmp_path)
+    code = main(argv)
+    err = capsys.readouterr().err
+    assert (2, 1) == (code, len(err.strip().splitlines()))
+    assert message in err

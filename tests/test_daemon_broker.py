@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import json
+import subprocess
 from collections.abc import Iterator
 from datetime import datetime
 from pathlib import Path
@@ -13,6 +14,7 @@ import pytest
 
 from tests.brokers import (
     Collector,
+    DaemonProcess,
     PrivateMosquitto,
     async_wait_until,
     day_messages,
@@ -20,6 +22,7 @@ from tests.brokers import (
     journaled,
     publish_all,
     replay_by_topic,
+    wait_until,
 )
 from tracker.config import BrokerSettings, Settings
 from tracker.daemon import Daemon
@@ -305,3 +308,42 @@ def test_small_inbox_applies_a_burst_without_loss(
     summary = asyncio.run(scenario())
     filled = {o["order_id"]: o["filled"] for o in summary["orders"]}  # type: ignore[attr-defined]
     assert {"ZEPH-T1": 3_000} == filled
+
+
+@pytest.fixture
+def locked_mosquitto(tmp_path: Path) -> Iterator[PrivateMosquitto]:
+    """A private Mosquitto that admits only user 'desk' with password 'Wh1sper-x9'."""
+    folder = tmp_path / "locked"
+    folder.mkdir()
+    passwords = folder / "passwords"
+    subprocess.run(
+        ["mosquitto_passwd", "-c", "-b", str(passwords), "desk", "Wh1sper-x9"], check=True
+    )
+    with PrivateMosquitto(folder, password_file=passwords) as broker:
+        yield broker
+
+
+@pytest.mark.parametrize(
+    ("password", "logged"),
+    [("Wh1sper-x9", '"connected"'), ("Wr0ng-pass", '"cannot connect"')],
+    ids=["right", "wrong"],
+)
+def test_credentials_are_used_and_never_logged(
+    tmp_path: Path, locked_mosquitto: PrivateMosquitto, password: str, logged: str
+) -> None:
+    """The password from the environment opens the broker; neither it nor a wrong one is logged."""
+    daemon = DaemonProcess(
+        tmp_path / "daemon",
+        locked_mosquitto.url,
+        root=ROOT,
+        instance="auth",
+        extra=("--username", "desk"),
+        env={"TRACKER_BROKER_PASSWORD": password},
+    )
+    daemon.start()
+    try:
+        wait_until(lambda: logged in daemon.log_text(), 60, f"{logged} in the log")
+        assert 0 == daemon.terminate()
+    finally:
+        daemon.cleanup()
+    assert password not in daemon.log_text()

@@ -2,7 +2,7 @@
 
 Theory of operation
 -------------------
-Everything the engine sees passes through one loop, the *processor*, in one order:
+Everything the engine sees passes through two stages, in one order. Stage 1 (journal):
 
 1. take what is waiting in the bounded inbox (deliveries from :class:`tracker.bus.Bus`, tick
    requests from the timer), at most ``batch_size`` at a time;
@@ -11,7 +11,10 @@ Everything the engine sees passes through one loop, the *processor*, in one orde
    a worker thread, so messages keep arriving meanwhile and the next group is larger when the disk
    is slow (group commit);
 3. acknowledge them to the broker (only now: a crash before this line makes the broker deliver
-   them again, and a redelivered copy changes nothing);
+   them again, and a redelivered copy changes nothing).
+
+Stage 2 (apply), which works on one group while stage 1 commits the next:
+
 4. feed each journaled record, exactly as journaled, to a :class:`tracker.replay.Replayer` -- the
    same code ``tracker replay`` runs -- which decodes it (or rejects it with a reason), skips exact
    redeliveries, and hands it to :meth:`Engine.handle`;
@@ -62,6 +65,7 @@ from tracker.journal import Journal
 from tracker.records import Record
 from tracker.replay import EngineLike, Replayer, dumps_summary, finish_summary
 from tracker.wire import (
+    AlertMessage,
     ErrorMessage,
     Outbound,
     StatusMessage,
@@ -195,6 +199,8 @@ class Daemon:
         self._clock: _Clock | None = None
         self._unconfirmed: dict[int, int] = {}  # journal seq -> outputs not yet confirmed
         self._applied = 0
+        # Journaled groups on their way from stage 1 to stage 2 (None: stage 1 has stopped).
+        self._journaled: asyncio.Queue[list[Record] | None] = asyncio.Queue(4)
         self._persisted_mark = 0
         self.recovered = 0
         self.republished = 0
@@ -340,7 +346,8 @@ class Daemon:
         await self.inbox.put(_TICK)  # the start tick (see "Time" above)
         async with asyncio.TaskGroup() as group:
             bus = group.create_task(self.bus.run(), name="daemon.bus")
-            processor = group.create_task(self._process(), name="daemon.processor")
+            journaler = group.create_task(self._journal_stage(), name="daemon.journal")
+            applier = group.create_task(self._apply_stage(), name="daemon.apply")
             ticker = None
             if self.settings.tick_seconds > 0:
                 ticker = group.create_task(self._tick(), name="daemon.ticker")
@@ -351,7 +358,8 @@ class Daemon:
                 ticker.cancel()
             # 2. finish what is in the inbox
             self._draining = True
-            await _within(processor, STAGE_SECONDS, self._log, "draining the inbox")
+            await _within(journaler, STAGE_SECONDS, self._log, "journaling the inbox")
+            await _within(applier, STAGE_SECONDS, self._log, "applying the journaled")
             # 3. flush: wait for the broker to confirm every output
             if not await self.outbox.wait_empty(FLUSH_SECONDS):
                 self._log.warning(
@@ -377,13 +385,19 @@ class Daemon:
                 continue  # time still passes: the next tick says so; no need to wait in line
             self.inbox.put_nowait(_TICK)
 
-    async def _process(self) -> None:
+    async def _journal_stage(self) -> None:
+        """Stage 1: group what waits in the inbox, journal it, acknowledge it, pass it on.
+
+        It runs beside stage 2 (:meth:`_apply_stage`): while the engine applies one group, the
+        next group is being committed, so the disk's sync time and the engine's work overlap.
+        """
         batch_size = self.settings.batch_size
         while True:
             try:
                 first = await asyncio.wait_for(self.inbox.get(), timeout=0.25)
             except TimeoutError:
                 if self._draining:
+                    await self._journaled.put(None)
                     return
                 continue
             batch = [first]
@@ -392,9 +406,9 @@ class Daemon:
                     batch.append(self.inbox.get_nowait())
                 except asyncio.QueueEmpty:
                     break
-            await self._apply(batch)
+            await self._journaled.put(await self._commit(batch))
 
-    async def _apply(self, batch: list[Delivery | _TickRequest]) -> None:
+    async def _commit(self, batch: list[Delivery | _TickRequest]) -> list[Record]:
         assert self._clock is not None
         ts = format_ts(self._clock())
         rows: list[tuple[str, bytes, str]] = []
@@ -414,21 +428,36 @@ class Daemon:
         for item in batch:
             if isinstance(item, Delivery):
                 item.ack()
+        return [
+            Record(line=seq, topic=topic, payload=payload, ts=ts)
+            for seq, (topic, payload, _) in zip(seqs, rows, strict=True)
+        ]
+
+    async def _apply_stage(self) -> None:
+        """Stage 2: feed each journaled record to the engine and queue its outputs, in order."""
+        while True:
+            group = await self._journaled.get()
+            if group is None:
+                return
+            await self._apply(group)
+
+    async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
-        for seq, (topic, payload, _) in zip(seqs, rows, strict=True):
-            outputs = self._feed(Record(line=seq, topic=topic, payload=payload, ts=ts))
+        for record in records:
+            seq = record.line
+            outputs = self._feed(record)
             self._applied = seq
             items = [self._outgoing(seq, out) for out in outputs]
             if items:
                 self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
                 for item in items:
                     await self._put_out(item)
-                # Let the bus start publishing these while the engine works on the next record
-                # (a bin close of many symbols then shows its first targets early); only every
-                # few milliseconds, so that cheap records (fills) pay nothing for it.
-                if _time.perf_counter() - yielded > YIELD_SECONDS:
-                    await asyncio.sleep(0)
-                    yielded = _time.perf_counter()
+            # Let the bus publish (and stage 1 read) while the engine works on the next record
+            # (a bin close of many symbols then shows its first targets early); only every few
+            # milliseconds, so that cheap records (fills) pay nothing for it.
+            if _time.perf_counter() - yielded > YIELD_SECONDS:
+                await asyncio.sleep(0)
+                yielded = _time.perf_counter()
 
     def _limited(self, delivery: Delivery) -> bytes:
         """The payload to journal: as received, or a note when it is over the size limit."""
@@ -469,6 +498,17 @@ class Daemon:
                     topic=out.topic,
                     order_id=out.order_id,
                     reason=out.reason,
+                    seq=record.line,
+                )
+            elif isinstance(out, AlertMessage):
+                self._log.info(
+                    "alert",
+                    topic=record.topic,
+                    order_id=out.order_id,
+                    symbol=out.symbol,
+                    code=out.code,
+                    severity=out.severity,
+                    state=out.state,
                     seq=record.line,
                 )
             if self._on_output is not None:
