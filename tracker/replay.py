@@ -365,6 +365,7 @@ class Replayer:
         self._tick_topic = f"{root}/tick"
         self._last: datetime | None = None
         self._recorded: datetime | None = None
+        self._next_tick: datetime | None = None  # the first derived tick after _last
         self._seen: set[bytes] = set()
         self.lines = 0
         self.accepted = 0
@@ -448,10 +449,13 @@ class Replayer:
             if recorded is not None:
                 self._recorded = recorded
             if when is not None and (self._last is None or when > self._last):
-                if self.derive_ticks and self._last is not None:
+                if self._next_tick is not None and when >= self._next_tick:
                     for tick in self._ticks_until(when):
                         pending.append((index, tick, record.line, None, False))
+                    self._next_tick = None
                 self._last = when
+                if self.derive_ticks and self._next_tick is None:
+                    self._next_tick = _EPOCH + ((when - _EPOCH) // self._tick + 1) * self._tick
             pending.append((index, message, record.line, key, True))
             if key is not None:
                 pending_keys.add(key)
