@@ -33,10 +33,11 @@ from __future__ import annotations
 import asyncio
 import collections
 import contextlib
+import functools
 import json
 import random
 import ssl
-from collections.abc import Awaitable, Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -63,17 +64,23 @@ MAX_IN_FLIGHT = 256
 BACKPRESSURE_REPORT_SECONDS = 5.0
 
 
+@functools.lru_cache(maxsize=256)
+def _levels(pattern: str) -> tuple[str, ...]:
+    return tuple(pattern.split("/"))
+
+
 def topic_matches(topic: str, pattern: str) -> bool:
     """Whether a topic matches a subscription filter (``+`` one level, ``#`` the rest)."""
     topic_levels = topic.split("/")
-    for index, level in enumerate(pattern.split("/")):
+    levels = _levels(pattern)
+    for index, level in enumerate(levels):
         if level == "#":
             return True
         if index >= len(topic_levels):
             return False
         if level != "+" and level != topic_levels[index]:
             return False
-    return len(topic_levels) == len(pattern.split("/"))
+    return len(topic_levels) == len(levels)
 
 
 def backoff_delays(
@@ -240,7 +247,7 @@ class Bus:
         outbox: Outbox,
         health_topic: str,
         health: Callable[[], dict[str, Any]],
-        on_published: Callable[[Outgoing], Awaitable[None] | None] | None = None,
+        on_published: Callable[[Outgoing], None] | None = None,
         heartbeat_seconds: float = 10.0,
         reconnect_min_seconds: float = 0.2,
         reconnect_max_seconds: float = 30.0,
@@ -438,27 +445,46 @@ class Bus:
         self.backpressure = False
 
     async def _write(self, client: aiomqtt.Client) -> None:
-        slots = asyncio.Semaphore(MAX_IN_FLIGHT)
-        async with asyncio.TaskGroup() as group:
-            while True:
-                await slots.acquire()
-                ticket, item = await self.outbox.take()
-                # paho queues the PUBLISH synchronously inside client.publish() before its first
-                # await, so starting the tasks in order keeps the messages in order on the wire.
-                group.create_task(self._publish(client, ticket, item, slots))
+        """Publish the outbox in order, up to MAX_IN_FLIGHT awaiting their PUBACK at once.
 
-    async def _publish(
-        self, client: aiomqtt.Client, ticket: int, item: Outgoing, slots: asyncio.Semaphore
-    ) -> None:
+        This is the hot path of the daemon (one or two outputs per fill), so it talks to paho
+        directly rather than through ``aiomqtt.Client.publish``, which costs a task, an event and
+        a timeout per message: paho queues the PUBLISH at once (in order) and calls
+        ``on_publish`` with its message id when the PUBACK comes; we chain onto aiomqtt's own
+        handler for that. A PUBACK that never comes is a dead connection, which the reader and
+        the keep-alive notice; the unconfirmed messages are then sent again after the reconnect.
+        """
+        inner: paho.Client = client._client
+        pending: dict[int, tuple[int, Outgoing]] = {}  # paho message id -> (ticket, message)
+        room = asyncio.Event()
+        room.set()
+        aiomqtt_on_publish = inner.on_publish
+
+        def on_publish(*args: Any) -> None:
+            if aiomqtt_on_publish is not None:
+                aiomqtt_on_publish(*args)  # the health messages go through aiomqtt
+            entry = pending.pop(args[2], None)  # (client, userdata, mid, reason, properties)
+            if entry is None:
+                return
+            ticket, item = entry
+            self.outbox.done(ticket)
+            if self._on_published is not None:
+                self._on_published(item)
+            room.set()
+
+        inner.on_publish = on_publish
         try:
-            await client.publish(item.topic, item.payload, qos=1, retain=item.retain)
+            while True:
+                while len(pending) >= MAX_IN_FLIGHT:
+                    room.clear()
+                    await room.wait()
+                ticket, item = await self.outbox.take()
+                info = inner.publish(item.topic, item.payload, qos=1, retain=item.retain)
+                if info.rc != paho.MQTT_ERR_SUCCESS:
+                    raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
+                pending[info.mid] = (ticket, item)
         finally:
-            slots.release()
-        self.outbox.done(ticket)
-        if self._on_published is not None:
-            result = self._on_published(item)
-            if result is not None:
-                await result
+            inner.on_publish = aiomqtt_on_publish
 
     async def _heartbeat(self, client: aiomqtt.Client) -> None:
         while True:
