@@ -67,6 +67,7 @@ class PrivateMosquitto:
         port: int | None = None,
         max_inflight: int = 20,
         password_file: Path | None = None,
+        listener_options: tuple[str, ...] = (),
     ) -> None:
         self.folder = folder
         self.folder.mkdir(parents=True, exist_ok=True)
@@ -78,6 +79,7 @@ class PrivateMosquitto:
             "\n".join(
                 [
                     f"listener {self.port} 127.0.0.1",
+                    *listener_options,
                     # Started as root, mosquitto would switch to user "mosquitto", which cannot
                     # write its log or its saved sessions in our temp folder.
                     f"user {getpass.getuser()}",

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import json
+import shutil
 import subprocess
 from collections.abc import Iterator
 from datetime import datetime
@@ -347,3 +348,90 @@ def test_credentials_are_used_and_never_logged(
     finally:
         daemon.cleanup()
     assert password not in daemon.log_text()
+
+
+def _certificates(folder: Path) -> tuple[Path, Path, Path]:
+    """A throw-away CA and a server certificate for 127.0.0.1 signed by it (openssl)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    ca_key, ca, key, csr, cert = (
+        folder / n for n in ("ca.key", "ca.pem", "s.key", "s.csr", "s.pem")
+    )
+    san = folder / "san.cnf"
+    san.write_text("subjectAltName=IP:127.0.0.1\n")
+
+    def openssl(*args: str) -> None:
+        subprocess.run(["openssl", *args], check=True, capture_output=True, timeout=60)
+
+    openssl(
+        "req",
+        "-x509",
+        "-newkey",
+        "rsa:2048",
+        "-nodes",
+        "-keyout",
+        str(ca_key),
+        "-out",
+        str(ca),
+        "-days",
+        "2",
+        "-subj",
+        "/CN=tracker test CA",
+    )
+    openssl(
+        "req",
+        "-newkey",
+        "rsa:2048",
+        "-nodes",
+        "-keyout",
+        str(key),
+        "-out",
+        str(csr),
+        "-subj",
+        "/CN=127.0.0.1",
+    )
+    openssl(
+        "x509",
+        "-req",
+        "-in",
+        str(csr),
+        "-CA",
+        str(ca),
+        "-CAkey",
+        str(ca_key),
+        "-CAcreateserial",
+        "-out",
+        str(cert),
+        "-days",
+        "2",
+        "-extfile",
+        str(san),
+    )
+    return ca, cert, key
+
+
+@pytest.mark.parametrize(
+    ("trust", "logged"), [(True, '"connected"'), (False, '"cannot connect"')], ids=["ca", "no-ca"]
+)
+def test_tls_broker_is_verified_against_the_given_ca(
+    tmp_path: Path, trust: bool, logged: str
+) -> None:
+    """mqtts:// with --ca connects to a TLS Mosquitto; without the CA the certificate is refused."""
+    if shutil.which("openssl") is None:
+        pytest.skip("openssl is not installed")
+    ca, cert, key = _certificates(tmp_path / "pki")
+    options = (f"cafile {ca}", f"certfile {cert}", f"keyfile {key}")
+    with PrivateMosquitto(tmp_path / "tls", listener_options=options) as broker:
+        extra = ("--ca", str(ca)) if trust else ()
+        daemon = DaemonProcess(
+            tmp_path / "daemon",
+            f"mqtts://127.0.0.1:{broker.port}",
+            root=ROOT,
+            instance="tls",
+            extra=extra,
+        )
+        daemon.start()
+        try:
+            wait_until(lambda: logged in daemon.log_text(), 60, f"{logged} in the log")
+            assert 0 == daemon.terminate()
+        finally:
+            daemon.cleanup()

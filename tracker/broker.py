@@ -37,7 +37,7 @@ START_TIMEOUT = 10.0
 STOP_TIMEOUT = 10.0
 
 
-class OpenLoopbackAuth(BaseAuthPlugin):
+class OpenLoopbackAuth(BaseAuthPlugin):  # type: ignore[misc]  # amqtt ships no type hints
     """Accept every client (the broker listens on loopback only) as a non-anonymous session."""
 
     @dataclass

@@ -483,7 +483,7 @@ def load_settings(
         root=validate_root(get("daemon.root") or DEFAULT_ROOT, field="daemon.root"),
         profiles=profiles,
         instance=_validate_id(get("daemon.instance") or defaults.instance, "daemon.instance"),
-        durability=durability,
+        durability="normal" if durability == "normal" else "full",
         tick_seconds=number("tick_seconds", defaults.tick_seconds, minimum=0.001, allow_zero=True),
         heartbeat_seconds=number("heartbeat_seconds", defaults.heartbeat_seconds, minimum=0.1),
         max_payload_bytes=number(

@@ -225,7 +225,7 @@ async def play_day(
         )
         await _forget_session(broker, settings.client_id)
         started = _time.monotonic()
-        clock = _SimClock(settings.clock_start, speed)
+        clock = _SimClock(first - timedelta(seconds=1), speed)
         published = await _run_live(settings, scenario, clock, show_table)
         wall = _time.monotonic() - started
         await _forget_session(broker, settings.client_id)
