@@ -190,3 +190,63 @@ def test_kill_during_appends_leaves_only_whole_records(tmp_path: Path) -> None:
     expected = [str(r.line).encode() for r in records]
     assert expected == [r.payload for r in records]
     assert len(records) >= 200
+
+
+def _replayed(records: object) -> dict[str, list[bytes]]:
+    from tracker.engine import Engine
+    from tracker.replay import replay
+    from tracker.wire import encode
+
+    result = replay(records, Engine())  # type: ignore[arg-type]
+    return {
+        kind: [encode(m) for m in getattr(result, kind)]
+        for kind in ("targets", "alerts", "status", "errors")
+    }
+
+
+def test_export_replays_like_the_journal(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """tracker journal export writes a JSON Lines file whose replay equals the journal's."""
+    from tracker.cli import main
+    from tracker.replay import read_jsonl
+
+    order = (
+        '{"type":"order","action":"new","order_id":"ZEPH-J1","symbol":"ZEPH","side":"buy",'
+        '"quantity":5000,"start":"2026-03-10T14:30:00Z","end":"2026-03-10T20:00:00Z",'
+        '"ts":"2026-03-10T14:29:00Z"}'
+    )
+    fill = (
+        '{"type": "fill", "fill_id": "J1", "order_id": "ZEPH-J1", "quantity": 100, '
+        '"price": 42.0, "ts": "2026-03-10T14:31:00Z"}'
+    )
+    rows = [
+        (
+            "tracker/tick",
+            b'{"type":"tick","ts":"2026-03-10T14:29:30Z"}',
+            "2026-03-10T14:29:30.000000Z",
+        ),
+        ("tracker/orders/ZEPH-J1", order.encode(), "2026-03-10T14:29:31.000000Z"),
+        ("tracker/fills/ZEPH-J1", fill.encode(), "2026-03-10T14:31:01.000000Z"),  # spaced JSON
+        ("tracker/fills/ZEPH-J1", b'{"type": "fill", NaN}', "2026-03-10T14:31:02.000000Z"),
+        ("tracker/fills/ZEPH-J1", fill.encode(), "2026-03-10T14:31:03.000000Z"),  # redelivery
+    ]
+    journal = tmp_path / "j.sqlite"
+    with Journal(journal) as writer:
+        writer.append_many(rows)
+    out = tmp_path / "day.jsonl"
+    assert 0 == main(["journal", "export", str(journal), "-o", str(out)])
+    assert "exported 5 records" in capsys.readouterr().out
+    expected = _replayed(read_journal(journal))
+    assert (1, True) == (len(expected["errors"]), bool(expected["status"]))
+    assert expected == _replayed(read_jsonl(out))
+
+
+def test_export_writes_compact_json_as_objects_and_the_rest_as_text(tmp_path: Path) -> None:
+    """Compact JSON objects become objects (readable); spaced or broken payloads stay raw text."""
+    from tracker.cli.journal import export_payload
+
+    assert ({"a": 1}, True) == export_payload(b'{"a":1}')
+    assert ('{"a": 1}', True) == export_payload(b'{"a": 1}')
+    assert ("{oops", True) == export_payload(b"{oops")
+    assert ("\ufffd", False) == export_payload(b"\xff")
