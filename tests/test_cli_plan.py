@@ -80,3 +80,18 @@ def test_missing_file_is_an_input_error(tmp_path: Path, capsys: pytest.CaptureFi
     """A path that does not exist is reported, not a traceback."""
     assert main(["plan", "--problem", str(tmp_path / "nope.json")]) == 2
     assert "cannot read problem file" in capsys.readouterr().err
+
+
+def test_forced_shortfall_writes_null_objective(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A forced order the caps cannot complete: JSON says null for the infinite terms."""
+    data = {**PROBLEM, "caps": 10_000}  # 6 bins x 10,000 < 100,000 shares
+    assert 0 == main(["plan", "--problem", str(write(tmp_path, data)), "--format", "json"])
+    out = json.loads(capsys.readouterr().out)
+    assert ("capped_shortfall", None, None, 40_000.0) == (
+        out["status"],
+        out["objective"],
+        out["cost"]["terminal_penalty"],
+        out["shortfall"],
+    )

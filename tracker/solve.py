@@ -92,13 +92,22 @@ class Schedule:
     iterations: int
 
     def to_mapping(self) -> dict[str, object]:
-        """The schedule as JSON-ready values."""
+        """The schedule as JSON-ready values.
+
+        A forced order that the caps cannot complete has an infinite objective (its terminal
+        term); JSON has no infinity, so such values are written as ``null``, and the status
+        ``capped_shortfall`` and ``shortfall`` say why.
+        """
+
+        def finite(value: float) -> float | None:
+            return value if math.isfinite(value) else None
+
         return {
             "status": self.status,
-            "objective": self.objective,
+            "objective": finite(self.objective),
             "trajectory": self.trajectory.tolist(),
             "trades": self.trades.tolist(),
-            "cost": dict(self.cost),
+            "cost": {name: finite(value) for name, value in self.cost.items()},
             "shortfall": self.shortfall,
             "method": self.method,
             "iterations": self.iterations,
