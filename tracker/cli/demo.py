@@ -48,6 +48,8 @@ in OUT, and checks that the replay matches what the daemon published. Everything
 DEMO_TICK_SECONDS = 30.0
 #: Simulated minutes the day runs on after the close, so orders reach their end and expire.
 AFTER_CLOSE_MINUTES = 5.0
+#: Order states after which the table shows no next-bin target.
+_FINAL = frozenset({"done", "cancelled", "expired"})
 #: Wall-clock seconds without any message before the day is judged quiet.
 QUIET_SECONDS = 0.3
 
@@ -432,7 +434,6 @@ class _Row:
     quantity: int = 0
     filled: int = 0
     deviation_pct: float = 0.0
-    plan_version: int = 0
     next_target: int | None = None
     last_alert: str = ""
     ts: str = ""
@@ -458,7 +459,7 @@ class _OrderTable:
         if kind == "status":
             row.symbol, row.side, row.state = message.symbol, message.side, message.state
             row.quantity, row.filled = message.quantity, message.filled
-            row.deviation_pct, row.plan_version = message.deviation_pct, message.plan_version
+            row.deviation_pct = message.deviation_pct
         elif kind == "target":
             row.next_target = message.quantity
         elif kind == "alert":
@@ -473,32 +474,30 @@ class _OrderTable:
         )
         for name, justify in (
             ("order", "left"),
-            ("symbol", "left"),
+            ("sym", "left"),
             ("side", "left"),
             ("state", "left"),
             ("filled", "right"),
-            ("of", "right"),
             ("done %", "right"),
             ("vs plan %", "right"),
             ("next bin", "right"),
-            ("plan v", "right"),
             ("last alert", "left"),
         ):
-            table.add_column(name, justify=justify)  # type: ignore[arg-type]
+            table.add_column(name, justify=justify, no_wrap=True)  # type: ignore[arg-type]
         for order_id in sorted(self.rows):
             row = self.rows[order_id]
+            if not row.symbol:
+                continue  # alerts about an order the engine does not know (no status)
             done = 100.0 * row.filled / row.quantity if row.quantity else 0.0
             table.add_row(
                 order_id,
                 row.symbol,
                 row.side,
                 row.state,
-                f"{row.filled:,}",
-                f"{row.quantity:,}",
+                f"{row.filled:,} / {row.quantity:,}",
                 f"{done:.1f}",
                 f"{row.deviation_pct:+.1f}",
-                "" if row.next_target is None else f"{row.next_target:,}",
-                str(row.plan_version),
+                "" if row.next_target is None or row.state in _FINAL else f"{row.next_target:,}",
                 row.last_alert,
             )
         return table
@@ -533,3 +532,4 @@ class _live:
         if self._live is not None:
             self._live.update(self._table.render())
             self._live.__exit__(exc_type, exc, tb)
+            self._live.console.print()
