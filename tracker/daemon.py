@@ -50,7 +50,7 @@ import contextlib
 import fcntl
 import os
 import time as _time
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Iterator
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from types import TracebackType
@@ -443,18 +443,17 @@ class Daemon:
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
-        for record in records:
-            seq = record.line
-            outputs = self._feed(record)
-            self._applied = seq
-            items = [self._outgoing(seq, out) for out in outputs]
-            if items:
-                self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
-                for item in items:
-                    await self._put_out(item)
-            # Let the bus publish (and stage 1 read) while the engine works on the next record
-            # (a bin close of many symbols then shows its first targets early); only every few
-            # milliseconds, so that cheap records (fills) pay nothing for it.
+        for run in _runs(records, f"{self.root}/bins/"):
+            for record, outputs in zip(run, self._feed_run(run), strict=True):
+                seq = record.line
+                self._applied = seq
+                items = [self._outgoing(seq, out) for out in outputs]
+                if items:
+                    self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
+                    for item in items:
+                        await self._put_out(item)
+            # Let the bus publish (and stage 1 read) while the engine works on what follows;
+            # only every few milliseconds, so that cheap records (fills) pay nothing for it.
             if _time.perf_counter() - yielded > YIELD_SECONDS:
                 await asyncio.sleep(0)
                 yielded = _time.perf_counter()
@@ -477,20 +476,44 @@ class Daemon:
         return note.encode("utf-8")
 
     def _feed(self, record: Record) -> list[Outbound]:
+        """Feed one record (recovery at start)."""
+        return self._feed_run([record])[0]
+
+    def _feed_run(self, run: list[Record]) -> list[list[Outbound]]:
+        """Feed records to the replayer: one by one, or a run of bins together.
+
+        The bins of one bin close arrive together; fed in one ``feed_many`` call, the engine
+        re-plans all their orders in one batch solve, with exactly the outputs one by one would
+        give (so a replay of the journal, which feeds it in chunks, still matches).
+        """
         assert self._replayer is not None
         try:
-            outputs = self._replayer.feed(record)
+            if len(run) == 1:
+                results = [self._replayer.feed(run[0])]
+            else:
+                results = self._replayer.feed_many(run)
         except Exception as exc:  # a bug of ours must not stop the desk's other orders
-            self._log.exception("engine failed on a message", topic=record.topic, seq=record.line)
+            self._log.exception(
+                "engine failed", topic=run[0].topic, seq=run[0].line, records=len(run)
+            )
             reason = (
                 f"internal error while handling this message ({type(exc).__name__}); it was not "
                 "applied -- please report it with the journal"
             )
-            payload = (
-                record.payload if isinstance(record.payload, bytes | str) else str(record.payload)
-            )
-            error = self.engine.reject(record.topic, payload, reason, _parse_ts(record.ts or ""))
-            outputs = [error.model_copy(update={"line": record.line})]
+            results = []
+            for record in run:
+                payload = record.payload
+                if not isinstance(payload, bytes | str):
+                    payload = str(payload)
+                error = self.engine.reject(
+                    record.topic, payload, reason, _parse_ts(record.ts or "")
+                )
+                results.append([error.model_copy(update={"line": record.line})])
+        for record, outputs in zip(run, results, strict=True):
+            self._report(record, outputs)
+        return results
+
+    def _report(self, record: Record, outputs: list[Outbound]) -> None:
         for out in outputs:
             if isinstance(out, ErrorMessage):
                 self._log.info(
@@ -513,7 +536,6 @@ class Daemon:
                 )
             if self._on_output is not None:
                 self._on_output(out)
-        return outputs
 
     def _outgoing(self, seq: int, message: Outbound) -> Outgoing:
         return Outgoing(
@@ -587,6 +609,21 @@ class Daemon:
         path.parent.mkdir(parents=True, exist_ok=True)
         path.write_text(dumps_summary(self.summary()), encoding="utf-8")
         return path
+
+
+def _runs(records: list[Record], bins: str) -> Iterator[list[Record]]:
+    """Split records into runs: consecutive bin records together, every other record alone."""
+    run: list[Record] = []
+    for record in records:
+        if record.topic.startswith(bins):
+            run.append(record)
+            continue
+        if run:
+            yield run
+            run = []
+        yield [record]
+    if run:
+        yield run
 
 
 async def _within(task: asyncio.Task[Any], seconds: float, log: Any, what: str) -> None:
