@@ -64,17 +64,14 @@ def remaining_problem(problem: Problem, first_bin: int, inventory: float) -> Pro
     counts only its own trades: its quantity is the inventory held.
     """
 
-    def tail(values: FloatArray | None) -> FloatArray | None:
-        return None if values is None else values[first_bin:]
-
     return replace(
         problem,
         quantity=inventory,
         bins=problem.bins - first_bin,
-        fixed_cost=tail(problem.fixed_cost),
-        temporary_impact=tail(problem.temporary_impact),
-        inventory_penalty=tail(problem.inventory_penalty),
-        caps=tail(problem.caps),
+        fixed_cost=problem.fixed_cost[first_bin:],
+        temporary_impact=problem.temporary_impact[first_bin:],
+        inventory_penalty=problem.inventory_penalty[first_bin:],
+        caps=None if problem.caps is None else problem.caps[first_bin:],
     )
 
 

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -107,7 +107,7 @@ def _per_bin(
     return array
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, init=False)
 class Problem:
     """One remaining-horizon execution problem (see the module docstring for the formula).
 
@@ -134,18 +134,29 @@ class Problem:
 
     quantity: float
     bins: int
-    fixed_cost: FloatArray = field(default=0.0)  # type: ignore[assignment]
-    temporary_impact: FloatArray = field(default=1.0)  # type: ignore[assignment]
-    impact_exponent: float = 1.0
-    permanent_impact: float = 0.0
-    inventory_penalty: FloatArray = field(default=0.0)  # type: ignore[assignment]
-    penalty_exponent: float = 2.0
-    terminal_penalty: float = math.inf
-    caps: FloatArray | None = None
+    fixed_cost: FloatArray
+    temporary_impact: FloatArray
+    impact_exponent: float
+    permanent_impact: float
+    inventory_penalty: FloatArray
+    penalty_exponent: float
+    terminal_penalty: float
+    caps: FloatArray | None
 
-    def __post_init__(self) -> None:
+    def __init__(
+        self,
+        quantity: float,
+        bins: int,
+        fixed_cost: PerBin = 0.0,
+        temporary_impact: PerBin = 1.0,
+        impact_exponent: float = 1.0,
+        permanent_impact: float = 0.0,
+        inventory_penalty: PerBin = 0.0,
+        penalty_exponent: float = 2.0,
+        terminal_penalty: float | str = math.inf,
+        caps: PerBin | Sequence[float | None] | None = None,
+    ) -> None:
         put = object.__setattr__
-        bins = self.bins
         if (
             isinstance(bins, bool)
             or not isinstance(bins, int | np.integer)
@@ -158,14 +169,14 @@ class Problem:
         put(
             self,
             "quantity",
-            _number("quantity", self.quantity, low=0.0, allowed="a finite number of shares >= 0"),
+            _number("quantity", quantity, low=0.0, allowed="a finite number of shares >= 0"),
         )
         put(
             self,
             "fixed_cost",
             _per_bin(
                 "fixed_cost",
-                self.fixed_cost,
+                fixed_cost,
                 bins,
                 allowed="a finite number >= 0 (currency per share)",
             ),
@@ -173,16 +184,14 @@ class Problem:
         put(
             self,
             "temporary_impact",
-            _per_bin(
-                "temporary_impact", self.temporary_impact, bins, allowed="a finite number >= 0"
-            ),
+            _per_bin("temporary_impact", temporary_impact, bins, allowed="a finite number >= 0"),
         )
         put(
             self,
             "impact_exponent",
             _number(
                 "impact_exponent",
-                self.impact_exponent,
+                impact_exponent,
                 low=0.0,
                 high=2.0,
                 low_open=True,
@@ -192,29 +201,25 @@ class Problem:
         put(
             self,
             "permanent_impact",
-            _number(
-                "permanent_impact", self.permanent_impact, low=0.0, allowed="a finite number >= 0"
-            ),
+            _number("permanent_impact", permanent_impact, low=0.0, allowed="a finite number >= 0"),
         )
         put(
             self,
             "inventory_penalty",
-            _per_bin(
-                "inventory_penalty", self.inventory_penalty, bins, allowed="a finite number >= 0"
-            ),
+            _per_bin("inventory_penalty", inventory_penalty, bins, allowed="a finite number >= 0"),
         )
         put(
             self,
             "penalty_exponent",
             _number(
                 "penalty_exponent",
-                self.penalty_exponent,
+                penalty_exponent,
                 low=1.0,
                 high=4.0,
                 allowed="a number in [1, 4]",
             ),
         )
-        terminal = self.terminal_penalty
+        terminal: Any = terminal_penalty
         if isinstance(terminal, str):
             if terminal != FORCE:
                 raise ProblemError(
@@ -232,10 +237,11 @@ class Problem:
                 "terminal_penalty", terminal, low=0.0, allowed='a finite number >= 0 or "force"'
             )
         put(self, "terminal_penalty", terminal)
-        if self.caps is not None:
+        put(self, "caps", None)
+        if caps is not None:
             caps = _per_bin(
                 "caps",
-                self.caps,
+                caps,
                 bins,
                 allow_inf=True,
                 allowed="null (no cap), a number of shares >= 0 "

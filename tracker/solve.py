@@ -631,7 +631,8 @@ def _interior_point(
     def merit(sums: tuple[FloatArray, ...], mu: FloatArray) -> FloatArray:
         """Squared norm, per problem, of the residual of the KKT conditions perturbed by mu."""
         _, dual_sq, centre, gap = sums
-        return dual_sq + centre - 2.0 * mu * gap + n_constraints * mu * mu
+        value: FloatArray = dual_sq + centre - 2.0 * mu * gap + n_constraints * mu * mu
+        return value
 
     # Start: the strictly feasible schedule proportional to the caps, multipliers on the
     # central path for mu = 1/m (the objective is about 1 there by construction).
