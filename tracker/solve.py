@@ -21,9 +21,16 @@ Three paths, chosen per problem:
   constraints ``v_n >= 0``, ``v_n <= u_n`` (only where a cap is below ``Q``) and ``q_N >= 0``.
   Each iteration solves one tridiagonal system with LAPACK's ``dptsv`` (O(N)). A batch of problems
   is laid end to end as one long tridiagonal system whose blocks do not touch, so the whole batch
-  costs the same numpy calls as one problem, just on longer arrays. Inside, inventories are
-  fractions of ``Q`` and costs are divided by the cost of the starting schedule, so tolerances are
-  relative.
+  costs the same numpy calls as one problem, just on longer arrays; a converged problem sits out
+  as an identity block. Problems are grouped by exponents (numpy computes ``v**0.5`` by another
+  route for a scalar exponent than for an array), so a problem gets the same answer, bit for
+  bit, alone or in any batch. Inside, inventories are fractions of ``Q`` and costs are divided
+  by the cost of a schedule that completes the order in proportion to the caps, so tolerances
+  are relative. Steps are accepted when they reduce the KKT residual or satisfy Armijo's
+  condition on the barrier function. The run ends when the duality gap and the dual residual
+  are small; where a trade is pinned at 0 under a term steep there (small beta, p near 1), the
+  dual residual has a floating-point floor (a trade is a difference of numbers near 1), so a gap
+  within the tolerance and a residual that has stopped improving end it too.
 
 Bins whose cap is zero cannot trade: they are taken out before solving (their risk weights are
 folded into the neighbouring inventory they share) and put back as zero trades.
@@ -636,16 +643,17 @@ def _interior_point(
 
     # Start: the strictly feasible schedule proportional to the caps, multipliers on the
     # central path for mu = 1/m (the objective is about 1 there by construction).
+    # Each problem's own running sum, not one over the batch: a problem's start must not
+    # depend on its neighbours, even in the last bit.
     v0 = np.concatenate([r.start for r in problems])
-    x = np.concatenate([1.0 - np.cumsum(r.start) for r in problems])  # per problem, not
-    # one running sum over the batch: a problem's start must not depend on its neighbours
+    x = np.concatenate([1.0 - np.cumsum(r.start) for r in problems])
     x[fixed_idx] = 0.0
     mu0 = 1.0 / n_end
     lo = mu0 / v0
     hi = cap_f * mu0 / (caps_safe - v0)
     end = (1.0 / n_constraints[end_problem]) / x[end_idx]
 
-    # Costs are in units of the starting schedule's cost, so these are relative. The duality
+    # Costs are in units of a completing schedule's cost, so these are relative. The duality
     # gap bounds the suboptimality once the dual residual is small; the residual converges only
     # as fast as the central path (like sqrt(mu) where a bin's trade is pinned at 0).
     gap_tolerance = 1e-2 * tolerance
