@@ -332,7 +332,8 @@ class Engine:
         staged = self._prepare(event)
         if isinstance(staged, list):
             return staged
-        return self._conclude(staged, self._solve([job[5] for job in staged.jobs]))
+        problems = [job[5] for job in staged.jobs]
+        return self._conclude(staged, self._solve(problems) if problems else [])
 
     def handle_many(self, events: Sequence[Inbound]) -> list[list[Outbound]]:
         """Apply events in order; return the outputs of each, exactly as :meth:`handle` would.
@@ -355,7 +356,7 @@ class Engine:
 
         def flush() -> None:
             problems = [job[5] for staged in group for job in staged.jobs]
-            schedules = iter(self._solve(problems))
+            schedules = iter(self._solve(problems) if problems else ())
             for staged in group:
                 results.append(self._conclude(staged, [next(schedules) for _ in staged.jobs]))
             group.clear()
