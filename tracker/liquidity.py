@@ -252,6 +252,51 @@ class Profile:
         )
 
 
+Shape = tuple[float, float, float, float]
+
+
+def shaped_profile(
+    symbol: str,
+    session: Session,
+    *,
+    volume_shape: Shape,
+    spread_shape: Shape,
+    variance_shape: Shape,
+    midday_spread: float,
+    daily_volatility: float,
+    average_daily_volume: float,
+    quality: Mapping[str, Any],
+) -> Profile:
+    """A profile drawn from :func:`intraday_shape` U curves (invented defaults, demo market truth).
+
+    Args:
+        symbol: The symbol.
+        session: Its session.
+        volume_shape: ``intraday_shape`` parameters of the volume curve (normalised to shares).
+        spread_shape: The same for the spread, scaled to ``midday_spread`` where flat.
+        variance_shape: The same for the per-bin return variance, scaled so the day's variance is
+            ``daily_volatility`` squared.
+        midday_spread: Spread at the flat middle of the day, currency.
+        daily_volatility: Standard deviation of the day's log return.
+        average_daily_volume: Shares a day.
+        quality: Where the profile comes from.
+    """
+    share = intraday_shape(session, *volume_shape)
+    spread = midday_spread * intraday_shape(session, *spread_shape)
+    variance = intraday_shape(session, *variance_shape)
+    variance *= daily_volatility**2 / variance.sum()
+    return Profile(
+        symbol=symbol,
+        session=session,
+        volume_share=share / share.sum(),
+        spread=spread,
+        volatility=np.sqrt(variance),
+        average_daily_volume=average_daily_volume,
+        days=0,
+        quality=dict(quality),
+    )
+
+
 def default_profile(symbol: str, session: Session | None = None) -> Profile:
     """An invented, stated default for a symbol without a calibrated profile.
 
@@ -261,19 +306,15 @@ def default_profile(symbol: str, session: Session | None = None) -> Profile:
     stock (common practice: U-shaped volume, spreads widest at the open); use a calibrated profile
     for real decisions.
     """
-    session = session or Session()
-    share = intraday_shape(session, 1.5, 0.08, 1.2, 0.04)
-    spread = DEFAULT_MIDDAY_SPREAD * intraday_shape(session, 1.5, 0.05, 0.0, 1.0)
-    variance = intraday_shape(session, 1.5, 0.08, 0.4, 0.04)
-    variance *= DEFAULT_DAILY_VOLATILITY**2 / variance.sum()
-    return Profile(
-        symbol=symbol,
-        session=session,
-        volume_share=share / share.sum(),
-        spread=spread,
-        volatility=np.sqrt(variance),
+    return shaped_profile(
+        symbol,
+        session or Session(),
+        volume_shape=(1.5, 0.08, 1.2, 0.04),
+        spread_shape=(1.5, 0.05, 0.0, 1.0),
+        variance_shape=(1.5, 0.08, 0.4, 0.04),
+        midday_spread=DEFAULT_MIDDAY_SPREAD,
+        daily_volatility=DEFAULT_DAILY_VOLATILITY,
         average_daily_volume=DEFAULT_ADV,
-        days=0,
         quality={
             "source": "default",
             "note": "invented default profile, not calibrated on any data",

@@ -38,7 +38,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from tracker.errors import InputError
-from tracker.liquidity import Profile, intraday_shape
+from tracker.liquidity import Profile, shaped_profile
 from tracker.session import Session
 
 FloatArray = npt.NDArray[np.float64]
@@ -104,18 +104,15 @@ def true_profile(
     """The profile the generator draws from (the truth a calibration should recover)."""
     session = session or Session()
     params = params or MarketParameters()
-    share = intraday_shape(session, *params.volume_shape)
-    spread = params.midday_spread * intraday_shape(session, *params.spread_shape)
-    variance = intraday_shape(session, *params.variance_shape)
-    variance *= params.daily_volatility**2 / variance.sum()
-    return Profile(
-        symbol=symbol,
-        session=session,
-        volume_share=share / share.sum(),
-        spread=spread,
-        volatility=np.sqrt(variance),
+    return shaped_profile(
+        symbol,
+        session,
+        volume_shape=params.volume_shape,
+        spread_shape=params.spread_shape,
+        variance_shape=params.variance_shape,
+        midday_spread=params.midday_spread,
+        daily_volatility=params.daily_volatility,
         average_daily_volume=params.average_daily_volume,
-        days=0,
         quality={"source": "generator truth", "note": f"invented stock on the {VENUE}"},
     )
 
