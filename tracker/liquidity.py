@@ -416,16 +416,6 @@ def forecast(
     volume = profile.expected_volume.copy()
     spread = profile.spread.copy()
     volatility = profile.volatility.copy()
-    if not observed:
-        for array in (volume, spread, volatility):
-            array.setflags(write=False)
-        return Forecast(
-            session=profile.session,
-            volume=volume,
-            spread=spread,
-            volatility=volatility,
-            average_daily_volume=profile.average_daily_volume,
-        )
     indexes = sorted(observed)
     for index in indexes:
         if (
@@ -444,7 +434,7 @@ def forecast(
             )
     observed = {int(i): observed[i] for i in indexes}
     indexes = [int(i) for i in indexes]
-    seen = np.array(indexes)
+    seen = np.array(indexes, dtype=np.intp)  # typed: may be empty before the first bin
     observed_volume = np.array([observed[i].volume for i in indexes])
     fraction = float(profile.volume_share[seen].sum())
     expected = fraction * profile.average_daily_volume
