@@ -377,7 +377,7 @@ class Engine:
                 continue
             group.append(staged)
             if isinstance(event, BinMessage) and all(
-                self._orders[job[0].order_id].symbol == event.symbol for job in staged.jobs
+                job[0].symbol == event.symbol for job in staged.jobs
             ):
                 symbols.add(event.symbol)
             else:

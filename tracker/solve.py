@@ -494,16 +494,18 @@ def _start(
     total = float(weight.sum())
     if float(caps.sum()) > 1.0:  # room to complete strictly inside the caps (inf: no cap)
         completing = weight / total
-        scale = _unscaled_objective(completing, h, k, c, beta, b, p, math.inf)
-        if not (scale > 0.0 and math.isfinite(scale)):
-            scale = 1.0
+        scale = _yardstick(_unscaled_objective(completing, h, k, c, beta, b, p, math.inf))
         if math.isinf(terminal):
             return completing, scale
         left = 0.1 if terminal == 0.0 else min(0.1, (0.5 * scale / terminal) ** (1.0 / p))
         return (1.0 - max(left, 1e-9)) * completing, scale
     start = 0.9 * weight  # the caps cannot complete the order
-    scale = _unscaled_objective(start, h, k, c, beta, b, p, terminal)
-    return start, scale if scale > 0.0 and math.isfinite(scale) else 1.0
+    return start, _yardstick(_unscaled_objective(start, h, k, c, beta, b, p, terminal))
+
+
+def _yardstick(cost: float) -> float:
+    """A cost usable as the unit of costs: itself when positive and finite, else 1."""
+    return cost if cost > 0.0 and math.isfinite(cost) else 1.0
 
 
 def _unscaled_objective(
