@@ -4,11 +4,21 @@ The numbers themselves are checked against outside references in test_solve_refe
 """
 
 import math
+import sys
 
 import numpy as np
 import pytest
 
-from tracker import CAPPED_SHORTFALL, OPTIMAL, Problem, ProblemError, solve, solve_batch
+from tracker import (
+    CAPPED_SHORTFALL,
+    OPTIMAL,
+    Problem,
+    ProblemError,
+    SolveError,
+    _kernel,
+    solve,
+    solve_batch,
+)
 
 
 def test_nothing_to_do() -> None:
@@ -165,3 +175,43 @@ def test_long_horizons_complete(bins: int) -> None:
     schedule = solve(problem)
     assert (OPTIMAL, 0.0) == (schedule.status, schedule.shortfall)
     assert schedule.trades.max() <= 3e5 / bins * (1 + 1e-9)
+
+
+def test_iteration_limit_raises_solve_error(monkeypatch: pytest.MonkeyPatch) -> None:
+    """A run that needs more Newton iterations than allowed is an error, never a partial answer."""
+    monkeypatch.setattr(sys.modules["tracker.solve"], "_MAX_ITERATIONS", 2)
+    with pytest.raises(SolveError, match="did not converge in 2 iterations"):
+        solve(
+            Problem(
+                quantity=5e4,
+                bins=20,
+                temporary_impact=1e-3,
+                impact_exponent=0.5,
+                inventory_penalty=1e-6,
+                penalty_exponent=1.5,
+            )
+        )
+
+
+def test_kernel_rejects_vectors_of_the_wrong_kind() -> None:
+    """The compiled kernel refuses integer or mismatched vectors instead of reading past them."""
+    good = np.ones(4)
+    with pytest.raises(ValueError, match="caps must be a contiguous float64 vector"):
+        _kernel.interior_point(
+            good,
+            good,
+            good,
+            np.ones(4, dtype=np.int64),
+            good,
+            np.empty(4),
+            0.5,
+            0.0,
+            1.5,
+            math.inf,
+            1e-10,
+            10,
+        )
+    with pytest.raises(ValueError, match="out must be a contiguous float64 vector"):
+        _kernel.interior_point(
+            good, good, good, good, good, np.empty(3), 0.5, 0.0, 1.5, math.inf, 1e-10, 10
+        )

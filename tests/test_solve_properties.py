@@ -296,8 +296,10 @@ def test_nothing_to_gain_trades_nothing(beta: float) -> None:
     assert 1.0 == pytest.approx(schedule.shortfall, abs=slack)
 
 
-# Batches found by test_solve_batch_equals_solve_one_by_one, where a problem's schedule depended on
-# its neighbours (degenerate problems: idle bins, beta = 0.25, so last bits decide the path).
+# Batches found by test_solve_batch_equals_solve_one_by_one when a batch shared one vectorised
+# Newton system, where a problem's schedule depended on its neighbours (degenerate problems: idle
+# bins, beta = 0.25, so last bits decide the path). Each problem now runs on its own; these stay
+# as regression cases.
 BATCH_CASES = {
     # The first problem took 18 iterations alone and 22 next to the second (trajectories 2e-8 of
     # Q apart): the batch's Newton system fell back to another LAPACK routine for everyone.

@@ -19,18 +19,17 @@ Three paths, chosen per problem:
   ignores the bounds ``0 <= v_n <= u_n``; if its answer breaks one, the general path takes over.
 * **interior_point**: everything else. A primal-dual interior-point method on the inequality
   constraints ``v_n >= 0``, ``v_n <= u_n`` (only where a cap is below ``Q``) and ``q_N >= 0``.
-  Each iteration solves one tridiagonal system with LAPACK's ``dptsv`` (O(N)). A batch of problems
-  is laid end to end as one long tridiagonal system whose blocks do not touch, so the whole batch
-  costs the same numpy calls as one problem, just on longer arrays; a converged problem sits out
-  as an identity block. Problems are grouped by exponents (numpy computes ``v**0.5`` by another
-  route for a scalar exponent than for an array), so a problem gets the same answer, bit for
-  bit, alone or in any batch. Inside, inventories are fractions of ``Q`` and costs are divided
-  by the cost of a schedule that completes the order in proportion to the caps, so tolerances
-  are relative. Steps are accepted when they reduce the KKT residual or satisfy Armijo's
-  condition on the barrier function. The run ends when the duality gap and the dual residual
-  are small; where a trade is pinned at 0 under a term steep there (small beta, p near 1), the
-  dual residual has a floating-point floor (a trade is a difference of numbers near 1), so a gap
-  within the tolerance and a residual that has stopped improving end it too.
+  Each iteration solves one symmetric tridiagonal Newton system in O(N) (``L D L^T``; with
+  pivoting, then a tiny diagonal shift, should a pivot not be positive). Inside, inventories are
+  fractions of ``Q`` and costs are divided by the cost of a schedule that completes the order in
+  proportion to the caps, so tolerances are relative. Steps are accepted when they reduce the KKT
+  residual or satisfy Armijo's condition on the barrier function. The run ends when the duality
+  gap and the dual residual are small; where a trade is pinned at 0 under a term steep there
+  (small beta, p near 1), the dual residual has a floating-point floor (a trade is a difference
+  of numbers near 1), so a gap within the tolerance and a residual that has stopped improving
+  end it too. The iteration is compiled (``tracker/_kernel.c``): at N = 78 it is a few thousand
+  flops, which numpy spent mostly in call overhead; the scaling, the closed forms and the costing
+  of the answer stay here.
 
 Bins whose cap is zero cannot trade: they are taken out before solving (their risk weights are
 folded into the neighbouring inventory they share) and put back as zero trades.
@@ -48,8 +47,8 @@ from typing import Final
 
 import numpy as np
 import numpy.typing as npt
-from scipy.linalg import lapack
 
+from tracker import _kernel
 from tracker.errors import ProblemError, SolveError
 from tracker.problem import FloatArray, Problem
 
@@ -69,7 +68,11 @@ COST_TERMS: Final = (
 TOLERANCE: Final = 1e-10
 
 _MAX_ITERATIONS: Final = 200
-_BOUNDARY_FRACTION: Final = 0.995
+#: What the compiled kernel's negative return codes mean (-1, not converged, is worded in place).
+_KERNEL_FAILURES: Final = {
+    -2: "singular Newton system in the interior-point method",
+    -3: "the interior-point iterate became non-finite",
+}
 
 
 @dataclass(frozen=True, eq=False)
@@ -239,7 +242,7 @@ def solve(problem: Problem, *, tolerance: float = TOLERANCE) -> Schedule:
 
 
 def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) -> list[Schedule]:
-    """Solve many problems at once; the general ones share one vectorised interior-point run.
+    """Solve many problems; each on its own, so its answer never depends on the others.
 
     Args:
         problems: Validated problems, of any sizes.
@@ -252,8 +255,7 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
         ProblemError: A problem is not convex; the message says which one (by position).
         SolveError: The interior-point method did not converge.
     """
-    results: list[Schedule | None] = [None] * len(problems)
-    general: list[tuple[int, _Reduced]] = []
+    schedules: list[Schedule] = []
     for index, problem in enumerate(problems):
         try:
             check_convex(problem)
@@ -265,20 +267,11 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
             ) from exc
         schedule = _closed_form(problem)
         if schedule is None:
-            general.append((index, _reduce(problem)))
-        else:
-            results[index] = schedule
-    # One interior-point run per impact and penalty exponent: numpy takes other code paths for
-    # a scalar exponent than for an array of them, and the last bits would then depend on which
-    # problems share a batch. Grouped, a problem gets the same answer alone or in any batch.
-    groups: dict[tuple[float, float], list[tuple[int, _Reduced]]] = {}
-    for index, reduced in general:
-        groups.setdefault((reduced.beta, reduced.p), []).append((index, reduced))
-    for members in groups.values():
-        solutions, iterations = _interior_point([reduced for _, reduced in members], tolerance)
-        for (index, reduced), x, count in zip(members, solutions, iterations, strict=True):
-            results[index] = _finish(problems[index], reduced.expand(x), "interior_point", count)
-    return [schedule for schedule in results if schedule is not None]
+            reduced = _reduce(problem)
+            x, iterations = _interior_point(reduced, tolerance)
+            schedule = _finish(problem, reduced.expand(x), "interior_point", iterations)
+        schedules.append(schedule)
+    return schedules
 
 
 # --------------------------------------------------------------------------------------------
@@ -529,263 +522,27 @@ def _unscaled_objective(
     return value
 
 
-def _interior_point(
-    problems: Sequence[_Reduced], tolerance: float
-) -> tuple[list[FloatArray], list[int]]:
-    """Primal-dual interior-point method on a batch of reduced problems laid end to end.
-
-    Element ``e`` of the flat arrays is bin ``n`` of its problem and also inventory point
-    ``n + 1`` (the inventory after that bin), so both live in arrays of the same length.
-    Constraints and their multipliers: ``v_n >= 0`` (``lo``), ``v_n <= u_n`` where a cap can bind
-    (``hi``, zero elsewhere), and ``x_N >= 0`` at the last point of a problem that is not forced
-    (``end``, one per such problem). A forced problem's last point ``x_N = 0`` is not a variable:
-    its row of the Newton system is the identity.
-    """
-    sizes = np.array([r.bins for r in problems])
-    offsets = np.concatenate(([0], np.cumsum(sizes)[:-1]))
-    total = int(sizes.sum())
-    count = len(problems)
-    last_idx = offsets + sizes - 1
-    forced = np.array([math.isinf(r.terminal) for r in problems])
-    fixed_idx = last_idx[forced]
-    end_idx = last_idx[~forced]
-    end_problem = np.flatnonzero(~forced)
-
-    def uniform_or_per_element(values: list[float]) -> float | FloatArray:
-        if all(value == values[0] for value in values):
-            return values[0]
-        return np.repeat(np.asarray(values), sizes)
-
-    h = np.concatenate([r.h for r in problems])
-    k = np.concatenate([r.k for r in problems])
-    c = np.concatenate([r.c for r in problems])
-    caps = np.concatenate([r.caps for r in problems])
-    beta = uniform_or_per_element([r.beta for r in problems])
-    p = uniform_or_per_element([r.p for r in problems])
-    b = uniform_or_per_element([r.b for r in problems])
-    k1 = k * (1.0 + beta)
-    k2 = k1 * beta
-    c1 = c * p
-    c2 = c1 * (p - 1.0)
-    p_end = np.array([r.p for r in problems])[end_problem]
-    b_end = np.array([r.b for r in problems])[end_problem]
-    a_end = np.array([r.terminal for r in problems])[end_problem]
-    next_ok = np.ones(max(total - 1, 0))
-    next_ok[last_idx[:-1]] = 0.0  # no coupling across problems
-    capped = np.isfinite(caps)
-    cap_f = capped.astype(np.float64)
-    caps_safe = np.where(capped, caps, 2.0)  # 2 > any trade: keeps 1/(u - v) finite, unused
-    n_constraints = np.add.reduceat(cap_f, offsets) + sizes + (~forced)
-    n_end = np.repeat(n_constraints, sizes)
-
-    def evaluate(x: FloatArray) -> tuple[FloatArray, ...]:
-        """Trades, cap slacks and the objective's derivatives at ``x``."""
-        previous = np.empty_like(x)
-        previous[1:] = x[:-1]
-        previous[offsets] = 1.0
-        v = previous - x
-        v_beta = v**beta
-        d_bin = h + k1 * v_beta - b * v
-        dd_bin = k2 * v_beta / v - b
-        gap_hi = caps_safe - v
-        x_safe = x.copy()
-        x_safe[fixed_idx] = 1.0
-        x_pow = x_safe ** (p - 1.0)
-        d_point = c1 * x_pow
-        dd_point = c2 * x_pow / x_safe
-        x_end = x[end_idx]
-        end_pow = a_end * x_end ** (p_end - 1.0)
-        d_point[end_idx] += p_end * end_pow - b_end * (1.0 - x_end)
-        dd_point[end_idx] += p_end * (p_end - 1.0) * end_pow / x_end + b_end
-        # The objective (up to a constant per problem), for the line search.
-        value = np.add.reduceat(v * (h + k * v_beta - 0.5 * b * v) + c * x_pow * x_safe, offsets)
-        value[end_problem] += end_pow * x_end + 0.5 * b_end * (1.0 - x_end) ** 2
-        return v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point, value
-
-    def barrier(state: tuple[FloatArray, ...], mu: FloatArray) -> FloatArray:
-        """The log-barrier function per problem: objective - mu * sum(log(slack))."""
-        v, gap_hi, x_end = state[:3]
-        logs = np.add.reduceat(np.log(v) + cap_f * np.log(gap_hi), offsets)
-        logs[end_problem] += np.log(x_end)
-        return state[7] - mu * logs
-
-    def gradient(d_bin: FloatArray, d_point: FloatArray, d_end: FloatArray) -> FloatArray:
-        """Gradient in x from derivatives per bin (in v), per point and per free end point."""
-        grad = d_point - d_bin
-        grad[:-1] += d_bin[1:] * next_ok
-        grad[end_idx] -= d_end
-        grad[fixed_idx] = 0.0
-        return grad
-
-    def assess(
-        state: tuple[FloatArray, ...], lo: FloatArray, hi: FloatArray, end: FloatArray
-    ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
-        """The dual residual and, per problem, the sums the merit function needs.
-
-        Returns ``r_dual``, ``sum r_dual^2``, ``sum (lambda g)^2`` and ``sum lambda g`` (the gap),
-        so that the squared KKT residual for any ``mu`` is
-        ``sum r^2 + sum (lambda g)^2 - 2 mu gap + m mu^2`` (see :func:`merit`).
-        """
-        v, gap_hi, x_end, d_bin, _, d_point = state[:6]
-        r_dual = gradient(d_bin - lo + hi, d_point, end)
-        comp = lo * v + hi * gap_hi  # hi is 0 where no cap can bind
-        comp_sq = (lo * v) ** 2 + (hi * gap_hi) ** 2
-        comp_end = end * x_end
-        gap = np.add.reduceat(comp, offsets)
-        gap[end_problem] += comp_end
-        centre = np.add.reduceat(comp_sq, offsets)
-        centre[end_problem] += comp_end * comp_end
-        return r_dual, np.add.reduceat(r_dual * r_dual, offsets), centre, gap
-
-    def merit(sums: tuple[FloatArray, ...], mu: FloatArray) -> FloatArray:
-        """Squared norm, per problem, of the residual of the KKT conditions perturbed by mu."""
-        _, dual_sq, centre, gap = sums
-        value: FloatArray = dual_sq + centre - 2.0 * mu * gap + n_constraints * mu * mu
-        return value
-
-    # Start: the strictly feasible schedule proportional to the caps, multipliers on the
-    # central path for mu = 1/m (the objective is about 1 there by construction).
-    # Each problem's own running sum, not one over the batch: a problem's start must not
-    # depend on its neighbours, even in the last bit.
-    v0 = np.concatenate([r.start for r in problems])
-    x = np.concatenate([1.0 - np.cumsum(r.start) for r in problems])
-    x[fixed_idx] = 0.0
-    mu0 = 1.0 / n_end
-    lo = mu0 / v0
-    hi = cap_f * mu0 / (caps_safe - v0)
-    end = (1.0 / n_constraints[end_problem]) / x[end_idx]
-
-    # Costs are in units of a completing schedule's cost, so these are relative. The duality
-    # gap bounds the suboptimality once the dual residual is small; the residual converges only
-    # as fast as the central path (like sqrt(mu) where a bin's trade is pinned at 0).
-    gap_tolerance = 1e-2 * tolerance
-    dual_tolerance = 1e-3 * math.sqrt(tolerance)
-    done = np.zeros(count, dtype=bool)
-    iterations = np.zeros(count, dtype=int)
-    stalled = np.zeros(count, dtype=bool)
-    best_dual = np.full(count, np.inf)
-    flat = np.zeros(count, dtype=int)
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        state = evaluate(x)
-        sums = assess(state, lo, hi, end)
-        for _ in range(_MAX_ITERATIONS):
-            r_dual, _, _, gap = sums
-            dual_inf = np.maximum.reduceat(np.abs(r_dual), offsets)
-            # Converged: complementarity below its tolerance and the dual residual too, or no
-            # further move possible. The latter happens where a trade or inventory is pinned
-            # at 0 under a term that is steep there (small beta, p near 1): it cannot get below
-            # ~1e-16 in floating point (it is a difference of numbers near 1), so its slope and
-            # the dual residual stay finite while the objective has nothing left to gain.
-            # (Checked against Clarabel in tests/test_solve_references.py.)
-            # The same when the residual has stopped improving for a few iterations.
-            improved = dual_inf < 0.5 * best_dual
-            best_dual = np.where(improved, dual_inf, best_dual)
-            flat = np.where(improved | (gap > gap_tolerance), 0, flat + 1)
-            stalled |= flat >= 5
-            done |= (gap <= gap_tolerance) & (dual_inf <= dual_tolerance)
-            # A stall ends the run once the gap is within the tolerance itself (the objective
-            # is then as accurate as promised; where it is very flat, e.g. cubic impact near a
-            # zero trade, the trades are only accurate to about tolerance^(1/3)).
-            done |= stalled & (gap <= tolerance)
-            if done.all():
-                break
-            iterations += ~done
-            v, gap_hi, x_end, d_bin, dd_bin, d_point, dd_point, _ = state
-            mu = np.maximum(0.1 * gap, 0.1 * gap_tolerance) / n_constraints
-            mu_e = np.repeat(mu, sizes)
-            mu_end = mu[end_problem]
-            # Newton system, tridiagonal in x.
-            w = dd_bin + lo / v + hi / gap_hi
-            rhs = -gradient(d_bin - mu_e / v + cap_f * mu_e / gap_hi, d_point, mu_end / x_end)
-            diag = w + dd_point
-            diag[:-1] += w[1:] * next_ok
-            diag[end_idx] += end / x_end
-            off = -w[1:] * next_ok
-            off[fixed_idx[fixed_idx > 0] - 1] = 0.0
-            diag[fixed_idx] = 1.0
-            if done.any():
-                # Converged problems sit out as identity blocks: their rows may have stopped
-                # being positive definite, and a fallback solve must not touch the others.
-                frozen = np.repeat(done, sizes)
-                diag[frozen] = 1.0
-                rhs[frozen] = 0.0
-                off[frozen[:-1] | frozen[1:]] = 0.0
-            dx = _solve_tridiagonal(diag, off, rhs)
-            dx[fixed_idx] = 0.0
-            d_previous = np.empty_like(dx)
-            d_previous[1:] = dx[:-1]
-            d_previous[offsets] = 0.0
-            dv = d_previous - dx
-            d_lo = mu_e / v - lo - lo * dv / v
-            d_hi = cap_f * (mu_e / gap_hi - hi) + hi * dv / gap_hi
-            dx_end = dx[end_idx]
-            d_end = mu_end / x_end - end - end * dx_end / x_end
-            # Largest step keeping slacks and multipliers positive, per problem.
-            ratio = np.minimum(
-                np.where(dv < 0.0, -v / dv, np.inf), np.where(d_lo < 0.0, -lo / d_lo, np.inf)
-            )
-            if capped.any():
-                ratio = np.minimum(ratio, np.where(capped & (dv > 0.0), gap_hi / dv, np.inf))
-                ratio = np.minimum(ratio, np.where(d_hi < 0.0, -hi / d_hi, np.inf))
-            limit = np.minimum.reduceat(ratio, offsets)
-            limit[end_problem] = np.minimum(
-                limit[end_problem],
-                np.minimum(
-                    np.where(dx_end < 0.0, -x_end / dx_end, np.inf),
-                    np.where(d_end < 0.0, -end / d_end, np.inf),
-                ),
-            )
-            step = np.minimum(1.0, _BOUNDARY_FRACTION * limit)
-            step[done] = 0.0
-            old = merit(sums, mu)
-            armijo: tuple[FloatArray, FloatArray] | None = None  # computed when first needed
-            # Backtrack per problem until the step reduces the residual norm or satisfies
-            # Armijo's condition on the barrier function (either is progress for a convex
-            # problem; the second keeps going where the residual norm is a poor guide).
-            for _ in range(60):
-                step_e = np.repeat(step, sizes)
-                x_new = x + step_e * dx
-                lo_new = lo + step_e * d_lo
-                hi_new = hi + step_e * d_hi
-                end_new = end + step[end_problem] * d_end
-                state_new = evaluate(x_new)
-                sums_new = assess(state_new, lo_new, hi_new, end_new)
-                new = merit(sums_new, mu)
-                ok = (new <= (1.0 - 0.01 * step) ** 2 * old) | done
-                if ok.all():
-                    break
-                if armijo is None:
-                    old_barrier = barrier(state, mu)
-                    slope = -np.add.reduceat(rhs * dx, offsets)  # of the barrier along dx
-                    armijo = (old_barrier + 1e-13 * np.abs(old_barrier), 1e-4 * slope)
-                ok |= barrier(state_new, mu) <= armijo[0] + step * armijo[1]
-                if ok.all():
-                    break
-                step = np.where(ok, step, 0.5 * step)
-            moved = np.maximum.reduceat(np.abs(x_new - x), offsets)
-            stalled = (moved <= 1e-14) | (step < 1e-6)
-            x, lo, hi, end, state, sums = x_new, lo_new, hi_new, end_new, state_new, sums_new
-        else:
-            raise SolveError(
-                f"the interior-point method did not converge in {_MAX_ITERATIONS} "
-                f"iterations for {int((~done).sum())} of {count} problems"
-            )
-    x[fixed_idx] = 0.0
-    solutions = [x[start : start + size] for start, size in zip(offsets, sizes, strict=True)]
-    return solutions, iterations.tolist()
-
-
-def _solve_tridiagonal(diag: FloatArray, off: FloatArray, rhs: FloatArray) -> FloatArray:
-    """Solve the symmetric tridiagonal system (diagonal ``diag``, off-diagonal ``off``)."""
-    if diag.size == 1:
-        return rhs / diag
-    _, _, solution, info = lapack.dptsv(diag, off, rhs[:, None])
-    if info != 0:  # not positive definite in floating point: pivot, then regularise
-        _, _, _, solution, info = lapack.dgtsv(off, diag, off, rhs[:, None])
-        if info != 0:  # each row's own shift, so that problems in a batch stay independent
-            shifted = diag + 1e-12 * np.abs(diag) + 1e-300
-            _, _, _, solution, info = lapack.dgtsv(off, shifted, off, rhs[:, None])
-        if info != 0:
-            raise SolveError(f"singular Newton system (LAPACK info {info})")
-    result: FloatArray = solution[:, 0]
-    return result
+def _interior_point(reduced: _Reduced, tolerance: float) -> tuple[FloatArray, int]:
+    """Run the compiled interior-point method; the optimal inventories and the iteration count."""
+    x = np.empty(reduced.bins)
+    code = _kernel.interior_point(
+        reduced.h,
+        reduced.k,
+        reduced.c,
+        reduced.caps,
+        reduced.start,
+        x,
+        reduced.beta,
+        reduced.b,
+        reduced.p,
+        reduced.terminal,
+        tolerance,
+        _MAX_ITERATIONS,
+    )
+    if code == -1:
+        raise SolveError(
+            f"the interior-point method did not converge in {_MAX_ITERATIONS} iterations"
+        )
+    if code < 0:
+        raise SolveError(_KERNEL_FAILURES.get(code, f"interior-point kernel failed (code {code})"))
+    return x, code

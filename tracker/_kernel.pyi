@@ -1,0 +1,22 @@
+"""Types of the compiled inner loop of :mod:`tracker.solve` (source: ``tracker/_kernel.c``)."""
+
+import numpy as np
+import numpy.typing as npt
+
+_Vector = npt.NDArray[np.float64]
+
+def interior_point(
+    h: _Vector,
+    k: _Vector,
+    c: _Vector,
+    caps: _Vector,
+    start: _Vector,
+    out: _Vector,
+    beta: float,
+    b: float,
+    p: float,
+    terminal: float,
+    tolerance: float,
+    max_iterations: int,
+    /,
+) -> int: ...
