@@ -198,20 +198,12 @@ def test_kernel_rejects_vectors_of_the_wrong_kind() -> None:
     good = np.ones(4)
     with pytest.raises(ValueError, match="caps must be a contiguous float64 vector"):
         _kernel.interior_point(
-            good,
-            good,
-            good,
-            np.ones(4, dtype=np.int64),
-            good,
-            np.empty(4),
-            0.5,
-            0.0,
-            1.5,
-            math.inf,
-            1e-10,
-            10,
-        )
+            good, good, good, np.ones(4, dtype=np.int64), np.empty(4), 1e4, 0.5, 0.0, 1.5,
+            math.inf, 1e-10, 10,
+        )  # fmt: skip
     with pytest.raises(ValueError, match="out must be a contiguous float64 vector"):
         _kernel.interior_point(
-            good, good, good, good, good, np.empty(3), 0.5, 0.0, 1.5, math.inf, 1e-10, 10
+            good, good, good, good, np.empty(3), 1e4, 0.5, 0.0, 1.5, math.inf, 1e-10, 10
         )
+    with pytest.raises(ValueError, match="not C-contiguous"):
+        _kernel.riccati(good, good[::2], good, np.empty(4), 1.0, 0.0, False, 1e4)

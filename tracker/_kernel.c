@@ -8,7 +8,7 @@
  * checking the answer and costing it) stays in Python, in tracker/solve.py, whose docstring
  * describes the method; this file is only its inner loop.
  *
- * The problem, in the solver's scaled units (inventories as fractions of the quantity, costs over
+ * The problem, in the method's scaled units (inventories as fractions of the quantity, costs over
  * a yardstick cost), with x_j the inventory after bin j (j = 0 .. n-1), x_{-1} = 1 and
  * v_j = x_{j-1} - x_j:
  *
@@ -23,14 +23,20 @@
  * multipliers positive (times 0.995) and backtracks until the step reduces the norm of the
  * perturbed KKT residual or satisfies Armijo's condition on the log-barrier function.
  *
+ * The module also holds the backward Riccati recursion of the linear-quadratic case (riccati(),
+ * near the end), a plain loop that Python spent about a microsecond per bin on.
+ *
  * Entry point (called from tracker/solve.py only; tracker/_kernel.pyi types it):
  *
- *   interior_point(h, k, c, caps, start, out, beta, b, p, terminal, tolerance, max_iterations)
+ *   interior_point(h, k, c, caps, out, quantity, beta, b, p, terminal, tolerance, max_iterations)
  *
- * h, k, c, caps, start: contiguous float64 buffers of length n (start: strictly feasible trades);
- * out: writable float64 buffer of length n that receives x. Returns the number of Newton
- * iterations (>= 0), or -1 when the method did not converge within max_iterations, -2 when a
- * Newton system was singular, -3 when the iterate became non-finite.
+ * h, k, c, caps: the problem's fixed cost, temporary impact, risk weight and caps (shares, inf
+ * where none) per bin, in the problem's own units, for bins that can trade (every cap > 0);
+ * contiguous float64 buffers of length n. out: writable float64 buffer of length n that receives
+ * the optimal trades in shares. The function scales the problem (see starting_point()), runs the
+ * method and converts back. Returns the number of Newton iterations (>= 0), or -1 when the method
+ * did not converge within max_iterations, -2 when a Newton system was singular, -3 when the
+ * iterate became non-finite.
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
@@ -483,58 +489,148 @@ static int get_vector(PyObject *object, Py_buffer *view, Py_ssize_t n, int writa
     return 0;
 }
 
+/* The objective of trades v (fractions of Q) with coefficients in units of Q, before scaling. */
+static double unscaled_objective(Py_ssize_t n, const double *v, const double *h, const double *k,
+                                 const double *c, double beta, double b, double p,
+                                 double terminal)
+{
+    double value = 0.0, executed = 0.0, squares = 0.0;
+    for (Py_ssize_t j = 0; j < n; j++) {
+        executed += v[j];
+        const double x = fmax(1.0 - executed, 0.0);
+        value += h[j] * v[j] + k[j] * power(v[j], 1.0 + beta) + c[j] * power(x, p);
+        squares += v[j] * v[j];
+    }
+    const double x_end = fmax(1.0 - executed, 0.0);
+    value += 0.5 * b * ((1.0 - x_end) * (1.0 - x_end) - squares);
+    if (isfinite(terminal)) {
+        value += terminal * power(x_end, p);
+    }
+    return value;
+}
+
+/* A cost usable as the unit of costs: itself when positive and finite, else 1. */
+static double yardstick(double cost)
+{
+    return cost > 0.0 && isfinite(cost) ? cost : 1.0;
+}
+
+/*
+ * A strictly feasible starting schedule (fractions of Q, into start) and the cost scale.
+ *
+ * The start trades in proportion to the caps (evenly without caps). The scale is the cost of
+ * that schedule when it completes the order: a yardstick that does not depend on how large the
+ * terminal penalty is. Under a finite terminal penalty the start keeps a small remainder, small
+ * enough that its terminal cost does not dwarf the yardstick. When the caps cannot complete the
+ * order, the start trades 90 % of every cap.
+ */
+static double starting_point(Py_ssize_t n, const double *caps, const double *h, const double *k,
+                             const double *c, double beta, double b, double p, double terminal,
+                             double *start)
+{
+    double total = 0.0, cap_sum = 0.0;
+    for (Py_ssize_t j = 0; j < n; j++) {
+        start[j] = fmin(caps[j], 1.0);
+        total += start[j];
+        cap_sum += caps[j];
+    }
+    if (!(cap_sum > 1.0)) { /* the caps cannot complete the order */
+        for (Py_ssize_t j = 0; j < n; j++) {
+            start[j] *= 0.9;
+        }
+        return yardstick(unscaled_objective(n, start, h, k, c, beta, b, p, terminal));
+    }
+    for (Py_ssize_t j = 0; j < n; j++) {
+        start[j] /= total;
+    }
+    const double scale = yardstick(unscaled_objective(n, start, h, k, c, beta, b, p, INFINITY));
+    if (isfinite(terminal)) {
+        const double left = terminal == 0.0 ? 0.1 : fmin(0.1, pow(0.5 * scale / terminal, 1.0 / p));
+        const double keep = 1.0 - fmax(left, 1e-9);
+        for (Py_ssize_t j = 0; j < n; j++) {
+            start[j] *= keep;
+        }
+    }
+    return scale;
+}
+
+/* Vectors of n doubles interior_point() needs besides run()'s: 6 coefficient vectors, the scaled
+ * h, k, c and caps, the start and the iterate. */
+#define OWN_VECTORS (6 + 4 + 2)
+
 static PyObject *interior_point(PyObject *self, PyObject *args)
 {
     (void)self;
-    PyObject *objects[6];
-    double beta, b, p, terminal, tolerance;
+    PyObject *objects[5];
+    double quantity, beta, b, p, terminal, tolerance;
     int max_iterations;
-    if (!PyArg_ParseTuple(args, "OOOOOOdddddi:interior_point", &objects[0], &objects[1],
-                          &objects[2], &objects[3], &objects[4], &objects[5], &beta, &b, &p,
+    if (!PyArg_ParseTuple(args, "OOOOOddddddi:interior_point", &objects[0], &objects[1],
+                          &objects[2], &objects[3], &objects[4], &quantity, &beta, &b, &p,
                           &terminal, &tolerance, &max_iterations)) {
         return NULL;
     }
-    static const char *names[6] = {"h", "k", "c", "caps", "start", "out"};
-    Py_buffer views[6];
+    static const char *names[5] = {"h", "k", "c", "caps", "out"};
+    Py_buffer views[5];
     int got = 0;
     Py_ssize_t n = -1;
-    for (; got < 6; got++) {
-        if (get_vector(objects[got], &views[got], n, got == 5, names[got]) != 0) {
+    for (; got < 5; got++) {
+        if (get_vector(objects[got], &views[got], n, got == 4, names[got]) != 0) {
             break;
         }
         n = views[got].shape[0];
     }
     PyObject *result = NULL;
-    if (got == 6 && n < 1) {
-        PyErr_SetString(PyExc_ValueError, "need at least one bin");
-    } else if (got == 6) {
-        /* 6 coefficient vectors, then run()'s own */
-        double *mem = malloc((size_t)n * (6 + RUN_VECTORS) * sizeof(double));
+    if (got == 5 && (n < 1 || !(quantity > 0.0))) {
+        PyErr_SetString(PyExc_ValueError, "need at least one bin and a positive quantity");
+    } else if (got == 5) {
+        double *mem = malloc((size_t)n * (OWN_VECTORS + RUN_VECTORS) * sizeof(double));
         if (mem == NULL) {
             PyErr_NoMemory();
         } else {
+            double *cursor = mem;
+            double *h = take(&cursor, n), *k = take(&cursor, n), *c = take(&cursor, n);
+            double *caps = take(&cursor, n), *start = take(&cursor, n), *x = take(&cursor, n);
             Problem P;
+            P.k1 = take(&cursor, n);
+            P.k2 = take(&cursor, n);
+            P.c1 = take(&cursor, n);
+            P.c2 = take(&cursor, n);
+            P.cap_f = take(&cursor, n);
+            P.caps_safe = take(&cursor, n);
+            /* Units: inventories as fractions of Q; a cap of Q or more never binds. */
+            const double *h_in = views[0].buf, *k_in = views[1].buf, *c_in = views[2].buf;
+            const double *caps_in = views[3].buf;
+            const double k_unit = pow(quantity, 1.0 + beta), c_unit = pow(quantity, p);
+            for (Py_ssize_t j = 0; j < n; j++) {
+                h[j] = h_in[j] * quantity;
+                k[j] = k_in[j] * k_unit;
+                c[j] = c_in[j] * c_unit;
+                caps[j] = caps_in[j] / quantity;
+                if (caps[j] >= 1.0) {
+                    caps[j] = INFINITY;
+                }
+            }
+            b *= quantity * quantity;
+            terminal *= c_unit;
+            /* Costs in units of the starting schedule's cost. */
+            const double scale = starting_point(n, caps, h, k, c, beta, b, p, terminal, start);
             P.n = n;
             P.forced = isinf(terminal);
             P.beta = beta;
-            P.b = b;
+            P.b = b / scale;
             P.p = p;
-            P.terminal = terminal;
-            P.h = views[0].buf;
-            P.k = views[1].buf;
-            P.c = views[2].buf;
-            const double *caps = views[3].buf;
-            P.k1 = mem;
-            P.k2 = mem + n;
-            P.c1 = mem + 2 * n;
-            P.c2 = mem + 3 * n;
-            P.cap_f = mem + 4 * n;
-            P.caps_safe = mem + 5 * n;
+            P.terminal = terminal / scale;
+            P.h = h;
+            P.k = k;
+            P.c = c;
             double m = (double)n + (P.forced ? 0.0 : 1.0);
             for (Py_ssize_t j = 0; j < n; j++) {
-                P.k1[j] = P.k[j] * (1.0 + beta);
+                h[j] /= scale;
+                k[j] /= scale;
+                c[j] /= scale;
+                P.k1[j] = k[j] * (1.0 + beta);
                 P.k2[j] = P.k1[j] * beta;
-                P.c1[j] = P.c[j] * p;
+                P.c1[j] = c[j] * p;
                 P.c2[j] = P.c1[j] * (p - 1.0);
                 const int capped = isfinite(caps[j]);
                 P.cap_f[j] = capped ? 1.0 : 0.0;
@@ -544,10 +640,93 @@ static PyObject *interior_point(PyObject *self, PyObject *args)
             P.m = m;
             int code;
             Py_BEGIN_ALLOW_THREADS
-            code = run(&P, views[4].buf, views[5].buf, tolerance, max_iterations, mem + 6 * n);
+            code = run(&P, start, x, tolerance, max_iterations, cursor);
             Py_END_ALLOW_THREADS
+            if (code >= 0) { /* trades in shares from the inventories */
+                double *trades = views[4].buf;
+                for (Py_ssize_t j = 0; j < n; j++) {
+                    const double previous = j == 0 ? 1.0 : x[j - 1];
+                    trades[j] = fmax(previous - x[j], 0.0) * quantity;
+                }
+            }
             free(mem);
             result = PyLong_FromLong(code);
+        }
+    }
+    for (int i = 0; i < got; i++) {
+        PyBuffer_Release(&views[i]);
+    }
+    return result;
+}
+
+/*
+ * riccati(h, kappa, c, out, a, d, forced, quantity) -> final inventory
+ *
+ * The linear-quadratic recursion of tracker.solve._riccati (its docstring derives it): stage n
+ * costs h_n v + kappa_n v^2 + c_n q_{n+1}^2, the cost-to-go after the last free stage is
+ * a q^2 + d q. Writes the N trades into out and returns q_N (0 when forced: the last bin then
+ * takes what is left). Returns NaN when some kappa_n <= 0 (not strictly convex: the caller
+ * hands the problem to the general path).
+ */
+static PyObject *riccati(PyObject *self, PyObject *args)
+{
+    (void)self;
+    PyObject *objects[4];
+    double a, d, quantity;
+    int forced;
+    if (!PyArg_ParseTuple(args, "OOOOddpd:riccati", &objects[0], &objects[1], &objects[2],
+                          &objects[3], &a, &d, &forced, &quantity)) {
+        return NULL;
+    }
+    static const char *names[4] = {"h", "kappa", "c", "out"};
+    Py_buffer views[4];
+    int got = 0;
+    Py_ssize_t n = -1;
+    for (; got < 4; got++) {
+        if (get_vector(objects[got], &views[got], n, got == 3, names[got]) != 0) {
+            break;
+        }
+        n = views[got].shape[0];
+    }
+    PyObject *result = NULL;
+    if (got == 4 && n < 1) {
+        PyErr_SetString(PyExc_ValueError, "need at least one bin");
+    } else if (got == 4) {
+        const double *h = views[0].buf, *kappa = views[1].buf, *c = views[2].buf;
+        double *trades = views[3].buf; /* holds the gains until the forward pass */
+        double *offset = malloc((size_t)n * sizeof(double));
+        if (offset == NULL) {
+            PyErr_NoMemory();
+        } else {
+            double q = NAN;
+            int convex = 1;
+            for (Py_ssize_t j = 0; j < n; j++) {
+                convex = convex && kappa[j] > 0.0;
+            }
+            if (convex) {
+                const Py_ssize_t last = forced ? n - 1 : n;
+                /* Backward pass: q_{n+1} = gain_n q_n + offset_n. */
+                for (Py_ssize_t j = last - 1; j >= 0; j--) {
+                    const double s = kappa[j] + c[j] + a;
+                    const double r = h[j] - d;
+                    trades[j] = kappa[j] / s;
+                    offset[j] = 0.5 * r / s;
+                    a = kappa[j] - kappa[j] * kappa[j] / s;
+                    d = h[j] - kappa[j] * r / s;
+                }
+                q = quantity;
+                for (Py_ssize_t j = 0; j < last; j++) {
+                    const double q_next = trades[j] * q + offset[j];
+                    trades[j] = q - q_next;
+                    q = q_next;
+                }
+                if (forced) {
+                    trades[n - 1] = q;
+                    q = 0.0;
+                }
+            }
+            free(offset);
+            result = PyFloat_FromDouble(q);
         }
     }
     for (int i = 0; i < got; i++) {
@@ -559,6 +738,8 @@ static PyObject *interior_point(PyObject *self, PyObject *args)
 static PyMethodDef methods[] = {
     {"interior_point", interior_point, METH_VARARGS,
      "Run the interior-point method on one scaled problem (see tracker/solve.py)."},
+    {"riccati", riccati, METH_VARARGS,
+     "The linear-quadratic recursion of tracker.solve._riccati; returns the final inventory."},
     {NULL, NULL, 0, NULL},
 };
 

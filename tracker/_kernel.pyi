@@ -10,8 +10,8 @@ def interior_point(
     k: _Vector,
     c: _Vector,
     caps: _Vector,
-    start: _Vector,
     out: _Vector,
+    quantity: float,
     beta: float,
     b: float,
     p: float,
@@ -20,3 +20,14 @@ def interior_point(
     max_iterations: int,
     /,
 ) -> int: ...
+def riccati(
+    h: _Vector,
+    kappa: _Vector,
+    c: _Vector,
+    out: _Vector,
+    a: float,
+    d: float,
+    forced: bool,
+    quantity: float,
+    /,
+) -> float: ...

@@ -27,9 +27,10 @@ Three paths, chosen per problem:
   gap and the dual residual are small; where a trade is pinned at 0 under a term steep there
   (small beta, p near 1), the dual residual has a floating-point floor (a trade is a difference
   of numbers near 1), so a gap within the tolerance and a residual that has stopped improving
-  end it too. The iteration is compiled (``tracker/_kernel.c``): at N = 78 it is a few thousand
-  flops, which numpy spent mostly in call overhead; the scaling, the closed forms and the costing
-  of the answer stay here.
+  end it too. The method, with its scaling and starting point, is compiled
+  (``tracker/_kernel.c``, whose comments describe it in full): at N = 78 an iteration is a few
+  thousand flops, which numpy spent mostly in call overhead. The recursion of the riccati path
+  is compiled there too; the choice of path and the costing of the answer stay here.
 
 Bins whose cap is zero cannot trade: they are taken out before solving (their risk weights are
 folded into the neighbouring inventory they share) and put back as zero trades.
@@ -46,7 +47,6 @@ from dataclasses import dataclass
 from typing import Final
 
 import numpy as np
-import numpy.typing as npt
 
 from tracker import _kernel
 from tracker.errors import ProblemError, SolveError
@@ -198,8 +198,10 @@ def check_convex(problem: Problem) -> None:
     if b == 0.0 or problem.quantity == 0.0:
         return
     beta = problem.impact_exponent
-    reach = np.minimum(problem.cap_array, problem.quantity)
     k = problem.temporary_impact
+    if beta == 1.0 and 2.0 * float(k.min()) >= b:
+        return  # the usual case, settled in one pass: every bin's curvature 2k covers b
+    reach = np.minimum(problem.cap_array, problem.quantity)
     trading = reach > 0
     if beta == 1.0:
         bound = 2.0 * k
@@ -267,9 +269,8 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
             ) from exc
         schedule = _closed_form(problem)
         if schedule is None:
-            reduced = _reduce(problem)
-            x, iterations = _interior_point(reduced, tolerance)
-            schedule = _finish(problem, reduced.expand(x), "interior_point", iterations)
+            trades, iterations = _interior_point(problem, tolerance)
+            schedule = _finish(problem, trades, "interior_point", iterations)
         schedules.append(schedule)
     return schedules
 
@@ -317,11 +318,11 @@ def _closed_form(problem: Problem) -> Schedule | None:
     quantity = problem.quantity
     if quantity == 0.0:
         return _finish(problem, np.zeros(problem.bins), "trivial", 0)
-    caps = problem.cap_array
-    tradeable = np.flatnonzero(caps > 0.0)
+    caps = problem.caps
+    tradeable = np.arange(problem.bins) if caps is None else np.flatnonzero(caps > 0.0)
     if tradeable.size == 0:
         return _finish(problem, np.zeros(problem.bins), "at_caps", 0)
-    if problem.forced and float(caps.sum()) <= quantity:
+    if problem.forced and caps is not None and float(caps.sum()) <= quantity:
         # Completion is required and the caps allow at most the quantity: trade every cap.
         return _finish(problem, caps.copy(), "at_caps", 0)
     if problem.forced and tradeable.size == 1:
@@ -342,43 +343,21 @@ def _riccati(problem: Problem) -> Schedule | None:
     ``q' = (2 kappa q + h - d) / (2 s)`` with ``s = kappa + c + a``, and
     ``a_n = kappa - kappa^2 / s``, ``d_n = h - kappa (h - d) / s``.
     """
-    n_bins = problem.bins
     quantity = problem.quantity
     half_b = 0.5 * problem.permanent_impact
-    h = problem.fixed_cost.tolist()
-    kappa = [k - half_b for k in problem.temporary_impact.tolist()]
-    if min(kappa) <= 0.0:
-        return None  # linear in some bin: not strictly convex, let the general path decide
-    c = problem.inventory_penalty.tolist()
-    # Backward pass: slope and offset of q_{n+1} as a function of q_n.
-    gain = [0.0] * n_bins
-    offset = [0.0] * n_bins
+    kappa = problem.temporary_impact - half_b if half_b else problem.temporary_impact
     if problem.forced:
-        a = kappa[-1]
-        d = h[-1]
-        last = n_bins - 1  # the last bin trades whatever is left: q_N = 0
+        # The last bin trades whatever is left (q_N = 0): its cost is the cost-to-go there.
+        a, d = float(kappa[-1]), float(problem.fixed_cost[-1])
     else:
         a = problem.terminal_penalty + half_b
         d = -2.0 * half_b * quantity
-        last = n_bins
-    for n in range(last - 1, -1, -1):
-        kap = kappa[n]
-        s = kap + c[n] + a
-        r = h[n] - d
-        gain[n] = kap / s
-        offset[n] = 0.5 * r / s
-        a = kap - kap * kap / s
-        d = h[n] - kap * r / s
-    trades = [0.0] * n_bins
-    q = quantity
-    for n in range(last):
-        q_next = gain[n] * q + offset[n]
-        trades[n] = q - q_next
-        q = q_next
-    if last < n_bins:
-        trades[-1] = q
-        q = 0.0
-    v = np.array(trades)
+    v = np.empty(problem.bins)
+    q = _kernel.riccati(
+        problem.fixed_cost, kappa, problem.inventory_penalty, v, a, d, problem.forced, quantity
+    )
+    if math.isnan(q):
+        return None  # linear in some bin: not strictly convex, let the general path decide
     if v.min() < 0.0 or q < -1e-12 * quantity:
         return None  # the bound v >= 0 or q_N >= 0 binds
     if problem.caps is not None and (v > problem.caps).any():
@@ -390,152 +369,37 @@ def _riccati(problem: Problem) -> Schedule | None:
 # The general path
 
 
-@dataclass(frozen=True, eq=False)
-class _Reduced:
-    """A problem in the interior-point method's units, with untradeable bins taken out.
+def _interior_point(problem: Problem, tolerance: float) -> tuple[FloatArray, int]:
+    """Optimal trades (shares) by the compiled interior-point method, and its iteration count.
 
-    Inventories are fractions of ``Q``; costs are divided by ``scale``. Bin ``j`` of the reduced
-    problem is bin ``active[j]`` of the original one.
+    Bins whose cap is zero cannot trade: they are taken out first and put back as zero trades.
+    The inventory after such a bin equals the inventory after the last bin before it that
+    trades, so its risk weight is folded into that bin's (or dropped where it is Q itself, a
+    constant).
     """
-
-    bins: int
-    active: npt.NDArray[np.intp]
-    original_bins: int
-    quantity: float
-    h: FloatArray
-    k: FloatArray
-    c: FloatArray
-    caps: FloatArray  # inf where no cap can bind
-    beta: float
-    b: float
-    p: float
-    terminal: float  # inf when forced
-    scale: float
-    start: FloatArray  # strictly feasible trades (fractions of Q) to start from
-
-    def expand(self, x: FloatArray) -> FloatArray:
-        """Original-size trades (shares) from the reduced inventories ``x`` (fractions)."""
-        previous = np.concatenate(([1.0], x[:-1]))
-        v = np.maximum(previous - x, 0.0) * self.quantity
-        trades = np.zeros(self.original_bins)
-        trades[self.active] = v
-        return trades
-
-
-def _reduce(problem: Problem) -> _Reduced:
-    """Scale the problem and take out the bins that cannot trade."""
-    quantity = problem.quantity
-    beta = problem.impact_exponent
-    p = problem.penalty_exponent
-    h = problem.fixed_cost * quantity
-    k = problem.temporary_impact * quantity ** (1.0 + beta)
-    c = problem.inventory_penalty * quantity**p
-    b = problem.permanent_impact * quantity**2
-    terminal = problem.terminal_penalty * quantity**p
-    if problem.caps is None:
-        active = np.arange(problem.bins)
-        caps = np.full(problem.bins, np.inf)
-    else:
-        caps = problem.caps / quantity
+    h = problem.fixed_cost
+    k = problem.temporary_impact
+    c = problem.inventory_penalty
+    caps = problem.cap_array
+    active = None
+    if problem.caps is not None and not (caps > 0.0).all():
         active = np.flatnonzero(caps > 0.0)
-        if active.size < problem.bins:
-            # Inventory after original bin n equals the inventory after the last active bin
-            # <= n: fold the risk weights of the skipped inventories into that one (or drop
-            # them where it is Q itself, a constant).
-            owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
-            c_reduced = np.zeros(active.size)
-            np.add.at(c_reduced, owner[owner >= 0], c[owner >= 0])
-            h, k, c, caps = h[active], k[active], c_reduced, caps[active]
-        caps[caps >= 1.0] = np.inf  # a cap of Q or more never binds
-    start, scale = _start(caps, h, k, c, beta, b, p, terminal)
-    return _Reduced(
-        bins=int(active.size),
-        active=active,
-        original_bins=problem.bins,
-        quantity=quantity,
-        h=h / scale,
-        k=k / scale,
-        c=c / scale,
-        caps=caps,
-        beta=beta,
-        b=b / scale,
-        p=p,
-        terminal=terminal / scale,
-        scale=scale,
-        start=start,
-    )
-
-
-def _start(
-    caps: FloatArray,
-    h: FloatArray,
-    k: FloatArray,
-    c: FloatArray,
-    beta: float,
-    b: float,
-    p: float,
-    terminal: float,
-) -> tuple[FloatArray, float]:
-    """A strictly feasible starting schedule (fractions of Q) and the cost scale.
-
-    The start trades in proportion to the caps (evenly without caps). The scale is the cost of
-    that schedule when it completes the order: a yardstick that does not depend on how large the
-    terminal penalty is. Under a finite terminal penalty the start keeps a small remainder, small
-    enough that its terminal cost does not dwarf the yardstick.
-    """
-    weight = np.minimum(caps, 1.0)
-    total = float(weight.sum())
-    if float(caps.sum()) > 1.0:  # room to complete strictly inside the caps (inf: no cap)
-        completing = weight / total
-        scale = _yardstick(_unscaled_objective(completing, h, k, c, beta, b, p, math.inf))
-        if math.isinf(terminal):
-            return completing, scale
-        left = 0.1 if terminal == 0.0 else min(0.1, (0.5 * scale / terminal) ** (1.0 / p))
-        return (1.0 - max(left, 1e-9)) * completing, scale
-    start = 0.9 * weight  # the caps cannot complete the order
-    return start, _yardstick(_unscaled_objective(start, h, k, c, beta, b, p, terminal))
-
-
-def _yardstick(cost: float) -> float:
-    """A cost usable as the unit of costs: itself when positive and finite, else 1."""
-    return cost if cost > 0.0 and math.isfinite(cost) else 1.0
-
-
-def _unscaled_objective(
-    v: FloatArray,
-    h: FloatArray,
-    k: FloatArray,
-    c: FloatArray,
-    beta: float,
-    b: float,
-    p: float,
-    terminal: float,
-) -> float:
-    """The objective of trades ``v`` (fractions of Q) in the reduced problem's cost units."""
-    x = 1.0 - np.cumsum(v)
-    x_end = max(float(x[-1]), 0.0)
-    executed = 1.0 - x_end
-    value = float(h @ v + k @ v ** (1.0 + beta) + c @ np.maximum(x, 0.0) ** p)
-    value += 0.5 * b * (executed * executed - float(v @ v))
-    if math.isfinite(terminal):
-        value += terminal * x_end**p
-    return value
-
-
-def _interior_point(reduced: _Reduced, tolerance: float) -> tuple[FloatArray, int]:
-    """Run the compiled interior-point method; the optimal inventories and the iteration count."""
-    x = np.empty(reduced.bins)
+        owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
+        folded = np.zeros(active.size)
+        np.add.at(folded, owner[owner >= 0], c[owner >= 0])
+        h, k, c, caps = h[active], k[active], folded, caps[active]
+    trades = np.empty(h.size)
     code = _kernel.interior_point(
-        reduced.h,
-        reduced.k,
-        reduced.c,
-        reduced.caps,
-        reduced.start,
-        x,
-        reduced.beta,
-        reduced.b,
-        reduced.p,
-        reduced.terminal,
+        np.ascontiguousarray(h, dtype=np.float64),
+        np.ascontiguousarray(k, dtype=np.float64),
+        np.ascontiguousarray(c, dtype=np.float64),
+        np.ascontiguousarray(caps, dtype=np.float64),
+        trades,
+        problem.quantity,
+        problem.impact_exponent,
+        problem.permanent_impact,
+        problem.penalty_exponent,
+        problem.terminal_penalty,
         tolerance,
         _MAX_ITERATIONS,
     )
@@ -545,4 +409,8 @@ def _interior_point(reduced: _Reduced, tolerance: float) -> tuple[FloatArray, in
         )
     if code < 0:
         raise SolveError(_KERNEL_FAILURES.get(code, f"interior-point kernel failed (code {code})"))
-    return x, code
+    if active is not None:
+        full = np.zeros(problem.bins)
+        full[active] = trades
+        trades = full
+    return trades, code
