@@ -288,10 +288,9 @@ def _finish(problem: Problem, trades: FloatArray, method: str, iterations: int) 
     if quantity > 0.0 and abs(left) <= 1e-9 * quantity and (problem.forced or left < 0.0):
         # Rounding only: the last bin that trades takes exactly what is left, so a completed
         # order ends at exactly zero and never below.
-        last = int(np.flatnonzero(trades)[-1])
+        last = int(trades.nonzero()[0][-1])
         trades[last] = max(trades[last] + left, 0.0)
-        executed = np.cumsum(trades)
-        executed[last:] = quantity
+        executed[last:] = quantity  # the bins before it are unchanged
     trajectory = np.empty(problem.bins + 1)
     trajectory[0] = quantity
     np.subtract(quantity, executed, out=trajectory[1:])
