@@ -187,6 +187,22 @@ def test_objective_is_the_value_of_the_trades(problem: Problem) -> None:
     assert expected == pytest.approx(schedule.objective, rel=1e-12, abs=1e-12)
 
 
+@PROPERTY_SETTINGS
+@given(problems(), st.data())
+def test_objective_value_follows_the_formula(problem: Problem, data: st.DataObject) -> None:
+    """objective_value of any schedule is the canonical formula evaluated term by term."""
+    weights = np.array(data.draw(st.lists(st.floats(0.0, 1.0), min_size=problem.bins,
+                                          max_size=problem.bins)))  # fmt: skip
+    assume(weights.sum() > 0.0)
+    # The formula does not price forced completion, so such a schedule completes the order.
+    done = 1.0 if problem.forced else data.draw(st.floats(0.0, 1.0))
+    trades = problem.quantity * done * weights / weights.sum()
+    # The definition (tracker/problem.py) written out with plain numpy in test_solve_references.
+    expected = reference_objective(problem, trades)
+    actual = objective_value(problem, trades)
+    assert expected == pytest.approx(actual, rel=1e-10, abs=1e-9)
+
+
 def _same(expected: Schedule, actual: Schedule, problem: Problem) -> dict[str, Any]:
     """The fields of two schedules that differ beyond rounding (empty when they agree)."""
     diff: dict[str, Any] = {}

@@ -23,8 +23,9 @@
  * multipliers positive (times 0.995) and backtracks until the step reduces the norm of the
  * perturbed KKT residual or satisfies Armijo's condition on the log-barrier function.
  *
- * The module also holds the backward Riccati recursion of the linear-quadratic case (riccati(),
- * near the end), a plain loop that Python spent about a microsecond per bin on.
+ * The module also holds the backward Riccati recursion of the linear-quadratic case (riccati())
+ * and the costing of a final schedule (costs()): plain loops over the bins that cost Python and
+ * numpy far more in call overhead than in arithmetic, and ran for every order of every bin close.
  *
  * Entry point (called from tracker/solve.py only; tracker/_kernel.pyi types it):
  *
@@ -735,11 +736,103 @@ static PyObject *riccati(PyObject *self, PyObject *args)
     return result;
 }
 
+/*
+ * costs(h, k, c, trades, trajectory, quantity, beta, b, p, terminal, settle) -> 5 cost terms
+ *
+ * The canonical objective of a schedule, term by term (tracker.solve.COST_TERMS order: fixed cost,
+ * temporary impact, permanent impact, inventory penalty, terminal penalty), in currency:
+ *
+ *   sum h_n v_n,  sum k_n v_n^(1+beta),  (b/2) [(Q - q_N)^2 - sum v_n^2],  sum c_n q_n^p,
+ *   A q_N^p (forced, A infinite: 0 when q_N <= 1e-9 max(Q, 1), else infinite),
+ *
+ * with v_n the trades and q_n = max(Q - v_1 - ... - v_n, 0) the inventory after bin n.
+ * trades (in/out) are clipped at 0. With settle set, a schedule that completes the order up to
+ * rounding (|Q - sum v| <= 1e-9 Q, and forced or overshooting) has its last trade take the
+ * rounding, so that the trajectory ends at exactly 0 and never below. trajectory (out, N + 1
+ * values) receives Q, q_1, ..., q_N.
+ */
+static PyObject *costs(PyObject *self, PyObject *args)
+{
+    (void)self;
+    PyObject *objects[5];
+    double quantity, beta, b, p, terminal;
+    int settle;
+    if (!PyArg_ParseTuple(args, "OOOOOdddddp:costs", &objects[0], &objects[1], &objects[2],
+                          &objects[3], &objects[4], &quantity, &beta, &b, &p, &terminal,
+                          &settle)) {
+        return NULL;
+    }
+    static const char *names[5] = {"h", "k", "c", "trades", "trajectory"};
+    Py_buffer views[5];
+    int got = 0;
+    Py_ssize_t n = -1;
+    for (; got < 5; got++) {
+        /* the trajectory has one value more than the others */
+        if (get_vector(objects[got], &views[got], got == 4 ? n + 1 : n, got >= 3, names[got]) !=
+            0) {
+            break;
+        }
+        if (got < 4) {
+            n = views[got].shape[0];
+        }
+    }
+    PyObject *result = NULL;
+    if (got == 5 && n < 1) {
+        PyErr_SetString(PyExc_ValueError, "need at least one bin");
+    } else if (got == 5) {
+        const double *h = views[0].buf, *k = views[1].buf, *c = views[2].buf;
+        double *v = views[3].buf, *q = views[4].buf;
+        /* q[j + 1] holds the shares executed up to bin j until the last loop. */
+        double executed = 0.0;
+        for (Py_ssize_t j = 0; j < n; j++) {
+            v[j] = fmax(v[j], 0.0);
+            executed += v[j];
+            q[j + 1] = executed;
+        }
+        const int forced = isinf(terminal);
+        const double left = quantity - executed;
+        if (settle && quantity > 0.0 && fabs(left) <= 1e-9 * quantity && (forced || left < 0.0)) {
+            Py_ssize_t last = n - 1;
+            while (last > 0 && v[last] == 0.0) {
+                last--;
+            }
+            v[last] = fmax(v[last] + left, 0.0);
+            for (Py_ssize_t j = last; j < n; j++) {
+                q[j + 1] = quantity; /* the bins before it are unchanged */
+            }
+        }
+        double fixed = 0.0, temporary = 0.0, squares = 0.0, inventory = 0.0;
+        q[0] = quantity;
+        for (Py_ssize_t j = 0; j < n; j++) {
+            q[j + 1] = fmax(quantity - q[j + 1], 0.0);
+            fixed += h[j] * v[j];
+            temporary += k[j] * power(v[j], 1.0 + beta);
+            squares += v[j] * v[j];
+            inventory += c[j] * power(q[j + 1], p);
+        }
+        const double q_end = q[n];
+        const double done = quantity - q_end;
+        double terminal_cost;
+        if (forced) {
+            terminal_cost = q_end <= 1e-9 * fmax(quantity, 1.0) ? 0.0 : INFINITY;
+        } else {
+            terminal_cost = terminal * power(q_end, p);
+        }
+        result = Py_BuildValue("(ddddd)", fixed, temporary, 0.5 * b * (done * done - squares),
+                               inventory, terminal_cost);
+    }
+    for (int i = 0; i < got; i++) {
+        PyBuffer_Release(&views[i]);
+    }
+    return result;
+}
+
 static PyMethodDef methods[] = {
     {"interior_point", interior_point, METH_VARARGS,
      "Run the interior-point method on one scaled problem (see tracker/solve.py)."},
     {"riccati", riccati, METH_VARARGS,
      "The linear-quadratic recursion of tracker.solve._riccati; returns the final inventory."},
+    {"costs", costs, METH_VARARGS, "The canonical objective of a schedule, term by term."},
     {NULL, NULL, 0, NULL},
 };
 

@@ -31,3 +31,17 @@ def riccati(
     quantity: float,
     /,
 ) -> float: ...
+def costs(
+    h: _Vector,
+    k: _Vector,
+    c: _Vector,
+    trades: _Vector,
+    trajectory: _Vector,
+    quantity: float,
+    beta: float,
+    b: float,
+    p: float,
+    terminal: float,
+    settle: bool,
+    /,
+) -> tuple[float, float, float, float, float]: ...

@@ -281,7 +281,8 @@ class Problem:
         from forecasts it has checked): the per-bin arrays must be ``float64`` of one length,
         finite and >= 0 (``caps`` may hold ``inf``), the scalars in the ranges of the class
         docstring, ``terminal_penalty`` a float (``inf`` = force). The arrays are made
-        read-only, not copied. Input from outside goes through the constructor instead.
+        read-only, not copied (unless they are not contiguous: the compiled solver reads them
+        as plain C arrays). Input from outside goes through the constructor instead.
         """
         problem = object.__new__(cls)
         put = object.__setattr__
@@ -292,6 +293,7 @@ class Problem:
             ("temporary_impact", temporary_impact),
             ("inventory_penalty", inventory_penalty),
         ):
+            array = np.ascontiguousarray(array, dtype=np.float64)
             array.setflags(write=False)
             put(problem, name, array)
         put(problem, "impact_exponent", float(impact_exponent))
@@ -299,6 +301,7 @@ class Problem:
         put(problem, "penalty_exponent", float(penalty_exponent))
         put(problem, "terminal_penalty", float(terminal_penalty))
         if caps is not None:
+            caps = np.ascontiguousarray(caps, dtype=np.float64)
             caps.setflags(write=False)
         put(problem, "caps", caps)
         return problem

@@ -146,33 +146,38 @@ def cost_breakdown(problem: Problem, trades: Sequence[float] | FloatArray) -> di
     slack = 1e-9 * max(quantity, 1.0)
     if (v < -slack).any():
         raise ProblemError("trades must be >= 0 (no buying back)", field="trades")
-    v = np.maximum(v, 0.0)
-    q = quantity - np.cumsum(v)
-    if q[-1] < -slack:
+    v = np.maximum(v, 0.0)  # a copy: _costed works in place
+    if quantity - float(v.sum()) < -slack:
         raise ProblemError(f"trades add up to more than the quantity {quantity}", field="trades")
-    return _breakdown(problem, v, np.maximum(q, 0.0))
+    _, cost = _costed(problem, v, settle=False)
+    return cost
 
 
-def _breakdown(problem: Problem, v: FloatArray, q: FloatArray) -> dict[str, float]:
-    """Cost terms of trades ``v`` with inventories after each bin ``q`` (both checked)."""
-    q_end = float(q[-1])
-    executed = problem.quantity - q_end
-    p = problem.penalty_exponent
-    beta = problem.impact_exponent
-    terminal = problem.terminal_penalty
-    if math.isinf(terminal):
-        terminal_cost = 0.0 if q_end <= 1e-9 * max(problem.quantity, 1.0) else math.inf
-    else:
-        terminal_cost = terminal * q_end**p
-    return {
-        "fixed_cost": float(problem.fixed_cost @ v),
-        "temporary_impact": float(
-            problem.temporary_impact @ (v * v if beta == 1.0 else v ** (1.0 + beta))
-        ),
-        "permanent_impact": 0.5 * problem.permanent_impact * (executed * executed - float(v @ v)),
-        "inventory_penalty": float(problem.inventory_penalty @ (q * q if p == 2.0 else q**p)),
-        "terminal_penalty": terminal_cost,
-    }
+def _costed(
+    problem: Problem, trades: FloatArray, *, settle: bool
+) -> tuple[FloatArray, dict[str, float]]:
+    """The trajectory and cost terms of ``trades`` (float64, changed in place: clipped at 0).
+
+    With ``settle``, a schedule that completes the order up to rounding has its last trade take
+    the rounding, so that the trajectory ends at exactly zero and never below. The objective's
+    terms are summed in the compiled kernel (``tracker/_kernel.c``, ``costs``): a loop over the
+    bins that ran for every order of every bin close.
+    """
+    trajectory = np.empty(problem.bins + 1)
+    terms = _kernel.costs(
+        problem.fixed_cost,
+        problem.temporary_impact,
+        problem.inventory_penalty,
+        trades,
+        trajectory,
+        problem.quantity,
+        problem.impact_exponent,
+        problem.permanent_impact,
+        problem.penalty_exponent,
+        problem.terminal_penalty,
+        settle,
+    )
+    return trajectory, dict(zip(COST_TERMS, terms, strict=True))
 
 
 def objective_value(problem: Problem, trades: Sequence[float] | FloatArray) -> float:
@@ -280,22 +285,12 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
 
 
 def _finish(problem: Problem, trades: FloatArray, method: str, iterations: int) -> Schedule:
-    """Wrap final trades into a Schedule: trajectory, objective, breakdown and status."""
+    """Wrap final trades into a Schedule: trajectory, objective, breakdown and status.
+
+    ``trades`` must be a fresh float64 array: it is settled in place and becomes the schedule's.
+    """
     quantity = problem.quantity
-    trades = np.maximum(trades, 0.0)
-    executed = np.cumsum(trades)
-    left = quantity - float(executed[-1])
-    if quantity > 0.0 and abs(left) <= 1e-9 * quantity and (problem.forced or left < 0.0):
-        # Rounding only: the last bin that trades takes exactly what is left, so a completed
-        # order ends at exactly zero and never below.
-        last = int(trades.nonzero()[0][-1])
-        trades[last] = max(trades[last] + left, 0.0)
-        executed[last:] = quantity  # the bins before it are unchanged
-    trajectory = np.empty(problem.bins + 1)
-    trajectory[0] = quantity
-    np.subtract(quantity, executed, out=trajectory[1:])
-    np.maximum(trajectory, 0.0, out=trajectory)
-    cost = _breakdown(problem, trades, trajectory[1:])
+    trajectory, cost = _costed(problem, trades, settle=True)
     shortfall = float(trajectory[-1])
     capped = problem.caps is not None and float(problem.caps.sum()) < quantity
     trajectory.setflags(write=False)
