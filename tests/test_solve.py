@@ -8,6 +8,7 @@ import sys
 
 import numpy as np
 import pytest
+from scipy.linalg import solve_banded
 
 from tracker import (
     CAPPED_SHORTFALL,
@@ -207,3 +208,23 @@ def test_kernel_rejects_vectors_of_the_wrong_kind() -> None:
         )
     with pytest.raises(ValueError, match="not C-contiguous"):
         _kernel.riccati(good, good[::2], good, np.empty(4), 1.0, 0.0, False, 1e4)
+
+
+@pytest.mark.parametrize(
+    "diagonal",
+    [
+        [4.0, 4.0, 4.0, 4.0, 4.0],  # positive definite: the L D L^T route
+        [1.0, -3.0, 2.0, 0.5, -1.0],  # indefinite: the pivoting route
+        [0.0, -3.0, 2.0, 0.5, -1.0],  # a zero first pivot
+    ],
+    ids=["positive-definite", "indefinite", "zero-pivot"],
+)
+def test_newton_solve_matches_scipy(diagonal: list[float]) -> None:
+    """The kernel's tridiagonal solve agrees with SciPy's solve_banded (reference library)."""
+    d = np.array(diagonal)
+    e = np.array([2.0, 1.0, -1.0, 3.0])
+    b = np.array([1.0, 2.0, 3.0, 4.0, 5.0])
+    expected = solve_banded((1, 1), np.vstack([np.r_[0.0, e], d, np.r_[e, 0.0]]), b)
+    actual = b.copy()
+    _kernel.tridiagonal(d, e, actual)
+    np.testing.assert_allclose(actual, expected, rtol=1e-13, atol=1e-13)

@@ -1,12 +1,17 @@
 /*
- * tracker._kernel: the interior-point iteration of tracker.solve, compiled.
+ * tracker._kernel: the loops of tracker.solve over the bins, compiled.
  *
- * Why C: at N = 78 the arithmetic of one Newton iteration is a few thousand flops; written with
- * numpy it was about 60 small array calls, each costing more in interpreter and dispatch overhead
- * than in arithmetic (about 100 us per iteration). The same method here runs in a few
- * microseconds per iteration. Everything around it (scaling the problem, the closed forms,
- * checking the answer and costing it) stays in Python, in tracker/solve.py, whose docstring
- * describes the method; this file is only its inner loop.
+ * Why C: at N = 78 one Newton iteration of the interior-point method is a few thousand flops;
+ * written with numpy it was about 60 small array calls, each costing more in interpreter and
+ * dispatch overhead than in arithmetic (about 100 us per iteration, 2-8 ms per solve). Here an
+ * iteration takes a few microseconds. What is here:
+ *
+ *   interior_point()  the general path: scaling, starting point, the iteration, back to shares;
+ *   riccati()         the recursion of the exact (linear-quadratic) path;
+ *   costs()           the objective of a final schedule, term by term.
+ *
+ * What stays in Python (tracker/solve.py, whose docstring gives the theory): choosing the path,
+ * the closed forms, the convexity check, taking out bins that cannot trade, the Schedule.
  *
  * The problem, in the method's scaled units (inventories as fractions of the quantity, costs over
  * a yardstick cost), with x_j the inventory after bin j (j = 0 .. n-1), x_{-1} = 1 and
@@ -23,11 +28,7 @@
  * multipliers positive (times 0.995) and backtracks until the step reduces the norm of the
  * perturbed KKT residual or satisfies Armijo's condition on the log-barrier function.
  *
- * The module also holds the backward Riccati recursion of the linear-quadratic case (riccati())
- * and the costing of a final schedule (costs()): plain loops over the bins that cost Python and
- * numpy far more in call overhead than in arithmetic, and ran for every order of every bin close.
- *
- * Entry point (called from tracker/solve.py only; tracker/_kernel.pyi types it):
+ * Entry points are called from tracker/solve.py only; tracker/_kernel.pyi types them. The first:
  *
  *   interior_point(h, k, c, caps, out, quantity, beta, b, p, terminal, tolerance, max_iterations)
  *
@@ -49,7 +50,7 @@
 #define BOUNDARY_FRACTION 0.995
 #define BACKTRACKS 60
 
-/* x^e with the exponents the desk uses most taken by faster exact routes. */
+/* x^e, with the exponents the desk uses most taken by cheaper routes than pow(). */
 static inline double power(double x, double e)
 {
     if (e == 1.0) {
@@ -197,7 +198,7 @@ static double barrier(const Problem *P, const State *S, double mu)
  * First as positive definite (L D L^T, no pivoting, like LAPACK's dptsv); if a pivot is not
  * positive, Gaussian elimination with partial pivoting (like dgtsv); if that meets a zero pivot,
  * again with the diagonal shifted by 1e-12 of itself. Returns 0, or -1 when singular.
- * d, e and b are overwritten; work needs 4n doubles.
+ * b receives the solution; d and e are kept; work needs 4n doubles.
  */
 static int solve_tridiagonal(Py_ssize_t n, const double *d, const double *e, double *b,
                              double *work)
@@ -229,7 +230,7 @@ static int solve_tridiagonal(Py_ssize_t n, const double *d, const double *e, dou
     }
     /* Pivoting fallback: dd diagonal, l subdiagonal, up superdiagonal, up2 second one. */
     double *up = work + 3 * n;
-    double *up2 = l; /* the subdiagonal is consumed before up2 is written at the same index */
+    double *up2 = l; /* the failed factorisation's multipliers are not needed any more */
     memcpy(rhs, b, (size_t)n * sizeof(double));
     for (int attempt = 0; attempt < 2; attempt++) {
         for (Py_ssize_t i = 0; i < n; i++) {
@@ -279,12 +280,12 @@ static int solve_tridiagonal(Py_ssize_t n, const double *d, const double *e, dou
     return -1;
 }
 
+/* The largest t >= 0 with value + t * change >= 0 (value >= 0): infinite unless change < 0. */
 static inline double ratio_limit(double value, double change)
 {
     return change < 0.0 ? -value / change : INFINITY;
 }
 
-/* The method itself; returns iterations, or a negative code (see the header comment). */
 /* Hands out consecutive vectors of n doubles from one allocation. */
 static double *take(double **cursor, Py_ssize_t count)
 {
@@ -827,12 +828,62 @@ static PyObject *costs(PyObject *self, PyObject *args)
     return result;
 }
 
+/*
+ * tridiagonal(d, e, b) -> None: solve the symmetric tridiagonal system of solve_tridiagonal()
+ * for b in place; raises ValueError when it is singular. Exposed for the tests, which check it
+ * (positive definite or not) against SciPy.
+ */
+static PyObject *tridiagonal(PyObject *self, PyObject *args)
+{
+    (void)self;
+    PyObject *objects[3];
+    if (!PyArg_ParseTuple(args, "OOO:tridiagonal", &objects[0], &objects[1], &objects[2])) {
+        return NULL;
+    }
+    static const char *names[3] = {"d", "e", "b"};
+    Py_buffer views[3];
+    int got = 0;
+    Py_ssize_t n = -1;
+    for (; got < 3; got++) {
+        Py_ssize_t want = got == 0 ? -1 : (got == 1 ? n - 1 : n);
+        if (get_vector(objects[got], &views[got], want, got == 2, names[got]) != 0) {
+            break;
+        }
+        if (got == 0) {
+            n = views[0].shape[0];
+        }
+    }
+    PyObject *result = NULL;
+    if (got == 3 && n < 1) {
+        PyErr_SetString(PyExc_ValueError, "need at least one row");
+    } else if (got == 3) {
+        double *work = malloc((size_t)n * 4 * sizeof(double));
+        if (work == NULL) {
+            PyErr_NoMemory();
+        } else {
+            const int code = solve_tridiagonal(n, views[0].buf, views[1].buf, views[2].buf, work);
+            free(work);
+            if (code != 0) {
+                PyErr_SetString(PyExc_ValueError, "singular tridiagonal system");
+            } else {
+                result = Py_NewRef(Py_None);
+            }
+        }
+    }
+    for (int i = 0; i < got; i++) {
+        PyBuffer_Release(&views[i]);
+    }
+    return result;
+}
+
 static PyMethodDef methods[] = {
     {"interior_point", interior_point, METH_VARARGS,
      "Run the interior-point method on one scaled problem (see tracker/solve.py)."},
     {"riccati", riccati, METH_VARARGS,
      "The linear-quadratic recursion of tracker.solve._riccati; returns the final inventory."},
     {"costs", costs, METH_VARARGS, "The canonical objective of a schedule, term by term."},
+    {"tridiagonal", tridiagonal, METH_VARARGS,
+     "Solve a symmetric tridiagonal system in place (the Newton solve; for tests)."},
     {NULL, NULL, 0, NULL},
 };
 
