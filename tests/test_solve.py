@@ -5,6 +5,7 @@ The numbers themselves are checked against outside references in test_solve_refe
 
 import math
 import sys
+from typing import Any
 
 import numpy as np
 import pytest
@@ -181,33 +182,39 @@ def test_long_horizons_complete(bins: int) -> None:
 def test_iteration_limit_raises_solve_error(monkeypatch: pytest.MonkeyPatch) -> None:
     """A run that needs more Newton iterations than allowed is an error, never a partial answer."""
     monkeypatch.setattr(sys.modules["tracker.solve"], "_MAX_ITERATIONS", 2)
-    with pytest.raises(SolveError, match="did not converge in 2 iterations"):
-        solve(
-            Problem(
-                quantity=5e4,
-                bins=20,
-                temporary_impact=1e-3,
-                impact_exponent=0.5,
-                inventory_penalty=1e-6,
-                penalty_exponent=1.5,
-            )
-        )
+    general = Problem(
+        quantity=5e4,
+        bins=20,
+        temporary_impact=1e-3,
+        impact_exponent=0.5,
+        inventory_penalty=1e-6,
+        penalty_exponent=1.5,
+    )
+    with pytest.raises(SolveError, match="did not converge in 2 iterations$"):
+        solve(general)
+    riccati = Problem(quantity=5e4, bins=20, temporary_impact=1e-3, inventory_penalty=1e-6)
+    with pytest.raises(SolveError, match=r"in 2 iterations \(problem 1 of the batch\)"):
+        solve_batch([riccati, general])
 
 
 def test_kernel_rejects_vectors_of_the_wrong_kind() -> None:
     """The compiled kernel refuses integer or mismatched vectors instead of reading past them."""
-    good = np.ones(4)
-    with pytest.raises(ValueError, match="caps must be a contiguous float64 vector"):
+    four, one = np.ones(4), np.ones(1)
+    sizes, iterations = np.array([4]), np.empty(1, dtype=np.int64)
+
+    def interior_point(caps: Any, out: Any, sizes: Any) -> None:
         _kernel.interior_point(
-            good, good, good, np.ones(4, dtype=np.int64), np.empty(4), 1e4, 0.5, 0.0, 1.5,
-            math.inf, 1e-10, 10,
-        )  # fmt: skip
-    with pytest.raises(ValueError, match="out must be a contiguous float64 vector"):
-        _kernel.interior_point(
-            good, good, good, good, np.empty(3), 1e4, 0.5, 0.0, 1.5, math.inf, 1e-10, 10
+            four, four, four, caps, out, sizes, iterations, one, one, one, one, one, 1e-10, 10
         )
+
+    with pytest.raises(ValueError, match="caps must be a contiguous float64 vector"):
+        interior_point(np.ones(4, dtype=np.int64), np.empty(4), sizes)
+    with pytest.raises(ValueError, match="out must be a contiguous float64 vector"):
+        interior_point(four, np.empty(3), sizes)
+    with pytest.raises(ValueError, match="sizes must be a contiguous int64 vector"):
+        interior_point(four, np.empty(4), np.array([4.0]))
     with pytest.raises(ValueError, match="not C-contiguous"):
-        _kernel.riccati(good, good[::2], good, np.empty(4), 1.0, 0.0, False, 1e4)
+        _kernel.riccati(four, four[::2], four, np.empty(4), 1.0, 0.0, False, 1e4)
 
 
 @pytest.mark.parametrize(

@@ -28,17 +28,21 @@
  * multipliers positive (times 0.995) and backtracks until the step reduces the norm of the
  * perturbed KKT residual or satisfies Armijo's condition on the log-barrier function.
  *
- * Entry points are called from tracker/solve.py only; tracker/_kernel.pyi types them. The first:
+ * Entry points are called from tracker/solve.py only; tracker/_kernel.pyi types them. The first
+ * solves a batch of problems laid end to end, each on its own (so an answer never depends on the
+ * problems beside it), in one call:
  *
- *   interior_point(h, k, c, caps, out, quantity, beta, b, p, terminal, tolerance, max_iterations)
+ *   interior_point(h, k, c, caps, out, sizes, iterations,
+ *                  quantity, beta, b, p, terminal, tolerance, max_iterations) -> None
  *
- * h, k, c, caps: the problem's fixed cost, temporary impact, risk weight and caps (shares, inf
- * where none) per bin, in the problem's own units, for bins that can trade (every cap > 0);
- * contiguous float64 buffers of length n. out: writable float64 buffer of length n that receives
- * the optimal trades in shares. The function scales the problem (see starting_point()), runs the
- * method and converts back. Returns the number of Newton iterations (>= 0), or -1 when the method
- * did not converge within max_iterations, -2 when a Newton system was singular, -3 when the
- * iterate became non-finite.
+ * h, k, c, caps: the problems' fixed cost, temporary impact, risk weight and caps (shares, inf
+ * where none) per bin, in their own units, only bins that can trade (every cap > 0), problem
+ * after problem: contiguous float64 buffers of sum(sizes) values. out: a writable buffer of the
+ * same length that receives the optimal trades in shares. sizes: int64, the bins of each problem.
+ * quantity, beta, b, p, terminal: float64, one per problem. iterations (int64, out): per problem
+ * the Newton iterations taken (>= 0), or -1 when the method did not converge within
+ * max_iterations, -2 when a Newton system was singular, -3 when the iterate became non-finite.
+ * Each problem is scaled (see starting_point()), solved and converted back to shares.
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
@@ -556,108 +560,168 @@ static double starting_point(Py_ssize_t n, const double *caps, const double *h, 
     return scale;
 }
 
-/* Vectors of n doubles interior_point() needs besides run()'s: 6 coefficient vectors, the scaled
+/* Vectors of n doubles solve_one() needs besides run()'s: 6 coefficient vectors, the scaled
  * h, k, c and caps, the start and the iterate. */
 #define OWN_VECTORS (6 + 4 + 2)
+
+/*
+ * One problem of n bins, in its own units (see the header comment): scale it, start, run the
+ * method and write the optimal trades in shares. mem holds (OWN_VECTORS + RUN_VECTORS) n doubles.
+ * Returns the iterations or a negative code.
+ */
+static int solve_one(Py_ssize_t n, const double *h_in, const double *k_in, const double *c_in,
+                     const double *caps_in, double *trades, double quantity, double beta, double b,
+                     double p, double terminal, double tolerance, int max_iterations, double *mem)
+{
+    double *h = take(&mem, n), *k = take(&mem, n), *c = take(&mem, n);
+    double *caps = take(&mem, n), *start = take(&mem, n), *x = take(&mem, n);
+    Problem P;
+    P.k1 = take(&mem, n);
+    P.k2 = take(&mem, n);
+    P.c1 = take(&mem, n);
+    P.c2 = take(&mem, n);
+    P.cap_f = take(&mem, n);
+    P.caps_safe = take(&mem, n);
+    /* Units: inventories as fractions of Q; a cap of Q or more never binds. */
+    const double k_unit = pow(quantity, 1.0 + beta), c_unit = pow(quantity, p);
+    for (Py_ssize_t j = 0; j < n; j++) {
+        h[j] = h_in[j] * quantity;
+        k[j] = k_in[j] * k_unit;
+        c[j] = c_in[j] * c_unit;
+        caps[j] = caps_in[j] / quantity;
+        if (caps[j] >= 1.0) {
+            caps[j] = INFINITY;
+        }
+    }
+    b *= quantity * quantity;
+    terminal *= c_unit;
+    /* Costs in units of the starting schedule's cost. */
+    const double scale = starting_point(n, caps, h, k, c, beta, b, p, terminal, start);
+    P.n = n;
+    P.forced = isinf(terminal);
+    P.beta = beta;
+    P.b = b / scale;
+    P.p = p;
+    P.terminal = terminal / scale;
+    P.h = h;
+    P.k = k;
+    P.c = c;
+    double m = (double)n + (P.forced ? 0.0 : 1.0);
+    for (Py_ssize_t j = 0; j < n; j++) {
+        h[j] /= scale;
+        k[j] /= scale;
+        c[j] /= scale;
+        P.k1[j] = k[j] * (1.0 + beta);
+        P.k2[j] = P.k1[j] * beta;
+        P.c1[j] = c[j] * p;
+        P.c2[j] = P.c1[j] * (p - 1.0);
+        const int capped = isfinite(caps[j]);
+        P.cap_f[j] = capped ? 1.0 : 0.0;
+        P.caps_safe[j] = capped ? caps[j] : 2.0;
+        m += P.cap_f[j];
+    }
+    P.m = m;
+    const int code = run(&P, start, x, tolerance, max_iterations, mem);
+    if (code >= 0) { /* trades in shares from the inventories */
+        for (Py_ssize_t j = 0; j < n; j++) {
+            const double previous = j == 0 ? 1.0 : x[j - 1];
+            trades[j] = fmax(previous - x[j], 0.0) * quantity;
+        }
+    }
+    return code;
+}
+
+/* An int64 vector of length n (any length when n < 0). */
+static int get_counts(PyObject *object, Py_buffer *view, Py_ssize_t n, int writable,
+                      const char *name)
+{
+    int flags = PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0);
+    if (PyObject_GetBuffer(object, view, flags) != 0) {
+        return -1;
+    }
+    if (view->ndim != 1 || view->itemsize != sizeof(long long) || view->format == NULL ||
+        (strcmp(view->format, "l") != 0 && strcmp(view->format, "q") != 0) ||
+        (n >= 0 && view->shape[0] != n)) {
+        PyErr_Format(PyExc_ValueError, "%s must be a contiguous int64 vector of one per problem",
+                     name);
+        PyBuffer_Release(view);
+        return -1;
+    }
+    return 0;
+}
 
 static PyObject *interior_point(PyObject *self, PyObject *args)
 {
     (void)self;
-    PyObject *objects[5];
-    double quantity, beta, b, p, terminal, tolerance;
+    PyObject *objects[10], *sizes_object, *iterations_object;
+    double tolerance;
     int max_iterations;
-    if (!PyArg_ParseTuple(args, "OOOOOddddddi:interior_point", &objects[0], &objects[1],
-                          &objects[2], &objects[3], &objects[4], &quantity, &beta, &b, &p,
-                          &terminal, &tolerance, &max_iterations)) {
+    if (!PyArg_ParseTuple(args, "OOOOOOOOOOOOdi:interior_point", &objects[0], &objects[1],
+                          &objects[2], &objects[3], &objects[4], &sizes_object,
+                          &iterations_object, &objects[5], &objects[6], &objects[7],
+                          &objects[8], &objects[9], &tolerance, &max_iterations)) {
         return NULL;
     }
-    static const char *names[5] = {"h", "k", "c", "caps", "out"};
-    Py_buffer views[5];
+    static const char *names[10] = {"h", "k", "c", "caps", "out",
+                                    "quantity", "beta", "b", "p", "terminal"};
+    Py_buffer views[10], sizes, iterations;
+    if (get_counts(sizes_object, &sizes, -1, 0, "sizes") != 0) {
+        return NULL;
+    }
+    const Py_ssize_t count = sizes.shape[0];
+    if (get_counts(iterations_object, &iterations, count, 1, "iterations") != 0) {
+        PyBuffer_Release(&sizes);
+        return NULL;
+    }
+    const long long *size = sizes.buf;
+    Py_ssize_t total = 0, largest = 0;
+    int valid = 1;
+    for (Py_ssize_t i = 0; i < count; i++) {
+        valid = valid && size[i] >= 1;
+        total += (Py_ssize_t)size[i];
+        largest = size[i] > largest ? (Py_ssize_t)size[i] : largest;
+    }
     int got = 0;
-    Py_ssize_t n = -1;
-    for (; got < 5; got++) {
-        if (get_vector(objects[got], &views[got], n, got == 4, names[got]) != 0) {
-            break;
+    if (!valid) {
+        PyErr_SetString(PyExc_ValueError, "every problem needs at least one bin");
+    } else {
+        for (; got < 10; got++) {
+            if (get_vector(objects[got], &views[got], got < 5 ? total : count, got == 4,
+                           names[got]) != 0) {
+                break;
+            }
         }
-        n = views[got].shape[0];
     }
     PyObject *result = NULL;
-    if (got == 5 && (n < 1 || !(quantity > 0.0))) {
-        PyErr_SetString(PyExc_ValueError, "need at least one bin and a positive quantity");
-    } else if (got == 5) {
-        double *mem = malloc((size_t)n * (OWN_VECTORS + RUN_VECTORS) * sizeof(double));
+    if (got == 10) {
+        double *mem = malloc((size_t)largest * (OWN_VECTORS + RUN_VECTORS) * sizeof(double));
         if (mem == NULL) {
             PyErr_NoMemory();
         } else {
-            double *cursor = mem;
-            double *h = take(&cursor, n), *k = take(&cursor, n), *c = take(&cursor, n);
-            double *caps = take(&cursor, n), *start = take(&cursor, n), *x = take(&cursor, n);
-            Problem P;
-            P.k1 = take(&cursor, n);
-            P.k2 = take(&cursor, n);
-            P.c1 = take(&cursor, n);
-            P.c2 = take(&cursor, n);
-            P.cap_f = take(&cursor, n);
-            P.caps_safe = take(&cursor, n);
-            /* Units: inventories as fractions of Q; a cap of Q or more never binds. */
-            const double *h_in = views[0].buf, *k_in = views[1].buf, *c_in = views[2].buf;
-            const double *caps_in = views[3].buf;
-            const double k_unit = pow(quantity, 1.0 + beta), c_unit = pow(quantity, p);
-            for (Py_ssize_t j = 0; j < n; j++) {
-                h[j] = h_in[j] * quantity;
-                k[j] = k_in[j] * k_unit;
-                c[j] = c_in[j] * c_unit;
-                caps[j] = caps_in[j] / quantity;
-                if (caps[j] >= 1.0) {
-                    caps[j] = INFINITY;
-                }
-            }
-            b *= quantity * quantity;
-            terminal *= c_unit;
-            /* Costs in units of the starting schedule's cost. */
-            const double scale = starting_point(n, caps, h, k, c, beta, b, p, terminal, start);
-            P.n = n;
-            P.forced = isinf(terminal);
-            P.beta = beta;
-            P.b = b / scale;
-            P.p = p;
-            P.terminal = terminal / scale;
-            P.h = h;
-            P.k = k;
-            P.c = c;
-            double m = (double)n + (P.forced ? 0.0 : 1.0);
-            for (Py_ssize_t j = 0; j < n; j++) {
-                h[j] /= scale;
-                k[j] /= scale;
-                c[j] /= scale;
-                P.k1[j] = k[j] * (1.0 + beta);
-                P.k2[j] = P.k1[j] * beta;
-                P.c1[j] = c[j] * p;
-                P.c2[j] = P.c1[j] * (p - 1.0);
-                const int capped = isfinite(caps[j]);
-                P.cap_f[j] = capped ? 1.0 : 0.0;
-                P.caps_safe[j] = capped ? caps[j] : 2.0;
-                m += P.cap_f[j];
-            }
-            P.m = m;
-            int code;
+            const double *h = views[0].buf, *k = views[1].buf, *c = views[2].buf;
+            const double *caps = views[3].buf, *quantity = views[5].buf, *beta = views[6].buf;
+            const double *b = views[7].buf, *p = views[8].buf, *terminal = views[9].buf;
+            double *out = views[4].buf;
+            long long *done = iterations.buf;
             Py_BEGIN_ALLOW_THREADS
-            code = run(&P, start, x, tolerance, max_iterations, cursor);
-            Py_END_ALLOW_THREADS
-            if (code >= 0) { /* trades in shares from the inventories */
-                double *trades = views[4].buf;
-                for (Py_ssize_t j = 0; j < n; j++) {
-                    const double previous = j == 0 ? 1.0 : x[j - 1];
-                    trades[j] = fmax(previous - x[j], 0.0) * quantity;
-                }
+            Py_ssize_t at = 0;
+            for (Py_ssize_t i = 0; i < count; i++) {
+                const Py_ssize_t n = (Py_ssize_t)size[i];
+                done[i] = solve_one(n, h + at, k + at, c + at, caps + at, out + at, quantity[i],
+                                    beta[i], b[i], p[i], terminal[i], tolerance, max_iterations,
+                                    mem);
+                at += n;
             }
+            Py_END_ALLOW_THREADS
             free(mem);
-            result = PyLong_FromLong(code);
+            result = Py_NewRef(Py_None);
         }
     }
     for (int i = 0; i < got; i++) {
         PyBuffer_Release(&views[i]);
     }
+    PyBuffer_Release(&sizes);
+    PyBuffer_Release(&iterations);
     return result;
 }
 

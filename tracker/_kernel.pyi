@@ -5,21 +5,25 @@ import numpy.typing as npt
 
 _Vector = npt.NDArray[np.float64]
 
+_Counts = npt.NDArray[np.int64]
+
 def interior_point(
     h: _Vector,
     k: _Vector,
     c: _Vector,
     caps: _Vector,
     out: _Vector,
-    quantity: float,
-    beta: float,
-    b: float,
-    p: float,
-    terminal: float,
+    sizes: _Counts,
+    iterations: _Counts,
+    quantity: _Vector,
+    beta: _Vector,
+    b: _Vector,
+    p: _Vector,
+    terminal: _Vector,
     tolerance: float,
     max_iterations: int,
     /,
-) -> int: ...
+) -> None: ...
 def riccati(
     h: _Vector,
     kappa: _Vector,

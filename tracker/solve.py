@@ -47,6 +47,7 @@ from dataclasses import dataclass
 from typing import Final
 
 import numpy as np
+import numpy.typing as npt
 
 from tracker import _kernel
 from tracker.errors import ProblemError, SolveError
@@ -68,7 +69,7 @@ COST_TERMS: Final = (
 TOLERANCE: Final = 1e-10
 
 _MAX_ITERATIONS: Final = 200
-#: What the compiled kernel's negative return codes mean (-1, not converged, is worded in place).
+#: What the compiled kernel's negative iteration counts mean (-1 in :func:`_kernel_failure`).
 _KERNEL_FAILURES: Final = {
     -2: "singular Newton system in the interior-point method",
     -3: "the interior-point iterate became non-finite",
@@ -249,7 +250,9 @@ def solve(problem: Problem, *, tolerance: float = TOLERANCE) -> Schedule:
 
 
 def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) -> list[Schedule]:
-    """Solve many problems; each on its own, so its answer never depends on the others.
+    """Solve many problems; the general ones in one call of the compiled method.
+
+    Each problem is solved on its own, so its answer never depends on the others.
 
     Args:
         problems: Validated problems, of any sizes.
@@ -262,7 +265,8 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
         ProblemError: A problem is not convex; the message says which one (by position).
         SolveError: The interior-point method did not converge.
     """
-    schedules: list[Schedule] = []
+    schedules: list[Schedule | None] = []
+    general: list[int] = []  # positions of the problems for the interior-point method
     for index, problem in enumerate(problems):
         try:
             check_convex(problem)
@@ -274,10 +278,16 @@ def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) ->
             ) from exc
         schedule = _closed_form(problem)
         if schedule is None:
-            trades, iterations = _interior_point(problem, tolerance)
-            schedule = _finish(problem, trades, "interior_point", iterations)
+            general.append(index)
         schedules.append(schedule)
-    return schedules
+    if general:
+        solved, iterations = _interior_point([problems[i] for i in general], tolerance)
+        for index, trades, count in zip(general, solved, iterations.tolist(), strict=True):
+            if count < 0:
+                where = f" (problem {index} of the batch)" if len(problems) > 1 else ""
+                raise SolveError(_kernel_failure(count) + where)
+            schedules[index] = _finish(problems[index], trades, "interior_point", count)
+    return [schedule for schedule in schedules if schedule is not None]
 
 
 # --------------------------------------------------------------------------------------------
@@ -363,48 +373,75 @@ def _riccati(problem: Problem) -> Schedule | None:
 # The general path
 
 
-def _interior_point(problem: Problem, tolerance: float) -> tuple[FloatArray, int]:
-    """Optimal trades (shares) by the compiled interior-point method, and its iteration count.
+def _interior_point(
+    problems: Sequence[Problem], tolerance: float
+) -> tuple[list[FloatArray], npt.NDArray[np.int64]]:
+    """Optimal trades (shares) of general problems, and per problem the kernel's iteration count.
+
+    One call of the compiled method for the whole batch, laid end to end; each problem is solved
+    on its own, so its answer never depends on the others. A negative count is a failure
+    (:func:`_kernel_failure`).
 
     Bins whose cap is zero cannot trade: they are taken out first and put back as zero trades.
     The inventory after such a bin equals the inventory after the last bin before it that
     trades, so its risk weight is folded into that bin's (or dropped where it is Q itself, a
     constant).
     """
-    h = problem.fixed_cost
-    k = problem.temporary_impact
-    c = problem.inventory_penalty
-    caps = problem.cap_array
-    active = None
-    if problem.caps is not None and not (caps > 0.0).all():
-        active = np.flatnonzero(caps > 0.0)
-        owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
-        folded = np.zeros(active.size)
-        np.add.at(folded, owner[owner >= 0], c[owner >= 0])
-        h, k, c, caps = h[active], k[active], folded, caps[active]
-    trades = np.empty(h.size)
-    code = _kernel.interior_point(
-        np.ascontiguousarray(h, dtype=np.float64),
-        np.ascontiguousarray(k, dtype=np.float64),
-        np.ascontiguousarray(c, dtype=np.float64),
-        np.ascontiguousarray(caps, dtype=np.float64),
-        trades,
-        problem.quantity,
-        problem.impact_exponent,
-        problem.permanent_impact,
-        problem.penalty_exponent,
-        problem.terminal_penalty,
+    parts = [_tradeable(problem) for problem in problems]
+    sizes = np.array([part[1].size for part in parts], dtype=np.int64)
+    out = np.empty(int(sizes.sum()))
+    iterations = np.empty(len(problems), dtype=np.int64)
+    _kernel.interior_point(
+        np.concatenate([part[1] for part in parts]),
+        np.concatenate([part[2] for part in parts]),
+        np.concatenate([part[3] for part in parts]),
+        np.concatenate([part[4] for part in parts]),
+        out,
+        sizes,
+        iterations,
+        np.array([problem.quantity for problem in problems]),
+        np.array([problem.impact_exponent for problem in problems]),
+        np.array([problem.permanent_impact for problem in problems]),
+        np.array([problem.penalty_exponent for problem in problems]),
+        np.array([problem.terminal_penalty for problem in problems]),
         tolerance,
         _MAX_ITERATIONS,
     )
+    solved = []
+    for problem, (active, *_), shares in zip(
+        problems, parts, np.split(out, np.cumsum(sizes)[:-1]), strict=True
+    ):
+        if active is None:
+            solved.append(shares.copy())
+        else:
+            trades = np.zeros(problem.bins)
+            trades[active] = shares
+            solved.append(trades)
+    return solved, iterations
+
+
+def _tradeable(
+    problem: Problem,
+) -> tuple[npt.NDArray[np.intp] | None, FloatArray, FloatArray, FloatArray, FloatArray]:
+    """The bins that can trade (``None``: all), and their fixed cost, impact, risk and caps."""
+    caps = problem.cap_array
+    if problem.caps is None or (caps > 0.0).all():
+        return None, problem.fixed_cost, problem.temporary_impact, problem.inventory_penalty, caps
+    active = (caps > 0.0).nonzero()[0]
+    owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
+    folded = np.zeros(active.size)
+    np.add.at(folded, owner[owner >= 0], problem.inventory_penalty[owner >= 0])
+    return (
+        active,
+        problem.fixed_cost[active],
+        problem.temporary_impact[active],
+        folded,
+        caps[active],
+    )
+
+
+def _kernel_failure(code: int) -> str:
+    """What a negative iteration count from the kernel means."""
     if code == -1:
-        raise SolveError(
-            f"the interior-point method did not converge in {_MAX_ITERATIONS} iterations"
-        )
-    if code < 0:
-        raise SolveError(_KERNEL_FAILURES.get(code, f"interior-point kernel failed (code {code})"))
-    if active is not None:
-        full = np.zeros(problem.bins)
-        full[active] = trades
-        trades = full
-    return trades, code
+        return f"the interior-point method did not converge in {_MAX_ITERATIONS} iterations"
+    return _KERNEL_FAILURES.get(code, f"interior-point kernel failed (code {code})")
