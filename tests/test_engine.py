@@ -8,6 +8,7 @@ bins: common practice); on 2026-03-02 the open is 14:30 UTC.
 from __future__ import annotations
 
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -31,6 +32,7 @@ from tracker.testing import (
 from tracker.wire import ErrorMessage, StatusMessage, TargetMessage, encode
 
 OPEN = datetime(2026, 3, 2, 14, 30, tzinfo=UTC)
+GOLDEN_DAY = Path(__file__).resolve().parent.parent / "replay_data" / "day-2026-03-10-seed7.jsonl"
 BIN = timedelta(minutes=5)
 
 
@@ -499,6 +501,37 @@ def test_two_runs_give_identical_bytes() -> None:
         outputs = [encode(o) for m in day_of_messages() for o in engine.handle(m)]  # type: ignore[arg-type]
         runs.append((outputs, engine.summary()))
     assert runs[0] == runs[1]
+
+
+def described(message: StatusMessage | TargetMessage) -> tuple[object, ...]:
+    """Everything that can tell two messages apart: fields with their types, set fields, bytes."""
+    return (
+        [(name, type(value), value) for name, value in message.__dict__.items()],
+        message.model_fields_set,
+        message.model_dump_json(),
+        encode(message),
+    )
+
+
+def test_statuses_and_targets_equal_their_validated_models() -> None:
+    """The engine builds status and target messages unvalidated; pydantic would build the same."""
+    from tracker.replay import read_input, replay
+
+    engine = Engine()
+    messages = [*day_of_messages(), fill("A", "done", 20_000, 19.9, ts=at(60))]
+    outputs = [o for m in messages for o in engine.handle(m)]  # type: ignore[arg-type]
+    result = replay(read_input(GOLDEN_DAY), Engine())  # working, pending, halted, expired, ...
+    built = [
+        o
+        for o in [*outputs, *result.status, *result.targets]
+        if isinstance(o, StatusMessage | TargetMessage)
+    ]
+    states = {o.state for o in built if isinstance(o, StatusMessage)}
+    validated = [
+        type(o).model_validate({k: v for k, v in o.__dict__.items() if k != "type"}) for o in built
+    ]
+    assert {"pending", "working", "halted", "done", "cancelled", "expired"} == states
+    assert [described(o) for o in validated] == [described(o) for o in built]
 
 
 def test_outputs_of_one_event_are_ordered_by_order_id() -> None:

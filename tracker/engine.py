@@ -355,6 +355,8 @@ class Engine:
         symbols: set[str] = set()
 
         def flush() -> None:
+            if not group:
+                return
             problems = [job[5] for staged in group for job in staged.jobs]
             schedules = iter(self._solve(problems) if problems else ())
             for staged in group:
@@ -1374,7 +1376,7 @@ class Engine:
         )
         order.plan = plan
         order.blocked = blocked
-        order.volume_scale = sym.forecast.volume_scale
+        order.volume_scale = float(sym.forecast.volume_scale)
         if reason in ("start", "amend") or order.baseline is None:
             order.baseline = plan
         # Target for the next bin.
@@ -1502,10 +1504,10 @@ class Engine:
         self, order: _Order, index: int, quantity: int, max_quantity: int | None, ts: datetime
     ) -> TargetMessage:
         bin_start, bin_end = self._bin_times(order, index)
-        return TargetMessage(
+        return TargetMessage.trusted(
             order_id=order.order_id,
             symbol=order.symbol,
-            side=order.side,  # type: ignore[arg-type]
+            side=order.side,
             bin_start=bin_start,
             bin_end=bin_end,
             quantity=quantity,
@@ -1536,10 +1538,11 @@ class Engine:
         cost = plan.expected_cost if plan is not None and order.life.state in LIVE else None
         notional = order.remaining * plan.price if plan is not None else 0.0
         cost_bps = cost / notional * 1e4 if cost is not None and notional > 0 else None
-        return StatusMessage(
+        # Every value is already of its field's type (floats are floats, not ints or numpy).
+        return StatusMessage.trusted(
             order_id=order.order_id,
             symbol=order.symbol,
-            side=order.side,  # type: ignore[arg-type]
+            side=order.side,
             state=order.life.state.value,
             quantity=order.quantity,
             filled=order.filled,
