@@ -280,6 +280,51 @@ def test_redelivery_is_counted_not_rejected(tmp_path: Path) -> None:
     assert expected == (errors, summary["replay"]["redelivered"], filled(summary))
 
 
+FILL_VARIANTS: list[dict[str, Any]] = [
+    fill("F1", 100, 60)["payload"],
+    {**fill("F1", 100, 60)["payload"], "quantity": 100.0},  # the same fill
+    {**fill("F1", 100, 60)["payload"], "ts": at(60).replace("Z", "+00:00")},  # the same fill
+    {**fill("F1", 100, 60)["payload"], "ts": "2026-03-10T09:36:00-05:00"},  # the same fill
+    {**fill("F1", 100, 60)["payload"], "side": None},  # the same fill
+    {**fill("F1", 100, 60)["payload"], "price": 20.010000000000005},  # the next float after 20.01
+    {**fill("F1", 100, 60)["payload"], "ts": at(60.000001)},
+    {**fill("F1", 100, 60)["payload"], "side": "buy"},
+    {**fill("F1", 100, 60)["payload"], "price": 20},
+    {**fill("F1", 100, 60)["payload"], "price": 20.0},
+    fill("F1", 101, 60)["payload"],
+    fill("F2", 100, 60)["payload"],
+    fill("F1", 100, 60, order_id="ORD2")["payload"],
+]
+
+
+def test_fill_identity_decides_as_the_message_text() -> None:
+    """Two fills are copies for the replayer exactly when topic and JSON text of both are equal."""
+    from tracker.replay import _identity
+    from tracker.wire import decode
+
+    messages = [
+        (f"tracker/fills/{p['order_id']}", decode(f"tracker/fills/{p['order_id']}", p))
+        for p in FILL_VARIANTS
+    ]
+    pairs = [(a, b) for a in messages for b in messages]
+    expected = [
+        (ta, a.model_dump_json()) == (tb, b.model_dump_json()) for (ta, a), (tb, b) in pairs
+    ]
+    actual = [_identity(ta, a) == _identity(tb, b) for (ta, a), (tb, b) in pairs]
+    # Equal pairs: the five ways of writing the first fill, the two prices of 20, six singles.
+    assert (expected, 5 * 5 + 2 * 2 + 6) == (actual, sum(expected))
+
+
+def test_fill_written_differently_is_still_a_redelivery(tmp_path: Path) -> None:
+    """A fill whose line differs only in how it writes the same values is a redelivery."""
+    first = fill("F1", 100, 60)
+    second = {**first, "payload": {**first["payload"], "quantity": 100.0, "side": None}}
+    path = write(tmp_path, [order(0), first, second])
+    errors, summary = run_file(path)
+    expected = ([], 1, 100)
+    assert expected == (errors, summary["replay"]["redelivered"], filled(summary))
+
+
 def test_copy_of_a_rejected_line_is_rejected_again(tmp_path: Path) -> None:
     """Only accepted messages count as redelivered: a repeated bad fill is two errors."""
     line = fill("F1", 100, 60, order_id="ORD9")

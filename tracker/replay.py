@@ -66,6 +66,7 @@ from tracker.records import Record
 from tracker.wire import (
     AlertMessage,
     ErrorMessage,
+    FillMessage,
     Inbound,
     Outbound,
     StatusMessage,
@@ -366,7 +367,7 @@ class Replayer:
         self._last: datetime | None = None
         self._recorded: datetime | None = None
         self._next_tick: datetime | None = None  # the first derived tick after _last
-        self._seen: set[bytes] = set()
+        self._seen: set[Identity] = set()
         self.lines = 0
         self.accepted = 0
         self.redelivered = 0
@@ -389,8 +390,8 @@ class Replayer:
         ``handle_many`` call where it has one, so that the bins of a bin close share a solve.
         """
         results: list[list[Outbound]] = [[] for _ in records]
-        pending: list[tuple[int, Inbound, int, bytes | None, bool]] = []
-        pending_keys: set[bytes] = set()
+        pending: list[tuple[int, Inbound, int, Identity | None, bool]] = []
+        pending_keys: set[Identity] = set()
 
         def flush() -> None:
             events = [entry[1] for entry in pending]
@@ -464,7 +465,7 @@ class Replayer:
 
     def _stage(
         self, record: Record | BadLine
-    ) -> ErrorMessage | tuple[Inbound, bytes | None, datetime | None]:
+    ) -> ErrorMessage | tuple[Inbound, Identity | None, datetime | None]:
         """The line's own checks: its error, or the decoded message, its identity and time."""
         if isinstance(record, BadLine):
             when = _parse_ts_or_none(record.ts)
@@ -679,8 +680,21 @@ def _message_time(message: Inbound) -> datetime | None:
     return ts if isinstance(ts, datetime) else None
 
 
-def _identity(topic: str, message: Inbound) -> bytes:
-    """A digest that two copies of the same message share (and different messages do not)."""
+#: What tells two accepted messages apart (see :func:`_identity`).
+Identity = bytes | tuple[object, ...]
+
+
+def _identity(topic: str, message: Inbound) -> Identity:
+    """A key that two copies of the same message share (and different messages do not).
+
+    The key is the topic and the message's JSON text (as a digest). A fill -- nearly every line
+    of a recording -- needs no text: its fields are strings, ints, positive finite floats, at
+    most a side, and a UTC time, and for such values equal means equal JSON text (no -0.0, no
+    NaN, no 1 vs 1.0, no two offsets of one time), so the tuple of its values decides exactly as
+    the text would, about ten times cheaper. A test holds the two to the same verdicts.
+    """
+    if type(message) is FillMessage:
+        return (topic, *message.__dict__.values())
     digest = hashlib.blake2b(topic.encode(), digest_size=16)
     digest.update(b"\x00")
     digest.update(message.model_dump_json().encode())
