@@ -297,6 +297,7 @@ class Engine:
         root: str = DEFAULT_ROOT,
     ) -> None:
         self.config = config or EngineConfig()
+        self._grace = timedelta(seconds=self.config.expiry_grace_seconds)
         self.root = root
         self._profiles: dict[str, Profile] = dict(profiles or {})
         self._orders: dict[str, _Order] = {}
@@ -376,6 +377,9 @@ class Engine:
             if isinstance(staged, list):
                 flush()
                 results.append(staged)
+                continue
+            if not staged.jobs and not group:  # nothing to solve and nothing waiting: done now
+                results.append(self._conclude(staged, []))
                 continue
             group.append(staged)
             if isinstance(event, BinMessage) and all(
@@ -626,7 +630,7 @@ class Engine:
             order = self._orders[order_id]
             if order.life.state is State.PENDING:
                 self._start(order, now)
-        grace = timedelta(seconds=self.config.expiry_grace_seconds)
+        grace = self._grace
         while self._ends and self._ends[0][0] + grace <= now:
             end, order_id = heapq.heappop(self._ends)
             order = self._orders[order_id]
