@@ -190,7 +190,7 @@ def test_iteration_limit_raises_solve_error(monkeypatch: pytest.MonkeyPatch) -> 
         inventory_penalty=1e-6,
         penalty_exponent=1.5,
     )
-    with pytest.raises(SolveError, match="did not converge in 2 iterations$"):
+    with pytest.raises(SolveError, match=r"did not converge in 2 iterations$"):
         solve(general)
     riccati = Problem(quantity=5e4, bins=20, temporary_impact=1e-3, inventory_penalty=1e-6)
     with pytest.raises(SolveError, match=r"in 2 iterations \(problem 1 of the batch\)"):
