@@ -6,6 +6,7 @@ Lane Exchange (HLX).
 
 from __future__ import annotations
 
+import gc
 import json
 from collections.abc import Mapping
 from datetime import UTC, datetime, timedelta
@@ -344,6 +345,25 @@ def test_two_replays_are_byte_identical(tmp_path: Path) -> None:
     assert [(tmp_path / "a" / n).read_bytes() for n in OUTPUT_FILES] == [
         (tmp_path / "b" / n).read_bytes() for n in OUTPUT_FILES
     ]
+
+
+def test_replay_leaves_the_garbage_collector_as_it_found_it(tmp_path: Path) -> None:
+    """replay() freezes what each chunk leaves behind and unfreezes it at the end."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60), "oops"])
+    replay(read_input(path), make_engine())
+    assert 0 == gc.get_freeze_count()
+
+
+def test_replay_keeps_a_callers_frozen_objects_frozen(tmp_path: Path) -> None:
+    """A caller that froze objects itself finds them still frozen, and no more, after replay()."""
+    path = write(tmp_path, [order(0), fill("F1", 100, 60)])
+    gc.freeze()
+    try:
+        frozen = gc.get_freeze_count()
+        replay(read_input(path), make_engine())
+        assert frozen == gc.get_freeze_count()
+    finally:
+        gc.unfreeze()
 
 
 class Spy:

@@ -51,6 +51,7 @@ gives the same outputs, and :func:`write_outputs` writes them byte for byte the 
 
 from __future__ import annotations
 
+import gc
 import hashlib
 import json
 import math
@@ -572,11 +573,23 @@ def replay(
     )
     result = ReplayResult()
     chunk = 2048
-    for start in range(0, len(lines), chunk):
-        for outputs in replayer.feed_many(lines[start : start + chunk]):
-            result.add(outputs)
-        if progress is not None and start + chunk < len(lines):
-            progress(start + chunk)
+    # What a chunk leaves behind (the engine's state, the outputs) lives until the replay ends,
+    # yet Python's cyclic collector scans it again at every full collection, and those grow with
+    # the day: about a fifth of a long replay. gc.freeze() after each chunk moves the survivors
+    # out of its reach; unfreeze() at the end hands them back, with any cycles among them.
+    # Left alone when the caller has frozen objects of its own.
+    freeze = gc.get_freeze_count() == 0
+    try:
+        for start in range(0, len(lines), chunk):
+            for outputs in replayer.feed_many(lines[start : start + chunk]):
+                result.add(outputs)
+            if freeze:
+                gc.freeze()
+            if progress is not None and start + chunk < len(lines):
+                progress(start + chunk)
+    finally:
+        if freeze:
+            gc.unfreeze()
     if progress is not None:
         progress(len(lines))
     result.summary = finish_summary(engine, replayer)
