@@ -326,8 +326,14 @@ def run_replay(args: argparse.Namespace) -> None:
 
 
 def run_close(args: argparse.Namespace) -> None:
-    """Part 2: bin close time against the solver reference."""
+    """Part 2: bin close time against the solver reference and the machine's decode speed."""
+    # The machine's speed in the same minutes (shared machines drift by 1.5x within an hour):
+    # the replay part's decode reference on a small day, before and after the closes.
+    sample = make_day(5, 2, 20_000)
+    _, before = reference_rate(sample)
     times, solving, reference = bin_close_times(args.close_orders, args.closes)
+    _, after = reference_rate(sample)
+    decode_rate = 0.5 * (before + after)
     share = 100 * statistics.median(solving) / statistics.median(times)
     print(
         f"bin close re-planning {args.close_orders:,} working orders ({len(times)} closes), CPU "
@@ -338,6 +344,11 @@ def run_close(args: argparse.Namespace) -> None:
     print(
         f"reference: solve_batch alone on the same {args.close_orders:,} problems: "
         f"{reference:.1f} ms CPU; a bin close costs {percentile(times, 50) / reference:.1f}x that"
+    )
+    print(
+        f"reference: json.loads + wire.decode here: {decode_rate:,.0f} lines/s ({before:,.0f} "
+        f"before the closes, {after:,.0f} after); the p50 close takes as long as decoding "
+        f"{percentile(times, 50) / 1000 * decode_rate:,.0f} lines"
     )
 
 
