@@ -29,8 +29,10 @@ Three paths, chosen per problem:
   of numbers near 1), so a gap within the tolerance and a residual that has stopped improving
   end it too. The method, with its scaling and starting point, is compiled
   (``tracker/_kernel.c``, whose comments describe it in full): at N = 78 an iteration is a few
-  thousand flops, which numpy spent mostly in call overhead. The recursion of the riccati path
-  is compiled there too; the choice of path and the costing of the answer stay here.
+  thousand flops, which numpy spent mostly in call overhead. The general problems of a batch go
+  to it in one call, laid end to end, each solved on its own (so a problem's answer never depends
+  on the others). The recursion of the riccati path and the costing of a final schedule are
+  compiled there too; the choice of path and the :class:`Schedule` are made here.
 
 Bins whose cap is zero cannot trade: they are taken out before solving (their risk weights are
 folded into the neighbouring inventory they share) and put back as zero trades.
@@ -44,7 +46,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Final
+from typing import Final, NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -388,14 +390,14 @@ def _interior_point(
     constant).
     """
     parts = [_tradeable(problem) for problem in problems]
-    sizes = np.array([part[1].size for part in parts], dtype=np.int64)
+    sizes = np.array([part.h.size for part in parts], dtype=np.int64)
     out = np.empty(int(sizes.sum()))
     iterations = np.empty(len(problems), dtype=np.int64)
     _kernel.interior_point(
-        np.concatenate([part[1] for part in parts]),
-        np.concatenate([part[2] for part in parts]),
-        np.concatenate([part[3] for part in parts]),
-        np.concatenate([part[4] for part in parts]),
+        np.concatenate([part.h for part in parts]),
+        np.concatenate([part.k for part in parts]),
+        np.concatenate([part.c for part in parts]),
+        np.concatenate([part.caps for part in parts]),
         out,
         sizes,
         iterations,
@@ -407,36 +409,42 @@ def _interior_point(
         tolerance,
         _MAX_ITERATIONS,
     )
-    solved = []
-    for problem, (active, *_), shares in zip(
+    solved: list[FloatArray] = []
+    for problem, part, shares in zip(
         problems, parts, np.split(out, np.cumsum(sizes)[:-1]), strict=True
     ):
-        if active is None:
+        if part.active is None:
             solved.append(shares.copy())
         else:
             trades = np.zeros(problem.bins)
-            trades[active] = shares
+            trades[part.active] = shares
             solved.append(trades)
     return solved, iterations
 
 
-def _tradeable(
-    problem: Problem,
-) -> tuple[npt.NDArray[np.intp] | None, FloatArray, FloatArray, FloatArray, FloatArray]:
-    """The bins that can trade (``None``: all), and their fixed cost, impact, risk and caps."""
+class _Tradeable(NamedTuple):
+    """The bins of a problem that can trade (``active``; ``None``: all of them) and their data."""
+
+    active: npt.NDArray[np.intp] | None
+    h: FloatArray  # fixed cost
+    k: FloatArray  # temporary impact
+    c: FloatArray  # risk weight, with those of the bins that cannot trade folded in
+    caps: FloatArray  # inf where none
+
+
+def _tradeable(problem: Problem) -> _Tradeable:
+    """The problem without the bins whose cap is zero (see :func:`_interior_point`)."""
     caps = problem.cap_array
     if problem.caps is None or (caps > 0.0).all():
-        return None, problem.fixed_cost, problem.temporary_impact, problem.inventory_penalty, caps
+        return _Tradeable(
+            None, problem.fixed_cost, problem.temporary_impact, problem.inventory_penalty, caps
+        )
     active = (caps > 0.0).nonzero()[0]
     owner = np.searchsorted(active, np.arange(problem.bins), side="right") - 1
     folded = np.zeros(active.size)
     np.add.at(folded, owner[owner >= 0], problem.inventory_penalty[owner >= 0])
-    return (
-        active,
-        problem.fixed_cost[active],
-        problem.temporary_impact[active],
-        folded,
-        caps[active],
+    return _Tradeable(
+        active, problem.fixed_cost[active], problem.temporary_impact[active], folded, caps[active]
     )
 
 
