@@ -71,11 +71,6 @@ COST_TERMS: Final = (
 TOLERANCE: Final = 1e-10
 
 _MAX_ITERATIONS: Final = 200
-#: What the compiled kernel's negative iteration counts mean (-1 in :func:`_kernel_failure`).
-_KERNEL_FAILURES: Final = {
-    -2: "singular Newton system in the interior-point method",
-    -3: "the interior-point iterate became non-finite",
-}
 
 
 @dataclass(frozen=True, eq=False)
@@ -449,7 +444,11 @@ def _tradeable(problem: Problem) -> _Tradeable:
 
 
 def _kernel_failure(code: int) -> str:
-    """What a negative iteration count from the kernel means."""
+    """What a negative iteration count from the kernel means (codes of ``tracker/_kernel.c``)."""
     if code == -1:
         return f"the interior-point method did not converge in {_MAX_ITERATIONS} iterations"
-    return _KERNEL_FAILURES.get(code, f"interior-point kernel failed (code {code})")
+    if code == -2:
+        return "singular Newton system in the interior-point method"
+    if code == -3:
+        return "the interior-point iterate became non-finite"
+    return f"interior-point kernel failed (code {code})"
