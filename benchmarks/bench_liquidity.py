@@ -22,10 +22,12 @@ import numpy as np
 import pandas as pd
 
 from tracker import solve_batch
-from tracker.liquidity import ObservedBin, Profile, calibrate, forecast
-from tracker.market import MarketParameters, simulate_days, trading_days
-from tracker.model import build_problem, preferences
-from tracker.session import Session
+from tracker.core.calibration import calibrate
+from tracker.core.forecast import ObservedBin, forecast
+from tracker.core.formulation import build_problem, preferences
+from tracker.core.profiles import Profile
+from tracker.core.session import Session
+from tracker.sim.market import MarketParameters, simulate_days, trading_days
 
 
 def _history(symbols: int, days: int) -> pd.DataFrame:

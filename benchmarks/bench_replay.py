@@ -8,7 +8,7 @@ Figures printed:
 
 1. Replay throughput, messages per second, over the whole day from the JSON Lines file
    (``read_jsonl`` + ``replay``, ticks derived every second as in live), against two references
-   on the same lines: ``json.loads`` + :func:`tracker.wire.decode` alone (parse and pydantic
+   on the same lines: ``json.loads`` + :func:`tracker.edge.wire.decode` alone (parse and pydantic
    validation: the floor any replay pays), and the whole replay shell on a null engine. The
    difference is the engine's share. Target: >= 20,000 messages/s.
 2. One bin close that re-plans 1,000 working orders on one symbol: the time of
@@ -39,9 +39,10 @@ from typing import Any
 
 import numpy as np
 
-from tracker.replay import read_jsonl, replay
-from tracker.session import Session
-from tracker.wire import decode
+from tracker.core.session import Session
+from tracker.edge.recordings import read_jsonl
+from tracker.edge.wire import decode
+from tracker.shell.replay import replay
 
 DAY = date(2026, 3, 10)
 ROOT = "tracker"
@@ -175,7 +176,7 @@ def shell_rate(path: Path) -> tuple[float, float]:
 def replay_rate(path: Path, profile: bool) -> tuple[float, float, float, dict[str, Any]]:
     """CPU seconds and wall seconds to read and replay the file on a fresh engine, the rate
     (lines per CPU second), and the replay counts."""
-    from tracker.engine import Engine
+    from tracker.core.engine import Engine
 
     engine = Engine()
     profiler = cProfile.Profile() if profile else None
@@ -202,10 +203,10 @@ def bin_close_times(orders: int, closes: int) -> tuple[list[float], list[float],
         engine's :func:`tracker.solve_batch` calls (ms); and the CPU time (ms, median of three) of
         the reference ``solve_batch`` of the last close's problems, called on its own.
     """
-    import tracker.engine as engine_module
+    import tracker.core.engine as engine_module
     from tracker import solve_batch
-    from tracker.engine import Engine
-    from tracker.wire import BinMessage, OrderMessage
+    from tracker.core.engine import Engine
+    from tracker.edge.wire import BinMessage, OrderMessage
 
     captured: dict[str, Any] = {"seconds": 0.0, "problems": []}
 

@@ -176,7 +176,7 @@ async def async_wait_until(predicate: Callable[[], bool], timeout: float, what: 
 
 @functools.lru_cache(maxsize=1)
 def _day() -> tuple[tuple[str, bytes, str], ...]:
-    from tracker.scenario import run_day
+    from tracker.sim.scenario import run_day
 
     rows = []
     for record in run_day().records:
@@ -190,7 +190,7 @@ def _day() -> tuple[tuple[str, bytes, str], ...]:
 
 
 def day_messages(root: str) -> list[tuple[str, bytes]]:
-    """The invented demo day (tracker.scenario) as ``(topic, payload)`` under ``root``.
+    """The invented demo day (tracker.sim.scenario) as ``(topic, payload)`` under ``root``.
 
     It is the closed-loop day recorded in-process, published open-loop: orders, bins, fills, the
     scenario's deliberately malformed messages and its one exact redelivery.
@@ -206,7 +206,7 @@ def day_start() -> str:
 
 def journaled(path: Path, root: str) -> list[tuple[str, bytes]]:
     """The non-tick records of a journal as ``(topic, payload)``, in order (read-only)."""
-    from tracker.journal import read_journal
+    from tracker.shell.journal import read_journal
 
     if not path.exists():
         return []
@@ -391,10 +391,10 @@ class Collector:
 
 def replay_by_topic(journal: Path, root: str) -> tuple[dict[str, list[bytes]], dict[str, Any]]:
     """Replay a journal with a fresh engine: outputs by topic (encoded) and the summary."""
-    from tracker.engine import Engine
-    from tracker.journal import read_journal
-    from tracker.replay import replay
-    from tracker.wire import encode, topic_of
+    from tracker.core.engine import Engine
+    from tracker.edge.wire import encode, topic_of
+    from tracker.shell.journal import read_journal
+    from tracker.shell.replay import replay
 
     result = replay(read_journal(journal), Engine(root=root), root)
     by_topic: dict[str, list[bytes]] = {}

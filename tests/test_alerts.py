@@ -7,8 +7,8 @@ from datetime import UTC, datetime
 
 import pytest
 
-from tracker import alerts
-from tracker.alerts import AlertBook, AlertConfig, Check
+from tracker.core import alerts
+from tracker.core.alerts import AlertBook, AlertConfig, Check
 from tracker.errors import InputError
 
 TS = datetime(2026, 3, 2, 15, 0, tzinfo=UTC)

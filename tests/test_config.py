@@ -6,8 +6,8 @@ from pathlib import Path
 
 import pytest
 
-from tracker.config import Secret, load_settings, parse_broker_url, validate_root
 from tracker.errors import InputError
+from tracker.shell.config import Secret, load_settings, parse_broker_url, validate_root
 
 
 def _write(path: Path, text: str) -> Path:
@@ -187,7 +187,7 @@ def test_run_command_refuses_bad_settings_with_exit_2(
 ) -> None:
     """tracker run checks its settings before connecting: one line on stderr, exit code 2."""
     from tracker.cli import main
-    from tracker.config import CONFIG_ENVIRONMENT, ENVIRONMENT
+    from tracker.shell.config import CONFIG_ENVIRONMENT, ENVIRONMENT
 
     for name in [*ENVIRONMENT.values(), CONFIG_ENVIRONMENT]:
         monkeypatch.delenv(name, raising=False)

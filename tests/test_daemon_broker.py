@@ -25,8 +25,8 @@ from tests.brokers import (
     replay_by_topic,
     wait_until,
 )
-from tracker.config import BrokerSettings, Settings
-from tracker.daemon import Daemon
+from tracker.shell.config import BrokerSettings, Settings
+from tracker.shell.daemon import Daemon
 
 pytestmark = pytest.mark.broker
 

@@ -24,8 +24,8 @@ from tests.brokers import (
     publish_all,
     wait_until,
 )
-from tracker.config import BrokerSettings, Settings
-from tracker.daemon import Daemon
+from tracker.shell.config import BrokerSettings, Settings
+from tracker.shell.daemon import Daemon
 
 pytestmark = pytest.mark.broker
 

@@ -12,9 +12,9 @@ import aiomqtt
 import pytest
 
 from tests.brokers import PrivateMosquitto
-from tracker.broker import EmbeddedBroker
 from tracker.cli import main
 from tracker.cli.demo import play_day
+from tracker.shell.broker import EmbeddedBroker
 
 FAST = "20000"  # simulated seconds per real second: the day's 23,400 s in about a second
 

@@ -13,12 +13,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from tracker.engine import Engine, EngineConfig
+from tracker.core.engine import Engine, EngineConfig
+from tracker.core.forecast import forecast
+from tracker.core.formulation import build_problem, preferences
+from tracker.core.lifecycle import State
+from tracker.core.profiles import default_profile
+from tracker.core.solve import solve
+from tracker.edge.wire import ErrorMessage, StatusMessage, TargetMessage, encode
 from tracker.errors import InputError
-from tracker.lifecycle import State
-from tracker.liquidity import default_profile, forecast
-from tracker.model import build_problem, preferences
-from tracker.solve import solve
 from tracker.testing import (
     Recorder,
     amend,
@@ -29,7 +31,6 @@ from tracker.testing import (
     order,
     tick,
 )
-from tracker.wire import ErrorMessage, StatusMessage, TargetMessage, encode
 
 OPEN = datetime(2026, 3, 2, 14, 30, tzinfo=UTC)
 GOLDEN_DAY = Path(__file__).resolve().parent.parent / "replay_data" / "day-2026-03-10-seed7.jsonl"
@@ -515,7 +516,8 @@ def described(message: StatusMessage | TargetMessage) -> tuple[object, ...]:
 
 def test_statuses_and_targets_equal_their_validated_models() -> None:
     """The engine builds status and target messages unvalidated; pydantic would build the same."""
-    from tracker.replay import read_input, replay
+    from tracker.edge.recordings import read_input
+    from tracker.shell.replay import replay
 
     engine = Engine()
     messages = [*day_of_messages(), fill("A", "done", 20_000, 19.9, ts=at(60))]
@@ -729,7 +731,7 @@ def test_solver_failure_keeps_previous_plan_and_alerts(
     recorder: Recorder, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """If the solver fails, the engine goes on: one critical alert, no new plan version."""
-    import tracker.engine as engine_module
+    import tracker.core.engine as engine_module
     from tracker.errors import SolveError
 
     started(recorder)

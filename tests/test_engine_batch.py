@@ -8,11 +8,11 @@ from pathlib import Path
 from pytest import MonkeyPatch
 
 from tracker import Problem, Schedule, solve_batch
-from tracker import engine as engine_module
-from tracker.engine import Engine
-from tracker.records import Record
-from tracker.replay import read_jsonl
-from tracker.wire import BinMessage, Inbound, OrderMessage, Tick, WireError, decode, encode
+from tracker.core import engine as engine_module
+from tracker.core.engine import Engine
+from tracker.edge.recordings import read_jsonl
+from tracker.edge.records import Record
+from tracker.edge.wire import BinMessage, Inbound, OrderMessage, Tick, WireError, decode, encode
 
 DAY = Path(__file__).resolve().parent.parent / "replay_data" / "day-2026-03-10-seed7.jsonl"
 

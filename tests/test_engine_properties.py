@@ -11,10 +11,10 @@ from typing import Any
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tracker.engine import Engine
-from tracker.lifecycle import TERMINAL
+from tracker.core.engine import Engine
+from tracker.core.lifecycle import TERMINAL
+from tracker.edge.wire import ErrorMessage, TargetMessage
 from tracker.testing import Recorder
-from tracker.wire import ErrorMessage, TargetMessage
 
 OPEN = datetime(2026, 3, 2, 14, 30, tzinfo=UTC)
 ORDER_IDS = ("A", "B", "C")

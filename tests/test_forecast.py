@@ -7,16 +7,11 @@ from datetime import date
 import numpy as np
 import pytest
 
+from tracker.core.forecast import VOLUME_SCALE_BOUNDS, ObservedBin, forecast
+from tracker.core.profiles import Profile, default_profile
+from tracker.core.session import Session
 from tracker.errors import InputError
-from tracker.liquidity import (
-    VOLUME_SCALE_BOUNDS,
-    ObservedBin,
-    Profile,
-    default_profile,
-    forecast,
-)
-from tracker.market import simulate_days, trading_days, true_profile
-from tracker.session import Session
+from tracker.sim.market import simulate_days, trading_days, true_profile
 
 DAYS = 200
 CHECKPOINTS = (0, 6, 12, 24, 39)

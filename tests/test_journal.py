@@ -11,8 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from tracker.journal import Journal, JournalError, read_journal, record_crc
-from tracker.records import Record
+from tracker.edge.records import Record
+from tracker.shell.journal import Journal, JournalError, read_journal, record_crc
 
 TS = "2026-03-02T14:30:00.000001Z"
 
@@ -125,7 +125,7 @@ def test_crc_covers_topic_payload_and_time() -> None:
 _WRITER = textwrap.dedent(
     """
     import sys
-    from tracker.journal import Journal
+    from tracker.shell.journal import Journal
     journal = Journal(sys.argv[1])
     for i in range(int(sys.argv[2])):
         journal.append_many([("tracker/fills/O", b"x" * 3000, "2026-03-02T14:30:00Z")])
@@ -168,7 +168,7 @@ def test_kill_during_appends_leaves_only_whole_records(tmp_path: Path) -> None:
     script = textwrap.dedent(
         """
         import sys
-        from tracker.journal import Journal
+        from tracker.shell.journal import Journal
         journal = Journal(sys.argv[1], durability="normal")
         i = 0
         while True:
@@ -193,9 +193,9 @@ def test_kill_during_appends_leaves_only_whole_records(tmp_path: Path) -> None:
 
 
 def _replayed(records: object) -> dict[str, list[bytes]]:
-    from tracker.engine import Engine
-    from tracker.replay import replay
-    from tracker.wire import encode
+    from tracker.core.engine import Engine
+    from tracker.edge.wire import encode
+    from tracker.shell.replay import replay
 
     result = replay(records, Engine())  # type: ignore[arg-type]
     return {
@@ -209,7 +209,7 @@ def test_export_replays_like_the_journal(
 ) -> None:
     """tracker journal export writes a JSON Lines file whose replay equals the journal's."""
     from tracker.cli import main
-    from tracker.replay import read_jsonl
+    from tracker.edge.recordings import read_jsonl
 
     order = (
         '{"type":"order","action":"new","order_id":"ZEPH-J1","symbol":"ZEPH","side":"buy",'

@@ -6,7 +6,7 @@ import itertools
 
 import pytest
 
-from tracker.lifecycle import (
+from tracker.core.lifecycle import (
     TERMINAL,
     TRANSITIONS,
     Event,

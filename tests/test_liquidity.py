@@ -9,10 +9,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from tracker.core.calibration import calibrate
+from tracker.core.profiles import Profile, default_profile
+from tracker.core.session import Session
 from tracker.errors import InputError
-from tracker.liquidity import Profile, calibrate, default_profile
-from tracker.market import MarketParameters, simulate_days, simulate_history, true_profile
-from tracker.session import Session
+from tracker.sim.market import MarketParameters, simulate_days, simulate_history, true_profile
 
 SESSION = Session()
 

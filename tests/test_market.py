@@ -8,9 +8,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from tracker.core.session import Session
 from tracker.errors import InputError
-from tracker.market import COLUMNS, MarketParameters, simulate_day, simulate_history
-from tracker.session import Session
+from tracker.sim.market import COLUMNS, MarketParameters, simulate_day, simulate_history
 
 
 @pytest.fixture(scope="module")

@@ -9,15 +9,16 @@ import numpy as np
 import pytest
 
 from tracker import solve
-from tracker.errors import InputError
-from tracker.liquidity import Profile, default_profile, forecast
-from tracker.model import (
+from tracker.core.forecast import forecast
+from tracker.core.formulation import (
     IMPACT_LAWS,
     build_problem,
     plan_order,
     preferences,
 )
-from tracker.session import Session
+from tracker.core.profiles import Profile, default_profile
+from tracker.core.session import Session
+from tracker.errors import InputError
 
 SESSION = Session()
 N = SESSION.n_bins

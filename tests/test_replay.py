@@ -16,20 +16,13 @@ from typing import Any
 import pytest
 
 from tracker.cli import main
-from tracker.engine import Engine
+from tracker.core.engine import Engine
+from tracker.edge.intake import Intake
+from tracker.edge.recordings import BadLine, read_input, read_jsonl
+from tracker.edge.records import Record
+from tracker.edge.wire import ErrorMessage, Inbound, Outbound, Tick
 from tracker.errors import InputError
-from tracker.records import Record
-from tracker.replay import (
-    OUTPUT_FILES,
-    BadLine,
-    Replayer,
-    dumps_summary,
-    read_input,
-    read_jsonl,
-    replay,
-    write_outputs,
-)
-from tracker.wire import ErrorMessage, Inbound, Outbound, Tick
+from tracker.shell.replay import OUTPUT_FILES, dumps_summary, replay, write_outputs
 
 
 def make_engine() -> Engine:
@@ -299,9 +292,9 @@ FILL_VARIANTS: list[dict[str, Any]] = [
 
 
 def test_fill_identity_decides_as_the_message_text() -> None:
-    """Two fills are copies for the replayer exactly when topic and JSON text of both are equal."""
-    from tracker.replay import _identity
-    from tracker.wire import decode
+    """Two fills are copies for the intake exactly when topic and JSON text of both are equal."""
+    from tracker.edge.intake import _identity
+    from tracker.edge.wire import decode
 
     messages = [
         (f"tracker/fills/{p['order_id']}", decode(f"tracker/fills/{p['order_id']}", p))
@@ -455,7 +448,7 @@ def test_line_without_ts_moves_ticks_by_the_message_time(tmp_path: Path) -> None
 
 def test_journal_is_replayed_with_its_own_ticks(tmp_path: Path) -> None:
     """A journal's records are fed as journaled: its ticks only, a late fill still counted."""
-    from tracker.journal import Journal
+    from tracker.shell.journal import Journal
 
     path = tmp_path / "day.sqlite"
     late = fill("F2", 50, 30)
@@ -483,7 +476,7 @@ def test_reader_keeps_raw_text_payload() -> None:
 
 def read_jsonl_text(text: str) -> list[Record | BadLine]:
     """parse lines of text as read_jsonl would."""
-    from tracker.replay import parse_line
+    from tracker.edge.recordings import parse_line
 
     return [parse_line(n, line) for n, line in enumerate(text.splitlines(), start=1)]
 
@@ -505,7 +498,7 @@ def test_missing_input_is_an_input_error(tmp_path: Path) -> None:
 def test_replayer_rejects_a_bad_tick_interval() -> None:
     """tick_seconds must be positive."""
     with pytest.raises(InputError, match="tick_seconds"):
-        Replayer(make_engine(), tick_seconds=0)
+        Intake(make_engine(), tick_seconds=0)
 
 
 def test_summary_writes_nan_as_null() -> None:
@@ -542,7 +535,7 @@ def test_cli_bad_config_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[st
 
 def test_cli_profile_named_for_another_symbol_exits_2(tmp_path: Path) -> None:
     """A profile file must be named for the symbol it holds."""
-    from tracker.liquidity import default_profile
+    from tracker.core.profiles import default_profile
 
     folder = tmp_path / "profiles"
     folder.mkdir()
@@ -576,7 +569,7 @@ def test_cli_no_progress_when_not_a_terminal(
 
 def test_cli_replays_a_journal_like_its_jsonl(tmp_path: Path) -> None:
     """A journal and a JSON Lines file with the same messages and ticks give the same outputs."""
-    from tracker.journal import Journal
+    from tracker.shell.journal import Journal
 
     tick = {"topic": "tracker/tick", "payload": {"type": "tick", "ts": at(61)}, "ts": at(61)}
     lines = [order(0), fill("F1", 100, 60), tick, fill("F2", 50, 90)]
@@ -616,7 +609,7 @@ def test_cli_config_unknown_threshold_exits_2(
 
 def test_cli_profiles_folder_is_used(tmp_path: Path) -> None:
     """With a profile for ZEPH in --profiles, the default-profile alert does not appear."""
-    from tracker.liquidity import default_profile
+    from tracker.core.profiles import default_profile
 
     folder = tmp_path / "profiles"
     folder.mkdir()

@@ -17,21 +17,10 @@ from typing import Any
 import pytest
 
 from tracker.cli import main
-from tracker.engine import Engine
-from tracker.errors import InputError
-from tracker.records import Record
-from tracker.replay import OUTPUT_FILES, read_input, replay, write_outputs
-from tracker.scenario import (
-    CANCEL,
-    SHOCK,
-    VOLUME_SHARE_CAP,
-    DayRun,
-    Scenario,
-    record_line,
-    run_day,
-    write_day,
-)
-from tracker.wire import (
+from tracker.core.engine import Engine
+from tracker.edge.recordings import read_input
+from tracker.edge.records import Record
+from tracker.edge.wire import (
     BinMessage,
     ControlMessage,
     FillMessage,
@@ -40,6 +29,18 @@ from tracker.wire import (
     TargetMessage,
     WireError,
     decode,
+)
+from tracker.errors import InputError
+from tracker.shell.replay import OUTPUT_FILES, replay, write_outputs
+from tracker.sim.scenario import (
+    CANCEL,
+    SHOCK,
+    VOLUME_SHARE_CAP,
+    DayRun,
+    Scenario,
+    record_line,
+    run_day,
+    write_day,
 )
 
 BIN = timedelta(minutes=5)
@@ -376,7 +377,7 @@ def test_simulate_day_command_writes_the_recording(tmp_path: Path) -> None:
 
 def test_payload_bytes_decode_to_the_same_message() -> None:
     """The bytes published over MQTT decode to the same message as the recorded object."""
-    from tracker.scenario import payload_bytes
+    from tracker.sim.scenario import payload_bytes
 
     record = Scenario(7).inbound_until(datetime(2026, 3, 10, 13, 29, tzinfo=UTC))[0]
     expected = decode(record.topic, record.payload)
@@ -385,7 +386,7 @@ def test_payload_bytes_decode_to_the_same_message() -> None:
 
 def test_no_fill_while_halted(closed_loop: DayRun) -> None:
     """The router sends no fill for the halted order between its halt and its resume."""
-    from tracker.scenario import HALT
+    from tracker.sim.scenario import HALT
 
     order_id, halt, resume = HALT
     zone = Scenario(7).session.zone

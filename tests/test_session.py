@@ -6,8 +6,8 @@ from datetime import UTC, date, datetime, time, timedelta
 
 import pytest
 
+from tracker.core.session import Session
 from tracker.errors import InputError
-from tracker.session import Session
 
 
 def test_default_session_has_78_bins() -> None:

@@ -17,10 +17,10 @@ from tracker import (
     Problem,
     ProblemError,
     SolveError,
-    _kernel,
     solve,
     solve_batch,
 )
+from tracker.core import _kernel
 
 
 def test_nothing_to_do() -> None:
@@ -181,7 +181,7 @@ def test_long_horizons_complete(bins: int) -> None:
 
 def test_iteration_limit_raises_solve_error(monkeypatch: pytest.MonkeyPatch) -> None:
     """A run that needs more Newton iterations than allowed is an error, never a partial answer."""
-    monkeypatch.setattr(sys.modules["tracker.solve"], "_MAX_ITERATIONS", 2)
+    monkeypatch.setattr(sys.modules["tracker.core.solve"], "_MAX_ITERATIONS", 2)
     general = Problem(
         quantity=5e4,
         bins=20,

@@ -197,7 +197,8 @@ def test_objective_value_follows_the_formula(problem: Problem, data: st.DataObje
     # The formula does not price forced completion, so such a schedule completes the order.
     done = 1.0 if problem.forced else data.draw(st.floats(0.0, 1.0))
     trades = problem.quantity * done * weights / weights.sum()
-    # The definition (tracker/problem.py) written out with plain numpy in test_solve_references.
+    # The definition (tracker/core/problem.py) written out with plain numpy in
+    # test_solve_references.
     expected = reference_objective(problem, trades)
     actual = objective_value(problem, trades)
     assert expected == pytest.approx(actual, rel=1e-10, abs=1e-9)

@@ -8,7 +8,7 @@ from typing import Any
 
 import pytest
 
-from tracker.wire import (
+from tracker.edge.wire import (
     MAX_ERROR_PAYLOAD,
     AlertMessage,
     BinMessage,

@@ -8,10 +8,9 @@ tracker advises; it does not place orders. Its output is for supervised use and 
 advice; the firm's own risk controls and the local market regulation come first.
 """
 
-from tracker.errors import InputError, ProblemError, SolveError, TrackerError
-from tracker.policy import Policy, explain
-from tracker.problem import FORCE, Problem
-from tracker.solve import (
+from tracker.core.policy import Policy, explain
+from tracker.core.problem import FORCE, Problem
+from tracker.core.solve import (
     CAPPED_SHORTFALL,
     COST_TERMS,
     OPTIMAL,
@@ -22,6 +21,7 @@ from tracker.solve import (
     solve,
     solve_batch,
 )
+from tracker.errors import InputError, ProblemError, SolveError, TrackerError
 
 __all__ = [
     "CAPPED_SHORTFALL",

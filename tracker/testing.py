@@ -2,7 +2,7 @@
 
 Use them to test an integration without a broker::
 
-    from tracker.engine import Engine
+    from tracker.core.engine import Engine
     from tracker.testing import Recorder, order, fill, bin_message, tick
 
     recorder = Recorder(Engine())
@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any, Protocol
 
-from tracker.wire import (
+from tracker.edge.wire import (
     DEFAULT_ROOT,
     AlertMessage,
     BinMessage,

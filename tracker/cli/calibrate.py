@@ -1,7 +1,7 @@
 """``tracker calibrate``: estimate a liquidity profile from per-bin history.
 
-The shell around :func:`tracker.liquidity.calibrate`: it reads the CSV or Parquet file (with a
-progress bar on long inputs), records each row's line so that rejected rows can be reported by
+The shell around :func:`tracker.core.calibration.calibrate`: it reads the CSV or Parquet file (with
+a progress bar on long inputs), records each row's line so that rejected rows can be reported by
 line, writes PROFILE.json and prints the quality report.
 """
 
@@ -16,9 +16,10 @@ from datetime import time
 from pathlib import Path
 from typing import Any
 
+from tracker.core.calibration import HISTORY_COLUMNS, calibrate
+from tracker.core.profiles import Profile
+from tracker.core.session import Session, parse_clock
 from tracker.errors import InputError
-from tracker.liquidity import HISTORY_COLUMNS, Profile, calibrate
-from tracker.session import Session, parse_clock
 
 DESCRIPTION = """\
 Estimate a liquidity profile (PROFILE.json) for one symbol from per-bin history.

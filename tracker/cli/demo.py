@@ -1,11 +1,13 @@
 """``tracker demo``: one invented trading day, live over MQTT, with no outside service.
 
-The demo starts an embedded MQTT broker (:mod:`tracker.broker`, pure Python) on a free loopback
-port -- or uses ``--broker URL`` -- and on it:
+The demo starts an embedded MQTT broker (:mod:`tracker.shell.broker`, pure Python) on a free
+loopback port -- or uses ``--broker URL`` -- and on it:
 
-* the daemon (:class:`tracker.daemon.Daemon`), exactly as ``tracker run`` runs it, journaling into
+* the daemon (:class:`tracker.shell.daemon.Daemon`), exactly as ``tracker run`` runs it, journaling
+into
   ``OUT/journal.sqlite``, on a simulated clock that runs ``--speed`` times real time;
-* the scripted market and order router of :mod:`tracker.scenario` (invented symbols ZEPH, KALO and
+* the scripted market and order router of :mod:`tracker.sim.scenario` (invented symbols ZEPH, KALO
+and
   MIRA on the invented venue Harbour Lane Exchange, HLX): it publishes bins, orders and fills when
   they fall due on that clock, and works the targets the daemon publishes (it reads them from the
   broker like any router would).
@@ -182,8 +184,8 @@ async def play_day(
     Returns:
         Where the outputs are, and the comparison of the live run with its replay.
     """
-    from tracker.broker import EmbeddedBroker
-    from tracker.config import Settings, parse_broker_url, validate_root
+    from tracker.shell.broker import EmbeddedBroker
+    from tracker.shell.config import Settings, parse_broker_url, validate_root
 
     validate_root(root, field="--root")
     out.mkdir(parents=True, exist_ok=True)
@@ -208,7 +210,7 @@ async def play_day(
             username=username or "demo",
             password=password,
         )
-        from tracker.scenario import Scenario
+        from tracker.sim.scenario import Scenario
 
         scenario = Scenario(seed, root=root)
         first = scenario.next_time()
@@ -267,8 +269,8 @@ async def _run_live(
     settings: Any, scenario: Any, clock: _SimClock, show_table: bool
 ) -> dict[str, list[bytes]]:
     """Daemon + scripted market/router until the day is over; the daemon's outputs by kind."""
-    from tracker.daemon import Daemon
-    from tracker.wire import encode
+    from tracker.edge.wire import encode
+    from tracker.shell.daemon import Daemon
 
     published: dict[str, list[bytes]] = {}
     table = _OrderTable()
@@ -295,8 +297,8 @@ async def _drive(
     """Publish the scenario's messages as they fall due; feed the daemon's targets to its router."""
     import aiomqtt
 
-    from tracker.bus import topic_matches
-    from tracker.wire import StatusMessage, TargetMessage
+    from tracker.edge.wire import StatusMessage, TargetMessage
+    from tracker.shell.bus import topic_matches
 
     broker = settings.broker
     root = settings.root
@@ -403,10 +405,10 @@ class _SimClock:
 
 
 def _replay(journal: Path, out: Path, root: str) -> tuple[dict[str, list[bytes]], dict[str, Any]]:
-    from tracker.engine import Engine
-    from tracker.journal import read_journal
-    from tracker.replay import replay, write_outputs
-    from tracker.wire import encode
+    from tracker.core.engine import Engine
+    from tracker.edge.wire import encode
+    from tracker.shell.journal import read_journal
+    from tracker.shell.replay import replay, write_outputs
 
     result = replay(read_journal(journal), Engine(root=root), root)
     write_outputs(result, out)

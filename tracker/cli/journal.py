@@ -9,8 +9,8 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
+from tracker.edge.records import Record
 from tracker.errors import InputError
-from tracker.records import Record
 
 DESCRIPTION = """\
 Work with the journal that `tracker run` writes (SQLite; every inbound message and tick, in the
@@ -98,7 +98,7 @@ def export_lines(records: Iterable[Record]) -> Iterable[tuple[str, bool]]:
 
 def run_export(args: argparse.Namespace) -> int:
     """Export JOURNAL to FILE; print how many lines; return 0."""
-    from tracker.journal import read_journal
+    from tracker.shell.journal import read_journal
 
     out = Path(args.out)
     count = inexact = 0
@@ -123,7 +123,7 @@ def run_export(args: argparse.Namespace) -> int:
 
 def run_info(args: argparse.Namespace) -> int:
     """Print a short account of JOURNAL; return 0."""
-    from tracker.journal import published_through, read_journal
+    from tracker.shell.journal import published_through, read_journal
 
     kinds: dict[str, int] = {}
     first = last = None

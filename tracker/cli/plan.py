@@ -1,6 +1,7 @@
 """``tracker plan``: solve one execution problem and print the schedule.
 
-``--problem FILE`` takes the canonical problem as a JSON file (fields of :mod:`tracker.problem`).
+``--problem FILE`` takes the canonical problem as a JSON file (fields of
+:mod:`tracker.core.problem`).
 """
 
 from __future__ import annotations
@@ -12,10 +13,10 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from tracker.core.policy import Policy, explain
+from tracker.core.problem import FIELDS, Problem
+from tracker.core.solve import Schedule, solve
 from tracker.errors import InputError
-from tracker.policy import Policy, explain
-from tracker.problem import FIELDS, Problem
-from tracker.solve import Schedule, solve
 
 PROBLEM_HELP = (
     "JSON file of the canonical problem with the fields "

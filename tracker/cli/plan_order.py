@@ -2,8 +2,8 @@
 
 ``tracker plan --order ORDER.json --profile PROFILE.json [--arrival-price P]`` reads an order
 message of the wire contract, builds the canonical problem from the profile and the preferences
-(:mod:`tracker.model`), solves it, and prints the plan per bin with its expected cost. The
-``plan`` module adds these flags with :func:`add_order_arguments` and hands over to
+(:mod:`tracker.core.formulation`), solves it, and prints the plan per bin with its expected cost.
+The ``plan`` module adds these flags with :func:`add_order_arguments` and hands over to
 :func:`run_order` when ``--order`` is given.
 """
 
@@ -15,9 +15,9 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from tracker.core.formulation import IMPACT_LAWS, URGENCY, OrderPlan, plan_order, preferences
+from tracker.core.profiles import Profile, default_profile
 from tracker.errors import InputError
-from tracker.liquidity import Profile, default_profile
-from tracker.model import IMPACT_LAWS, URGENCY, OrderPlan, plan_order, preferences
 
 ORDER_HELP = (
     "JSON order message of the wire contract (type order, action new: order_id, symbol, side, "
@@ -74,7 +74,7 @@ def _read_json(path: Path, what: str) -> Any:
 
 def read_order(path: Path) -> Any:
     """Read and validate ORDER.json as a wire order message (a new order)."""
-    from tracker.wire import OrderMessage, decode
+    from tracker.edge.wire import OrderMessage, decode
 
     data = _read_json(path, "order file")
     if not isinstance(data, dict):
@@ -127,7 +127,7 @@ def run_order(args: argparse.Namespace) -> int:
     )
     policy = None
     if args.explain:
-        from tracker.policy import explain
+        from tracker.core.policy import explain
 
         policy = explain(plan.problem)
     if args.format == "json":

@@ -4,18 +4,19 @@ from __future__ import annotations
 
 import argparse
 import json
+import sys
 import tomllib
 from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from tracker.edge.wire import DEFAULT_ROOT
 from tracker.errors import InputError
-from tracker.wire import DEFAULT_ROOT
 
 if TYPE_CHECKING:
-    from tracker.engine import EngineConfig
-    from tracker.liquidity import Profile
+    from tracker.core.engine import EngineConfig
+    from tracker.core.profiles import Profile
 
 DESCRIPTION = """\
 Replay a recorded day through the engine, deterministically, and write its outputs.
@@ -36,7 +37,7 @@ When the input holds no tick lines, ticks are derived from the lines' times ever
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Add the ``replay`` sub-command."""
     from tracker.cli import CAUTION
-    from tracker.replay import DEFAULT_TICK_SECONDS
+    from tracker.edge.intake import DEFAULT_TICK_SECONDS
 
     parser = subparsers.add_parser(
         "replay",
@@ -84,9 +85,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 def run(args: argparse.Namespace) -> int:
     """Replay INPUT into DIR; print a one-line account; return 0."""
-    from tracker.config import validate_root
-    from tracker.engine import Engine
-    from tracker.replay import read_input, replay, stderr_is_terminal, write_outputs
+    from tracker.core.engine import Engine
+    from tracker.edge.recordings import read_input
+    from tracker.shell.config import validate_root
+    from tracker.shell.replay import replay, write_outputs
 
     config, config_root = load_config(Path(args.config)) if args.config else (None, None)
     root = validate_root(args.root or config_root or DEFAULT_ROOT, field="--root")
@@ -125,7 +127,7 @@ def load_config(path: Path) -> tuple[EngineConfig, str | None]:
     Raises:
         InputError: The file is missing, not TOML/JSON, or a threshold is unknown or out of range.
     """
-    from tracker.engine import EngineConfig
+    from tracker.core.engine import EngineConfig
 
     data = _read_mapping(path, "--config")
     root: str | None = None
@@ -144,7 +146,7 @@ def load_profiles(folder: Path) -> dict[str, Profile]:
         InputError: The folder is missing, a file is not a profile, or a file's name does not match
             the symbol inside it.
     """
-    from tracker.liquidity import Profile
+    from tracker.core.profiles import Profile
 
     if not folder.is_dir():
         raise InputError(f"{folder} is not a folder", field="--profiles")
@@ -205,3 +207,8 @@ def _progress_bar(total: int, show: bool) -> Iterator[Callable[[int], None] | No
             bar.update(task, completed=done)
 
         yield advance
+
+
+def stderr_is_terminal() -> bool:
+    """Whether stderr is a terminal (the progress bar shows only then, unless asked for)."""
+    return sys.stderr.isatty()

@@ -32,7 +32,7 @@ TRACKER_BROKER_KEY, TRACKER_CONFIG) or the TOML file of --config ([broker], [dae
 tables). Flags win over the environment, which wins over the file. Passwords never appear in logs.
 """
 
-#: Flag destination -> dotted setting name of :func:`tracker.config.load_settings`.
+#: Flag destination -> dotted setting name of :func:`tracker.shell.config.load_settings`.
 FLAGS = {
     "broker": "broker.url",
     "username": "broker.username",
@@ -135,8 +135,8 @@ def add_daemon_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def settings_from_args(args: argparse.Namespace, environ: dict[str, str] | None = None) -> Any:
-    """Build :class:`tracker.config.Settings` from parsed flags, the environment and --config."""
-    from tracker.config import load_settings
+    """Build :class:`tracker.shell.config.Settings` from flags, the environment and --config."""
+    from tracker.shell.config import load_settings
 
     flags = {name: getattr(args, dest, None) for dest, name in FLAGS.items()}
     return load_settings(flags, os.environ if environ is None else environ, args.config)
@@ -199,7 +199,7 @@ def run(args: argparse.Namespace) -> int:
 
 async def serve(settings: Any) -> int:
     """Run one daemon with signal handlers installed; 0 after an orderly stop."""
-    from tracker.daemon import Daemon
+    from tracker.shell.daemon import Daemon
 
     loop = asyncio.get_running_loop()
     async with Daemon(settings) as daemon:

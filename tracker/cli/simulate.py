@@ -102,7 +102,7 @@ def write_history(frame: Any, path: Path, header: str) -> None:
 
 def run_history(args: argparse.Namespace) -> int:
     """Simulate and write the history."""
-    from tracker.market import simulate_history
+    from tracker.sim.market import simulate_history
 
     session = session_from_args(args)
     frame = simulate_history(args.symbol, args.days, args.seed, session, first_day=args.first_day)

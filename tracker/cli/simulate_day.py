@@ -29,7 +29,7 @@ outputs of this run byte for byte (--outputs DIR writes them here too).
 def add_day_parser(actions: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Add the ``day`` action to the ``simulate`` command's actions."""
     from tracker.cli import CAUTION
-    from tracker.scenario import DAY
+    from tracker.sim.scenario import DAY
 
     parser = actions.add_parser(
         "day",
@@ -66,9 +66,9 @@ def add_day_parser(actions: argparse._SubParsersAction[argparse.ArgumentParser])
 
 def run(args: argparse.Namespace) -> int:
     """Run the day, write the recording (and the outputs if asked); print a one-line account."""
-    from tracker.config import validate_root
-    from tracker.replay import write_outputs
-    from tracker.scenario import run_day, write_day
+    from tracker.shell.config import validate_root
+    from tracker.shell.replay import write_outputs
+    from tracker.sim.scenario import run_day, write_day
 
     try:
         day = date.fromisoformat(args.date)

@@ -13,8 +13,9 @@ tests in ``tests/test_demo.py`` keep checking it):
   mark, so a daemon that reconnects gets what was published while it was away.
 * On every connect amqtt also sends the connecting client the retained messages of *every*
   subscription known to the broker, whoever made it (at QoS 0, retain flag set). A client may
-  therefore receive messages on topics it never subscribed to; :mod:`tracker.bus` drops anything
-  outside its own subscriptions for that reason (and any client of the demo should do the same).
+  therefore receive messages on topics it never subscribed to; :mod:`tracker.shell.bus` drops
+  anything outside its own subscriptions for that reason (and any client of the demo should do the
+  same).
 """
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Solve the canonical execution problem (see :mod:`tracker.problem` for the formula).
+"""Solve the canonical execution problem (see :mod:`tracker.core.problem` for the formula).
 
 Theory of operation
 -------------------
@@ -28,7 +28,7 @@ Three paths, chosen per problem:
   (small beta, p near 1), the dual residual has a floating-point floor (a trade is a difference
   of numbers near 1), so a gap within the tolerance and a residual that has stopped improving
   end it too. The method, with its scaling and starting point, is compiled
-  (``tracker/_kernel.c``, whose comments describe it in full): at N = 78 an iteration is a few
+  (``tracker/core/_kernel.c``, whose comments describe it in full): at N = 78 an iteration is a few
   thousand flops, which numpy spent mostly in call overhead. The general problems of a batch go
   to it in one call, laid end to end, each solved on its own (so a problem's answer never depends
   on the others). The recursion of the riccati path and the costing of a final schedule are
@@ -51,9 +51,9 @@ from typing import Final, NamedTuple
 import numpy as np
 import numpy.typing as npt
 
-from tracker import _kernel
+from tracker.core import _kernel
+from tracker.core.problem import FloatArray, Problem
 from tracker.errors import ProblemError, SolveError
-from tracker.problem import FloatArray, Problem
 
 OPTIMAL: Final = "optimal"
 CAPPED_SHORTFALL: Final = "capped_shortfall"
@@ -75,7 +75,7 @@ _MAX_ITERATIONS: Final = 200
 
 @dataclass(frozen=True, eq=False)
 class Schedule:
-    """The solution of one :class:`~tracker.problem.Problem`.
+    """The solution of one :class:`~tracker.core.problem.Problem`.
 
     Attributes:
         status: ``"optimal"``, or ``"capped_shortfall"`` when the caps cannot complete the order
@@ -158,7 +158,7 @@ def _costed(
 
     With ``settle``, a schedule that completes the order up to rounding has its last trade take
     the rounding, so that the trajectory ends at exactly zero and never below. The objective's
-    terms are summed in the compiled kernel (``tracker/_kernel.c``, ``costs``): a loop over the
+    terms are summed in the compiled kernel (``tracker/core/_kernel.c``, ``costs``): a loop over the
     bins that ran for every order of every bin close.
     """
     trajectory = np.empty(problem.bins + 1)
@@ -444,7 +444,7 @@ def _tradeable(problem: Problem) -> _Tradeable:
 
 
 def _kernel_failure(code: int) -> str:
-    """What a negative iteration count from the kernel means (codes of ``tracker/_kernel.c``)."""
+    """What a negative iteration count from the kernel means (codes of ``_kernel.c``)."""
     if code == -1:
         return f"the interior-point method did not converge in {_MAX_ITERATIONS} iterations"
     if code == -2:

@@ -6,11 +6,11 @@ estimated from any real market.
 
 Theory of operation
 -------------------
-A day of symbol ``s`` on the bins ``n`` of a :class:`~tracker.session.Session`:
+A day of symbol ``s`` on the bins ``n`` of a :class:`~tracker.core.session.Session`:
 
 * volume ``V_dn = ADV * S_d * share_n * e_dn``: the day's scale ``S_d = exp(x_d)`` follows an
   AR(1) on the log scale with Student-t innovations (heavy-tailed, autocorrelated daily volume);
-  ``share_n`` is a U shape (:func:`tracker.liquidity.intraday_shape`); ``e_dn`` is mean-one
+  ``share_n`` is a U shape (:func:`tracker.core.profiles.intraday_shape`); ``e_dn`` is mean-one
   log-normal noise, AR(1) across the bins of a day;
 * spread ``s_dn = spread_n * g_d * z_dn``: a per-bin curve widest at the open, a per-day factor and
   per-bin noise, both mean-one log-normal, floored at one tick (0.01);
@@ -37,9 +37,9 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from tracker.core.profiles import Profile, shaped_profile
+from tracker.core.session import Session
 from tracker.errors import InputError
-from tracker.liquidity import Profile, shaped_profile
-from tracker.session import Session
 
 FloatArray = npt.NDArray[np.float64]
 

@@ -45,7 +45,7 @@ import aiomqtt
 import paho.mqtt.client as paho
 import structlog
 
-from tracker.config import BrokerSettings
+from tracker.shell.config import BrokerSettings
 
 __all__ = [
     "Bus",
@@ -271,7 +271,7 @@ class Bus:
         self.connections = 0
         self.backpressure = False
         self.ignored = 0
-        self._log = structlog.get_logger("tracker.bus").bind(broker=broker.url)
+        self._log = structlog.get_logger("tracker.shell.bus").bind(broker=broker.url)
 
     # -- control ---------------------------------------------------------------------------------
 

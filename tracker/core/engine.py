@@ -3,18 +3,19 @@
 Theory of operation
 -------------------
 The engine is a pure state machine (h11 style): ``handle(event) -> outputs``. It never reads the
-clock, the network or the disk; time is the ``ts`` of the events, and :class:`~tracker.wire.Tick`
-events (injected by the shells) move time when no message arrives. The shells decode and validate
-at the edge (:func:`tracker.wire.decode`) and publish or write what the engine returns.
+clock, the network or the disk; time is the ``ts`` of the events, and
+:class:`~tracker.edge.wire.Tick` events (injected by the shells) move time when no message arrives.
+The shells decode and validate at the edge (:func:`tracker.edge.wire.decode`) and publish or write
+what the engine returns.
 
-Per parent order the engine keeps: the lifecycle (:mod:`tracker.lifecycle`, one state table), the
-*baseline* plan (made when the order starts; replaced by an amendment), the latest plan with its
+Per parent order the engine keeps: the lifecycle (:mod:`tracker.core.lifecycle`, one state table),
+the *baseline* plan (made when the order starts; replaced by an amendment), the latest plan with its
 version number, the fills (idempotent by fill id), the arrival price and the interval VWAP.
 
 Events:
 
-* ``order new``: checked against the symbol's session (:class:`~tracker.session.Session` of its
-  :class:`~tracker.liquidity.Profile`; the stated default profile when none was given, with an
+* ``order new``: checked against the symbol's session (:class:`~tracker.core.session.Session` of its
+  :class:`~tracker.core.profiles.Profile`; the stated default profile when none was given, with an
   info alert once per symbol). It is ``pending`` until its start; then it is planned over its own
   remaining bins and its first target is published. ``amend`` (quantity, end, limit price,
   participation cap, urgency, preferences) re-plans at once and resets the baseline; ``cancel``
@@ -22,11 +23,11 @@ Events:
 * ``fill``: recorded at once (status published); an overfill, a fill on an ended order and a fill
   whose price is far outside its bin's range raise alerts. A fill for an unknown order, a fill id
   seen before with different content and a fill whose side differs from the order's are rejected:
-  one :class:`~tracker.wire.ErrorMessage` each, plus a one-shot alert on the order's alert topic.
-  An exact redelivery changes nothing and returns nothing.
+  one :class:`~tracker.edge.wire.ErrorMessage` each, plus a one-shot alert on the order's alert
+  topic. An exact redelivery changes nothing and returns nothing.
 * ``bin`` (a symbol's bin closed): the intraday forecast is updated; for every working order on
   the symbol the remaining horizon is re-solved from the realized inventory -- all orders of the
-  event in one :func:`~tracker.solve.solve_batch` call -- and the next bin's target, the status
+  event in one :func:`~tracker.core.solve.solve_batch` call -- and the next bin's target, the status
   and the alerts are published. When the last price is beyond an order's limit, the next bin's
   target is zero and the plan is re-solved over the bins after it.
 * ``control``: halt or resume one order or all (a global halt also holds orders that start while
@@ -35,9 +36,11 @@ Events:
   whose end has passed, and judges stale market data.
 
 Outputs of one event are ordered by order id (symbol-level alerts first), and within an order as
-produced: target, status, alerts. Floats are rounded only on the wire (:func:`tracker.wire.encode`).
+produced: target, status, alerts. Floats are rounded only on the wire
+(:func:`tracker.edge.wire.encode`).
 
-Decisions (the alert codes, severities, thresholds and hysteresis are in :mod:`tracker.alerts`):
+Decisions (the alert codes, severities, thresholds and hysteresis are in
+:mod:`tracker.core.alerts`):
 
 * Overfill: the fill is recorded (it happened in the market), ``fill_overfill`` is raised
   (critical) and targets are never negative: remaining is ``max(quantity - filled, 0)``.
@@ -71,15 +74,15 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from tracker import alerts as rules
-from tracker.alerts import AlertBook, AlertConfig, Check
-from tracker.errors import InputError, TrackerError
-from tracker.lifecycle import AMENDABLE, LIVE, Event, Lifecycle, State, TransitionError
-from tracker.liquidity import Forecast, ObservedBin, Profile, default_profile, forecast
-from tracker.model import Preferences, build_problem, preferences
-from tracker.problem import Problem
-from tracker.solve import CAPPED_SHORTFALL, Schedule, solve, solve_batch
-from tracker.wire import (
+from tracker.core import alerts as rules
+from tracker.core.alerts import AlertBook, AlertConfig, Check
+from tracker.core.forecast import Forecast, ObservedBin, forecast
+from tracker.core.formulation import Preferences, build_problem, preferences
+from tracker.core.lifecycle import AMENDABLE, LIVE, Event, Lifecycle, State, TransitionError
+from tracker.core.problem import Problem
+from tracker.core.profiles import Profile, default_profile
+from tracker.core.solve import CAPPED_SHORTFALL, Schedule, solve, solve_batch
+from tracker.edge.wire import (
     DEFAULT_ROOT,
     AlertMessage,
     BinMessage,
@@ -96,6 +99,7 @@ from tracker.wire import (
     payload_text,
     to_json_object,
 )
+from tracker.errors import InputError, TrackerError
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -110,7 +114,8 @@ REPLAN_FAILED = "replan_failed"
 
 @dataclass(frozen=True)
 class EngineConfig(AlertConfig):
-    """Engine settings: every alert threshold (:class:`~tracker.alerts.AlertConfig`) plus these.
+    """Engine settings: every alert threshold (:class:`~tracker.core.alerts.AlertConfig`) plus
+    these.
 
     Attributes:
         expiry_grace_seconds: An order expires this long after its end (fills of its last bin
@@ -285,7 +290,7 @@ class Engine:
     Args:
         config: Thresholds and settings (defaults when ``None``).
         profiles: Liquidity profiles by symbol; a symbol without one uses
-            :func:`tracker.liquidity.default_profile` (an info alert says so, once per symbol).
+            :func:`tracker.core.profiles.default_profile` (an info alert says so, once per symbol).
         root: The topic root, to name the topic of a message the engine itself rejects.
     """
 
@@ -322,10 +327,11 @@ class Engine:
         """Apply one validated inbound event and return what to publish.
 
         Never raises on bad input: a message the engine cannot accept becomes exactly one
-        :class:`~tracker.wire.ErrorMessage` (possibly with alerts), and nothing changes.
+        :class:`~tracker.edge.wire.ErrorMessage` (possibly with alerts), and nothing changes.
 
         Args:
-            event: A message from :func:`tracker.wire.decode` or a :class:`~tracker.wire.Tick`.
+            event: A message from :func:`tracker.edge.wire.decode` or a
+            :class:`~tracker.edge.wire.Tick`.
 
         Returns:
             Targets, status, alerts and errors, ordered by order id.
@@ -341,12 +347,12 @@ class Engine:
 
         The one difference is speed: at a bin close every symbol's bin arrives with the same
         time, and each re-plans only that symbol's orders, so such a run of bins shares one
-        :func:`~tracker.solve.solve_batch` call (the solver gives a problem the same answer,
+        :func:`~tracker.core.solve.solve_batch` call (the solver gives a problem the same answer,
         bit for bit, alone or in any batch). A run ends at any other event, a repeated symbol, a
         new time, or an event that also re-plans orders of another symbol.
 
         Args:
-            events: Messages from :func:`tracker.wire.decode` or ticks, in arrival order.
+            events: Messages from :func:`tracker.edge.wire.decode` or ticks, in arrival order.
 
         Returns:
             One list of outputs per event.

@@ -16,8 +16,8 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from tracker.problem import FloatArray, Problem
-from tracker.solve import solve_batch
+from tracker.core.problem import FloatArray, Problem
+from tracker.core.solve import solve_batch
 
 #: Default grid of starting inventories, as fractions of the order's quantity.
 DEFAULT_GRID = np.linspace(0.05, 1.0, 20)

@@ -4,9 +4,10 @@ Theory of operation
 -------------------
 Everything the engine sees passes through two stages, in one order. Stage 1 (journal):
 
-1. take what is waiting in the bounded inbox (deliveries from :class:`tracker.bus.Bus`, tick
+1. take what is waiting in the bounded inbox (deliveries from :class:`tracker.shell.bus.Bus`, tick
    requests from the timer), at most ``batch_size`` at a time;
-2. append them to the :class:`tracker.journal.Journal` in one transaction and commit it (durably,
+2. append them to the :class:`tracker.shell.journal.Journal` in one transaction and commit it
+(durably,
    per the journal's policy), each with the receive time of the daemon's clock; the commit runs in
    a worker thread, so messages keep arriving meanwhile and the next group is larger when the disk
    is slow (group commit);
@@ -15,7 +16,7 @@ Everything the engine sees passes through two stages, in one order. Stage 1 (jou
 
 Stage 2 (apply), which works on one group while stage 1 commits the next:
 
-4. feed each journaled record, exactly as journaled, to a :class:`tracker.replay.Replayer` -- the
+4. feed each journaled record, exactly as journaled, to a :class:`tracker.edge.intake.Intake` -- the
    same code ``tracker replay`` runs -- which decodes it (or rejects it with a reason), skips exact
    redeliveries, and hands it to :meth:`Engine.handle`;
 5. put every output in the outbox, which the bus publishes at QoS 1 (status retained).
@@ -26,16 +27,16 @@ engine before it connects; outputs of records after the journal's ``published_th
 (which trails the broker's confirmations) are published again, so a crash loses no output either
 (some may arrive twice: QoS 1 is at-least-once).
 
-Time: the engine learns that time passes from :class:`tracker.wire.Tick` events, which only this
-shell makes: one when the daemon starts (so a journal always holds ticks and a replay never invents
-any) and one every ``tick_seconds`` of the daemon's clock. Ticks are journaled like messages. The
-clock is the wall clock in UTC, or a simulated one (``clock_start`` and ``clock_speed``, for the
-demo); either way the receive times it stamps never go backwards.
+Time: the engine learns that time passes from :class:`tracker.edge.wire.Tick` events, which only
+this shell makes: one when the daemon starts (so a journal always holds ticks and a replay never
+invents any) and one every ``tick_seconds`` of the daemon's clock. Ticks are journaled like
+messages. The clock is the wall clock in UTC, or a simulated one (``clock_start`` and
+``clock_speed``, for the demo); either way the receive times it stamps never go backwards.
 
 Limits at the edge: a payload over ``max_payload_bytes`` is journaled as a short note saying so
 (not as JSON, so it is rejected, live and in replay alike, and its error record tells the sender
-what happened); ids are checked by :func:`tracker.wire.decode` before any is used in a topic name;
-the inbox and the outbox are bounded and wait (back-pressure, logged and shown in the health
+what happened); ids are checked by :func:`tracker.edge.wire.decode` before any is used in a topic
+name; the inbox and the outbox are bounded and wait (back-pressure, logged and shown in the health
 message) rather than grow.
 
 Stopping (SIGTERM / SIGINT through :meth:`Daemon.stop`): stop taking messages, finish those in the
@@ -58,13 +59,9 @@ from typing import IO, TYPE_CHECKING, Any, Self
 
 import structlog
 
-from tracker.bus import Bus, Delivery, Outbox, Outgoing
-from tracker.config import Settings
-from tracker.errors import InputError
-from tracker.journal import Journal
-from tracker.records import Record
-from tracker.replay import EngineLike, Replayer, dumps_summary, finish_summary
-from tracker.wire import (
+from tracker.edge.intake import EngineLike, Intake
+from tracker.edge.records import Record
+from tracker.edge.wire import (
     AlertMessage,
     ErrorMessage,
     Outbound,
@@ -73,9 +70,14 @@ from tracker.wire import (
     encode,
     topic_of,
 )
+from tracker.errors import InputError
+from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing
+from tracker.shell.config import Settings
+from tracker.shell.journal import Journal
+from tracker.shell.replay import dumps_summary, finish_summary
 
 if TYPE_CHECKING:
-    from tracker.engine import Engine
+    from tracker.core.engine import Engine
 
 __all__ = ["Daemon", "build_engine", "format_ts", "inbound_topics"]
 
@@ -102,7 +104,7 @@ def inbound_topics(root: str) -> tuple[str, ...]:
 def build_engine(settings: Settings) -> Engine:
     """The engine the settings ask for: thresholds from ``[engine]``, profiles from the folder."""
     from tracker.cli.replay import load_profiles
-    from tracker.engine import Engine, EngineConfig
+    from tracker.core.engine import Engine, EngineConfig
 
     config = EngineConfig.from_mapping(settings.engine) if settings.engine else None
     profiles = load_profiles(settings.profiles) if settings.profiles is not None else {}
@@ -188,14 +190,14 @@ class Daemon:
         self.root = settings.root
         self._engine_given = engine
         self._on_output = on_output
-        self._log = structlog.get_logger("tracker.daemon").bind(instance=settings.instance)
+        self._log = structlog.get_logger("tracker.shell.daemon").bind(instance=settings.instance)
         self.inbox: asyncio.Queue[Delivery | _TickRequest] = asyncio.Queue(settings.queue_size)
         self.outbox = Outbox(capacity=OUTBOX_CAPACITY)
         self._stopping = asyncio.Event()
         self._draining = False
         self._lock_file: IO[str] | None = None
         self._journal: Journal | None = None
-        self._replayer: Replayer | None = None
+        self._intake: Intake | None = None
         self._clock: _Clock | None = None
         self._unconfirmed: dict[int, int] = {}  # journal seq -> outputs not yet confirmed
         self._applied = 0
@@ -237,7 +239,7 @@ class Daemon:
                 else build_engine(self.settings)
             )
             self.engine: EngineLike = engine
-            self._replayer = Replayer(engine, root=self.root, derive_ticks=False)
+            self._intake = Intake(engine, root=self.root, derive_ticks=False)
             floor = _parse_ts(self._journal.last_ts) if self._journal.last_ts else None
             self._clock = _Clock(self.settings, floor, self._clock_source)
             self._recover()
@@ -308,7 +310,7 @@ class Daemon:
 
     def _recover(self) -> None:
         """Replay the journal into the engine; queue outputs not known to be published."""
-        assert self._replayer is not None
+        assert self._intake is not None
         mark = self.journal.published_through
         self._persisted_mark = mark
         for record in self.journal.records():
@@ -480,18 +482,15 @@ class Daemon:
         return self._feed_run([record])[0]
 
     def _feed_run(self, run: list[Record]) -> list[list[Outbound]]:
-        """Feed records to the replayer: one by one, or a run of bins together.
+        """Feed records to the intake: one by one, or a run of bins together.
 
         The bins of one bin close arrive together; fed in one ``feed_many`` call, the engine
         re-plans all their orders in one batch solve, with exactly the outputs one by one would
         give (so a replay of the journal, which feeds it in chunks, still matches).
         """
-        assert self._replayer is not None
+        assert self._intake is not None
         try:
-            if len(run) == 1:
-                results = [self._replayer.feed(run[0])]
-            else:
-                results = self._replayer.feed_many(run)
+            results = [self._intake.feed(run[0])] if len(run) == 1 else self._intake.feed_many(run)
         except Exception as exc:  # a bug of ours must not stop the desk's other orders
             self._log.exception(
                 "engine failed", topic=run[0].topic, seq=run[0].line, records=len(run)
@@ -601,8 +600,8 @@ class Daemon:
 
     def summary(self) -> dict[str, Any]:
         """The engine's summary with the replay counts, as ``tracker replay`` writes it."""
-        assert self._replayer is not None
-        return finish_summary(self.engine, self._replayer)
+        assert self._intake is not None
+        return finish_summary(self.engine, self._intake)
 
     def write_summary(self, path: Path) -> Path:
         """Write :meth:`summary` as ``summary.json`` text to ``path``."""

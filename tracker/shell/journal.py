@@ -47,8 +47,8 @@ from pathlib import Path
 from types import TracebackType
 from typing import Literal, Self
 
+from tracker.edge.records import Record
 from tracker.errors import InputError
-from tracker.records import Record
 
 __all__ = [
     "FORMAT_VERSION",
@@ -368,7 +368,7 @@ def read_journal(path: str | Path) -> Iterator[Record]:
         path: The journal file.
 
     Yields:
-        :class:`tracker.records.Record` per journal row: ``line`` is the sequence number,
+        :class:`tracker.edge.records.Record` per journal row: ``line`` is the sequence number,
         ``payload`` the raw bytes as received, ``ts`` the receive time.
 
     Raises:

@@ -1,4 +1,5 @@
-"""Types of the compiled inner loop of :mod:`tracker.solve` (source: ``tracker/_kernel.c``)."""
+"""Types of the compiled inner loop of :mod:`tracker.core.solve` (source:
+``tracker/core/_kernel.c``)."""
 
 import numpy as np
 import numpy.typing as npt

@@ -171,10 +171,10 @@ class Settings:
             built-in default profile.
         instance: This instance's id: names ``{root}/health/{instance}`` and the MQTT client id
             ``tracker-{instance}`` (stable, so the broker keeps our session while we are down).
-        durability: The journal's fsync policy ("full" or "normal"; see :mod:`tracker.journal`).
-        tick_seconds: Interval of the staleness timer in seconds of the daemon's clock (0: off).
-        heartbeat_seconds: Interval of the health message in wall-clock seconds.
-        max_payload_bytes: Larger inbound payloads are rejected.
+        durability: The journal's fsync policy ("full" or "normal"; see
+        :mod:`tracker.shell.journal`). tick_seconds: Interval of the staleness timer in seconds of
+        the daemon's clock (0: off). heartbeat_seconds: Interval of the health message in wall-clock
+        seconds. max_payload_bytes: Larger inbound payloads are rejected.
         queue_size: Capacity of the inbound queue (back-pressure beyond it).
         batch_size: Most messages journaled in one commit.
         reconnect_min_seconds, reconnect_max_seconds: Bounds of the reconnect back-off.

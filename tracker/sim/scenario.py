@@ -16,8 +16,8 @@ the order router works.
 What goes into the queue:
 
 * the market: one bin message per symbol at every bin close (plus one second of publication
-  latency), from :mod:`tracker.market`'s invented generator; at midday ZEPH's liquidity collapses
-  for a while (:data:`SHOCK`): volume falls to a fifth, the spread triples;
+  latency), from :mod:`tracker.sim.market`'s invented generator; at midday ZEPH's liquidity
+  collapses for a while (:data:`SHOCK`): volume falls to a fifth, the spread triples;
 * the parent orders (:data:`ORDERS`) at their submission times, one amend (MIRA's quantity and end
   move), one cancel (KALO's order stops early) and a quarter-hour halt of ZEPH-S2 (:data:`HALT`);
 * fills: the router works each target over its bin in a few child slices. The fill model gives a
@@ -56,18 +56,14 @@ from typing import Any
 
 import numpy as np
 
+from tracker.core.session import Session
+from tracker.edge.intake import DEFAULT_TICK_SECONDS, Intake
+from tracker.edge.recordings import parse_line
+from tracker.edge.records import Record
+from tracker.edge.wire import Outbound, StatusMessage, TargetMessage
 from tracker.errors import InputError
-from tracker.market import MarketParameters, simulate_day
-from tracker.records import Record
-from tracker.replay import (
-    DEFAULT_TICK_SECONDS,
-    Replayer,
-    ReplayResult,
-    finish_summary,
-    parse_line,
-)
-from tracker.session import Session
-from tracker.wire import Outbound, StatusMessage, TargetMessage
+from tracker.shell.replay import ReplayResult, finish_summary
+from tracker.sim.market import MarketParameters, simulate_day
 
 __all__ = [
     "DAY",
@@ -175,8 +171,8 @@ class Shock:
 SHOCK = Shock("ZEPH", time(12, 0), time(12, 45), volume_factor=0.2, spread_factor=3.0)
 
 #: The invented market follows the shapes of the stated default profile
-#: (:func:`tracker.liquidity.default_profile`), which the demo engine uses for want of a calibrated
-#: one; the symbols differ in volume, price and spread.
+#: (:func:`tracker.core.profiles.default_profile`), which the demo engine uses for want of a
+#: calibrated one; the symbols differ in volume, price and spread.
 DEFAULT_SHAPES: dict[str, Any] = {
     "volume_shape": (1.5, 0.08, 1.2, 0.04),
     "spread_shape": (1.5, 0.05, 0.0, 1.0),
@@ -297,8 +293,8 @@ class Scenario:
     def inbound_until(self, ts: datetime) -> list[Record]:
         """The messages due at or before ``ts``, in time order, numbered as lines of a recording.
 
-        Each is a :class:`~tracker.records.Record` with the payload as a JSON object, or as raw text
-        for the deliberately malformed ones, and ``ts`` its send time.
+        Each is a :class:`~tracker.edge.records.Record` with the payload as a JSON object, or as raw
+        text for the deliberately malformed ones, and ``ts`` its send time.
         """
         out: list[Record] = []
         while self._queue and self._queue[0].when <= ts:
@@ -616,8 +612,8 @@ def _iso(ts: datetime) -> str:
 def generate_market(session: Session, day: date, seed: int) -> dict[str, list[MarketBin]]:
     """The invented market of the day: every bin of every symbol, with the shock applied.
 
-    Each symbol's day comes from :func:`tracker.market.simulate_day` (seed ``seed * 100 + k`` for
-    the k-th symbol of :data:`SYMBOLS`); the bins of :data:`SHOCK` then get their volume and
+    Each symbol's day comes from :func:`tracker.sim.market.simulate_day` (seed ``seed * 100 + k``
+    for the k-th symbol of :data:`SYMBOLS`); the bins of :data:`SHOCK` then get their volume and
     spread scaled.
     """
     market: dict[str, list[MarketBin]] = {}
@@ -705,7 +701,8 @@ def run_day(
 
     Args:
         seed: The scenario's seed.
-        engine: The engine (default: a fresh :class:`tracker.engine.Engine` with default settings
+        engine: The engine (default: a fresh :class:`tracker.core.engine.Engine` with default
+        settings
             and this root).
         day: The trading day.
         root: MQTT topic root.
@@ -716,11 +713,11 @@ def run_day(
     """
 
     if engine is None:
-        from tracker.engine import Engine
+        from tracker.core.engine import Engine
 
         engine = Engine(root=root)
     scenario = Scenario(seed, day=day, root=root)
-    replayer = Replayer(engine, root=root, tick_seconds=tick_seconds or DEFAULT_TICK_SECONDS)
+    intake = Intake(engine, root=root, tick_seconds=tick_seconds or DEFAULT_TICK_SECONDS)
     result = ReplayResult()
     records: list[Record] = []
     lines: list[str] = []
@@ -729,11 +726,11 @@ def run_day(
             text = record_line(record)
             records.append(record)
             lines.append(text)
-            outputs = replayer.feed(parse_line(record.line, text))
+            outputs = intake.feed(parse_line(record.line, text))
             result.add(outputs)
             for message in outputs:
                 scenario.on_output(message)
-    result.summary = finish_summary(engine, replayer)
+    result.summary = finish_summary(engine, intake)
     return DayRun(records=records, lines=lines, result=result)
 
 

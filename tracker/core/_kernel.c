@@ -10,7 +10,7 @@
  *   riccati()         the recursion of the exact (linear-quadratic) path;
  *   costs()           the objective of a final schedule, term by term.
  *
- * What stays in Python (tracker/solve.py, whose docstring gives the theory): choosing the path,
+ * What stays in Python (tracker/core/solve.py, whose docstring gives the theory): choosing the path,
  * the closed forms, the convexity check, taking out bins that cannot trade, the Schedule.
  *
  * The problem, in the method's scaled units (inventories as fractions of the quantity, costs over
@@ -28,7 +28,7 @@
  * multipliers positive (times 0.995) and backtracks until the step reduces the norm of the
  * perturbed KKT residual or satisfies Armijo's condition on the log-barrier function.
  *
- * Entry points are called from tracker/solve.py only; tracker/_kernel.pyi types them. The first
+ * Entry points are called from tracker/core/solve.py only; tracker/core/_kernel.pyi types them. The first
  * solves a batch of problems laid end to end, each on its own (so an answer never depends on the
  * problems beside it), in one call:
  *
@@ -942,7 +942,7 @@ static PyObject *tridiagonal(PyObject *self, PyObject *args)
 
 static PyMethodDef methods[] = {
     {"interior_point", interior_point, METH_VARARGS,
-     "Run the interior-point method on one scaled problem (see tracker/solve.py)."},
+     "Run the interior-point method on one scaled problem (see tracker/core/solve.py)."},
     {"riccati", riccati, METH_VARARGS,
      "The linear-quadratic recursion of tracker.solve._riccati; returns the final inventory."},
     {"costs", costs, METH_VARARGS, "The canonical objective of a schedule, term by term."},

@@ -45,10 +45,11 @@ from typing import Any
 
 import numpy as np
 
+from tracker.core.forecast import Forecast, forecast
+from tracker.core.problem import FORCE, Problem
+from tracker.core.profiles import Profile
+from tracker.core.solve import Schedule, solve
 from tracker.errors import InputError
-from tracker.liquidity import Forecast, Profile, forecast
-from tracker.problem import FORCE, Problem
-from tracker.solve import Schedule, solve
 
 
 @dataclass(frozen=True, slots=True)
@@ -210,7 +211,7 @@ def build_problem(
         quantity: Shares still to execute (>= 0; the side is handled outside).
         first_bin: First bin of the horizon (inclusive), index into the session's bins.
         end_bin: End of the horizon (exclusive).
-        forecast: Today's liquidity (:func:`tracker.liquidity.forecast`).
+        forecast: Today's liquidity (:func:`tracker.core.forecast.forecast`).
         preferences: Cost/risk preferences.
         max_participation: Largest fraction of a bin's forecast volume to trade, in (0, 1], or
             ``None`` for no cap.
@@ -221,7 +222,7 @@ def build_problem(
             than 2 and of the completion penalty; defaults to ``quantity``.
 
     Returns:
-        The :class:`~tracker.problem.Problem` with ``end_bin - first_bin`` bins.
+        The :class:`~tracker.core.problem.Problem` with ``end_bin - first_bin`` bins.
 
     Raises:
         InputError: a bin range or value out of range.
@@ -396,8 +397,8 @@ def plan_order(
         quantity: Shares to execute (> 0).
         start: Order start (tz-aware, or naive in the venue's local time).
         end: Order end; the window is cut to the session of the start's local day.
-        liquidity: A :class:`~tracker.liquidity.Profile` (planned as a normal day) or a
-            :class:`~tracker.liquidity.Forecast`.
+        liquidity: A :class:`~tracker.core.profiles.Profile` (planned as a normal day) or a
+            :class:`~tracker.core.forecast.Forecast`.
         preferences: Cost/risk preferences.
         max_participation: Cap as a fraction of forecast volume, or ``None``.
         arrival_price: Currency per share (> 0).

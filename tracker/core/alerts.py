@@ -46,8 +46,8 @@ from dataclasses import dataclass, field, fields
 from datetime import datetime
 from typing import Any
 
+from tracker.edge.wire import AlertMessage, Severity
 from tracker.errors import InputError
-from tracker.wire import AlertMessage, Severity
 
 BEHIND_PLAN = "behind_plan"
 AHEAD_OF_PLAN = "ahead_of_plan"

@@ -1,0 +1,329 @@
+"""Intake: every inbound record, live or recorded, admitted to the engine the same way.
+
+Theory of operation
+-------------------
+A recording is a sequence of :class:`~tracker.edge.records.Record` -- the lines of a JSON Lines file
+(``{"topic": ..., "payload": ..., "ts": ...}`` per line) or the rows of the daemon's SQLite journal.
+:class:`Intake` feeds them, one at a time, through the same edge the live shell uses and hands
+each accepted message to :meth:`Engine.handle`. Every line (blank lines aside: they are skipped)
+ends in exactly one of three ways:
+
+* **accepted** -- it decoded, it is in time order, and the engine took it; its outputs are kept.
+* **redelivered** -- it is an exact copy (same topic, same decoded message) of a line accepted
+  earlier, as an MQTT broker re-sends a QoS 1 message whose acknowledgement was lost. It changes
+  nothing and is not an error; it is counted in the summary. (Ticks are exempt: the shell makes
+  them, and a repeated tick is simply handed to the engine, where it changes nothing.)
+* **rejected** -- exactly one :class:`~tracker.edge.wire.ErrorMessage` with ``line`` set to the
+input's
+  1-based line number and a reason a person can act on. The checks, in order:
+
+  1. line level (ours): not UTF-8, not JSON, not an object, no ``topic``, no ``payload``, a ``ts``
+     that is not ISO 8601 with an offset;
+  2. message level: :func:`tracker.edge.wire.decode` (bad JSON in a raw payload, missing field,
+  wrong
+     type, negative or NaN quantity, unknown type, wrong topic for the payload);
+  3. time order: a line whose recorded ``ts`` is earlier than that of a line before it (the
+     recording is out of order). A line recorded without ``ts`` is left to the engine's own
+     per-stream rules (bins per symbol, order messages per order; a late fill is legitimate). A
+     journal is checked the same way: the live daemon fed each record through this same class as
+     it journaled it (its receive times never go backwards), so a replay decides as it did;
+  4. the engine's own verdict (a fill for an unknown order, ...): every ErrorMessage the engine
+     returns while handling a line gets that line's number.
+
+  The line's *time*, for derived ticks, is its recorded ``ts`` (when the shell received it), else
+  the message's own ``ts``; time never moves backwards.
+
+Ticks (the rule)
+----------------
+The live daemon injects a :class:`~tracker.edge.wire.Tick` every ``tick_seconds`` of its clock so
+that the engine can judge stale market data and expired orders with no message arriving; it journals
+those ticks like any message. So:
+
+* if the recording holds at least one line on ``{root}/tick`` (a journal always does), its ticks are
+  replayed as recorded and none are invented -- doubling them would change what the engine saw;
+* if it holds none (a hand-made or simulated file), the intake derives them: before a line of
+  time ``t``, it injects a tick at every whole multiple of ``tick_seconds`` since the Unix epoch
+  that lies after the previous line's time and at or before ``t`` (a tick at exactly ``t`` comes
+  before the line). No tick comes before the first line or after the last one. The engine then
+  sees time move in the same steps as live, to within one tick interval.
+
+Determinism: nothing here reads the clock or iterates over an unordered container, so the same input
+gives the same outputs, and :func:`write_outputs` writes them byte for byte the same.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from collections.abc import Iterable, Sequence
+from datetime import UTC, datetime, timedelta
+from typing import Any, Protocol
+
+from tracker.edge.recordings import BadLine, parse_ts, parse_ts_or_none
+from tracker.edge.records import Record
+from tracker.edge.wire import (
+    ErrorMessage,
+    FillMessage,
+    Inbound,
+    Outbound,
+    Tick,
+    WireError,
+    decode,
+    payload_text,
+)
+from tracker.errors import InputError
+
+#: Interval of derived ticks, in seconds (the live daemon's default tick interval).
+DEFAULT_TICK_SECONDS = 1.0
+
+_EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
+
+
+class EngineLike(Protocol):
+    """What the intake needs from the engine (:class:`tracker.core.engine.Engine` has it)."""
+
+    def handle(self, event: Inbound) -> list[Outbound]: ...
+
+    def reject(
+        self, topic: str, payload: bytes | str, reason: str, ts: datetime | None
+    ) -> ErrorMessage: ...
+
+    def summary(self) -> dict[str, Any]: ...
+
+
+class Intake:
+    """Feeds records to an engine one at a time, as the live shell would, and keeps count.
+
+    Usable incrementally (the closed-loop simulation feeds it as it goes) or through
+    :func:`replay`.
+
+    Args:
+        engine: The engine to feed.
+        root: The MQTT topic root the recording was made under.
+        derive_ticks: Inject ticks derived from the lines' times (see the module docstring). Turn
+            off when the recording holds its own ticks.
+        tick_seconds: Interval of derived ticks.
+        check_time: Reject a line whose recorded ``ts`` is earlier than an earlier line's (keep it
+            on wherever the live daemon keeps it on, so that replays decide as live did).
+    """
+
+    def __init__(
+        self,
+        engine: EngineLike,
+        *,
+        root: str = "tracker",
+        derive_ticks: bool = True,
+        tick_seconds: float = DEFAULT_TICK_SECONDS,
+        check_time: bool = True,
+    ) -> None:
+        if not (math.isfinite(tick_seconds) and tick_seconds > 0):
+            raise InputError(
+                f"must be a positive number of seconds, got {tick_seconds}", field="tick_seconds"
+            )
+        self.engine = engine
+        self.root = root
+        self.derive_ticks = derive_ticks
+        self.check_time = check_time
+        self._tick = timedelta(seconds=tick_seconds)
+        self._tick_topic = f"{root}/tick"
+        self._last: datetime | None = None
+        self._recorded: datetime | None = None
+        self._next_tick: datetime | None = None  # the first derived tick after _last
+        self._seen: set[Identity] = set()
+        self.lines = 0
+        self.accepted = 0
+        self.redelivered = 0
+        self.rejected = 0
+        self.ticks_derived = 0
+
+    @property
+    def now(self) -> datetime | None:
+        """The latest time replayed so far (``None`` before the first timed line)."""
+        return self._last
+
+    def feed(self, record: Record | BadLine) -> list[Outbound]:
+        """Handle one line; return what the engine said (and the line's error, if rejected)."""
+        return self.feed_many([record])[0]
+
+    def feed_many(self, records: Sequence[Record | BadLine]) -> list[list[Outbound]]:
+        """Handle lines in order; return the outputs of each, exactly as :meth:`feed` would.
+
+        The engine gets the accepted messages (and derived ticks) of the lines in one
+        ``handle_many`` call where it has one, so that the bins of a bin close share a solve.
+        """
+        results: list[list[Outbound]] = [[] for _ in records]
+        pending: list[tuple[int, Inbound, int, Identity | None, bool]] = []
+        pending_keys: set[Identity] = set()
+
+        def flush() -> None:
+            events = [entry[1] for entry in pending]
+            handle_many = getattr(self.engine, "handle_many", None)
+            if handle_many is not None:
+                produced_all: list[list[Outbound]] = handle_many(events)
+            else:
+                produced_all = [self.engine.handle(event) for event in events]
+            for (index, _, line, key, is_line), produced in zip(pending, produced_all, strict=True):
+                rejected = False
+                for out in produced:
+                    if isinstance(out, ErrorMessage):
+                        rejected = True
+                        out = out.model_copy(update={"line": line})
+                    results[index].append(out)
+                if not is_line:
+                    continue  # a derived tick
+                if rejected:
+                    self.rejected += 1
+                else:
+                    self.accepted += 1
+                    if key is not None:
+                        self._seen.add(key)
+            pending.clear()
+            pending_keys.clear()
+
+        for index, record in enumerate(records):
+            self.lines += 1
+            staged = self._stage(record)
+            if isinstance(staged, ErrorMessage):
+                results[index].append(staged)
+                continue
+            message, key, recorded = staged
+            if key is not None and key in pending_keys:
+                flush()  # whether it is a redelivery depends on the first copy's fate
+            if key is not None and key in self._seen:
+                self.redelivered += 1
+                continue
+            if not self._in_order(recorded):
+                assert isinstance(record, Record)  # a BadLine never gets past _stage
+                assert recorded is not None and self._recorded is not None
+                results[index].append(
+                    self._reject(
+                        record.line,
+                        record.topic,
+                        payload_text(record.payload),
+                        f"time goes backwards: this line's ts {_iso(recorded)} is earlier than "
+                        f"{_iso(self._recorded)} of a line before it; a recording must be in "
+                        "the order the messages were received -- sort the lines by 'ts' or fix "
+                        "this line's ts",
+                        recorded,
+                    )
+                )
+                continue
+            when = recorded if recorded is not None else _message_time(message)
+            if recorded is not None:
+                self._recorded = recorded
+            if when is not None and (self._last is None or when > self._last):
+                if self._next_tick is not None and when >= self._next_tick:
+                    for tick in self._ticks_until(when):
+                        pending.append((index, tick, record.line, None, False))
+                    self._next_tick = None
+                self._last = when
+                if self.derive_ticks and self._next_tick is None:
+                    self._next_tick = _EPOCH + ((when - _EPOCH) // self._tick + 1) * self._tick
+            pending.append((index, message, record.line, key, True))
+            if key is not None:
+                pending_keys.add(key)
+        flush()
+        return results
+
+    def _stage(
+        self, record: Record | BadLine
+    ) -> ErrorMessage | tuple[Inbound, Identity | None, datetime | None]:
+        """The line's own checks: its error, or the decoded message, its identity and time."""
+        if isinstance(record, BadLine):
+            when = parse_ts_or_none(record.ts)
+            return self._reject(record.line, record.topic, record.raw, record.reason, when)
+        recorded: datetime | None = None
+        if record.ts is not None:
+            try:
+                recorded = parse_ts(record.ts)
+            except ValueError:
+                return self._reject(
+                    record.line,
+                    record.topic,
+                    payload_text(record.payload),
+                    f"the line's 'ts' {record.ts!r} is not an ISO 8601 time with an offset; "
+                    "write it like 2026-03-10T14:30:00Z, or leave it out",
+                    None,
+                )
+        try:
+            message = decode(record.topic, record.payload, root=self.root)
+        except WireError as exc:
+            return self._reject(
+                record.line, record.topic, payload_text(record.payload), exc.reason, recorded
+            )
+        # Ticks are made by the shell, never redelivered by a broker; two equal ones are harmless
+        # to the engine and are not remembered (a long-running daemon makes one a second).
+        key = None if isinstance(message, Tick) else _identity(record.topic, message)
+        return message, key, recorded
+
+    def _in_order(self, recorded: datetime | None) -> bool:
+        """False when the line's recorded time is earlier than an earlier line's."""
+        return not (
+            self.check_time
+            and recorded is not None
+            and self._recorded is not None
+            and recorded < self._recorded
+        )
+
+    def _ticks_until(self, when: datetime) -> list[Tick]:
+        """The derived ticks after the previous line's time and at or before ``when``."""
+        assert self._last is not None
+        # Whole microseconds (timedelta // timedelta): exact, no float rounding at the boundaries.
+        first = (self._last - _EPOCH) // self._tick + 1
+        last = (when - _EPOCH) // self._tick
+        self.ticks_derived += max(last - first + 1, 0)
+        return [Tick(ts=_EPOCH + k * self._tick) for k in range(first, last + 1)]
+
+    def _reject(
+        self, line: int, topic: str, raw: str, reason: str, recorded: datetime | None
+    ) -> ErrorMessage:
+        self.rejected += 1
+        ts = recorded or self._last
+        error = self.engine.reject(topic, raw, reason, ts)
+        return error.model_copy(update={"line": line})
+
+    def counts(self) -> dict[str, int]:
+        """How many lines were read, accepted, redelivered and rejected; how many ticks derived."""
+        return {
+            "lines": self.lines,
+            "accepted": self.accepted,
+            "redelivered": self.redelivered,
+            "rejected": self.rejected,
+            "ticks_derived": self.ticks_derived,
+        }
+
+
+def has_ticks(records: Iterable[Record | BadLine], root: str) -> bool:
+    """Whether any line of a recording is on the tick topic."""
+    topic = f"{root}/tick"
+    return any(r.topic == topic for r in records)
+
+
+def _iso(value: datetime) -> str:
+    return value.astimezone(UTC).isoformat().replace("+00:00", "Z")
+
+
+def _message_time(message: Inbound) -> datetime | None:
+    ts = getattr(message, "ts", None)
+    return ts if isinstance(ts, datetime) else None
+
+
+#: What tells two accepted messages apart (see :func:`_identity`).
+Identity = bytes | tuple[object, ...]
+
+
+def _identity(topic: str, message: Inbound) -> Identity:
+    """A key that two copies of the same message share (and different messages do not).
+
+    The key is the topic and the message's JSON text (as a digest). A fill -- nearly every line
+    of a recording -- needs no text: its fields are strings, ints, positive finite floats, at
+    most a side, and a UTC time, and for such values equal means equal JSON text (no -0.0, no
+    NaN, no 1 vs 1.0, no two offsets of one time), so the tuple of its values decides exactly as
+    the text would, about ten times cheaper. A test holds the two to the same verdicts.
+    """
+    if type(message) is FillMessage:
+        return (topic, *message.__dict__.values())
+    digest = hashlib.blake2b(topic.encode(), digest_size=16)
+    digest.update(b"\x00")
+    digest.update(message.model_dump_json().encode())
+    return digest.digest()
