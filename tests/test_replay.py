@@ -586,7 +586,7 @@ def test_cli_replays_a_journal_like_its_jsonl(tmp_path: Path) -> None:
 
 def test_cli_config_file_sets_engine_thresholds(tmp_path: Path) -> None:
     """--config reads the [engine] table of a TOML file (as the daemon's config has it)."""
-    from tracker.cli.replay import load_config
+    from tracker.shell.files import load_engine_config as load_config
 
     config = tmp_path / "tracker.toml"
     config.write_text("[engine]\nexpiry_grace_seconds = 30\n")

@@ -17,6 +17,7 @@ from tracker.core.policy import Policy, explain
 from tracker.core.problem import FIELDS, Problem
 from tracker.core.solve import Schedule, solve
 from tracker.errors import InputError
+from tracker.shell.files import read_document
 
 PROBLEM_HELP = (
     "JSON file of the canonical problem with the fields "
@@ -61,25 +62,6 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.set_defaults(handler=run)
 
 
-def read_json(path: Path, what: str) -> Any:
-    """Read a JSON file, turning every failure into an InputError that says what to fix."""
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"cannot read {what} {str(path)!r}: {exc.strerror or exc}") from exc
-    try:
-        return json.loads(text, parse_constant=_reject_constant)
-    except json.JSONDecodeError as exc:
-        raise InputError(
-            f"{what} {str(path)!r} is not valid JSON: {exc.msg} at line {exc.lineno}"
-            f", column {exc.colno}"
-        ) from exc
-
-
-def _reject_constant(name: str) -> float:
-    raise InputError(f"{name} is not allowed; every number must be finite")
-
-
 def run(args: argparse.Namespace) -> int:
     """Solve the problem file (or plan the ``--order``) and print the result."""
     if getattr(args, "order", None) is not None:
@@ -90,7 +72,7 @@ def run(args: argparse.Namespace) -> int:
         return run_order(args)
     if args.problem is None:
         raise InputError("give --problem FILE (the JSON execution problem) or --order ORDER.json")
-    problem = Problem.from_mapping(read_json(args.problem, "problem file"))
+    problem = Problem.from_mapping(read_document(args.problem, "problem file"))
     schedule = solve(problem)
     policy = explain(problem) if args.explain else None
     if args.format == "json":

@@ -67,9 +67,9 @@ def add_order_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def _read_json(path: Path, what: str) -> Any:
-    from tracker.cli.plan import read_json
+    from tracker.shell.files import read_document
 
-    return read_json(path, what)
+    return read_document(path, what)
 
 
 def read_order(path: Path) -> Any:

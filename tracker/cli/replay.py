@@ -3,20 +3,16 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
-import tomllib
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 from tracker.edge.wire import DEFAULT_ROOT
-from tracker.errors import InputError
 
 if TYPE_CHECKING:
-    from tracker.core.engine import EngineConfig
-    from tracker.core.profiles import Profile
+    pass
 
 DESCRIPTION = """\
 Replay a recorded day through the engine, deterministically, and write its outputs.
@@ -88,9 +84,10 @@ def run(args: argparse.Namespace) -> int:
     from tracker.core.engine import Engine
     from tracker.edge.recordings import read_input
     from tracker.shell.config import validate_root
+    from tracker.shell.files import load_engine_config, load_profiles
     from tracker.shell.replay import replay, write_outputs
 
-    config, config_root = load_config(Path(args.config)) if args.config else (None, None)
+    config, config_root = load_engine_config(Path(args.config)) if args.config else (None, None)
     root = validate_root(args.root or config_root or DEFAULT_ROOT, field="--root")
     profiles = load_profiles(Path(args.profiles)) if args.profiles else {}
     records = list(read_input(Path(args.input)))
@@ -113,74 +110,6 @@ def run(args: argparse.Namespace) -> int:
         f"{len(result.errors)} errors -> {args.out}"
     )
     return 0
-
-
-def load_config(path: Path) -> tuple[EngineConfig, str | None]:
-    """Read engine thresholds from a TOML (``.toml``) or JSON file.
-
-    A daemon configuration file (tables ``[engine]``, ``[daemon]``, ...) gives its ``[engine]``
-    table, and the topic root of its ``[daemon]`` table.
-
-    Returns:
-        The engine settings, and the topic root the file names (``None`` if none).
-
-    Raises:
-        InputError: The file is missing, not TOML/JSON, or a threshold is unknown or out of range.
-    """
-    from tracker.core.engine import EngineConfig
-
-    data = _read_mapping(path, "--config")
-    root: str | None = None
-    engine_table, daemon_table = data.get("engine"), data.get("daemon")
-    if isinstance(engine_table, Mapping) or isinstance(daemon_table, Mapping):
-        if isinstance(daemon_table, Mapping) and isinstance(daemon_table.get("root"), str):
-            root = daemon_table["root"]
-        data = dict(engine_table) if isinstance(engine_table, Mapping) else {}
-    return EngineConfig.from_mapping(data), root
-
-
-def load_profiles(folder: Path) -> dict[str, Profile]:
-    """Read every ``SYMBOL.json`` of a folder as a liquidity profile.
-
-    Raises:
-        InputError: The folder is missing, a file is not a profile, or a file's name does not match
-            the symbol inside it.
-    """
-    from tracker.core.profiles import Profile
-
-    if not folder.is_dir():
-        raise InputError(f"{folder} is not a folder", field="--profiles")
-    profiles: dict[str, Profile] = {}
-    for path in sorted(folder.glob("*.json")):
-        data = _read_mapping(path, "--profiles")
-        try:
-            profile = Profile.from_mapping(data)
-        except InputError as exc:
-            raise InputError(f"{path.name}: {exc}", field="--profiles") from exc
-        if profile.symbol != path.stem:
-            raise InputError(
-                f"{path.name} holds the profile of {profile.symbol!r}; name it "
-                f"{profile.symbol}.json (one file per symbol)",
-                field="--profiles",
-            )
-        profiles[profile.symbol] = profile
-    return profiles
-
-
-def _read_mapping(path: Path, flag: str) -> dict[str, Any]:
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read {path}: {exc.strerror}", field=flag) from exc
-    loader: Callable[[str], Any] = tomllib.loads if path.suffix.lower() == ".toml" else json.loads
-    try:
-        data = loader(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError, tomllib.TOMLDecodeError) as exc:
-        kind = "TOML" if path.suffix.lower() == ".toml" else "JSON"
-        raise InputError(f"{path} is not valid {kind}: {exc}", field=flag) from exc
-    if not isinstance(data, dict):
-        raise InputError(f"{path} must hold one object at its top level", field=flag)
-    return data
 
 
 @contextmanager

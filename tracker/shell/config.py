@@ -37,7 +37,6 @@ from __future__ import annotations
 
 import math
 import re
-import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -46,6 +45,7 @@ from typing import Any, Final, Literal
 from urllib.parse import unquote, urlsplit
 
 from tracker.errors import InputError
+from tracker.shell.files import read_document
 
 __all__ = [
     "DEFAULT_ROOT",
@@ -340,13 +340,7 @@ def read_config_file(path: str | Path) -> dict[str, Any]:
         InputError: The file cannot be read, is not TOML, or has an unknown table or key.
     """
     path = Path(path)
-    try:
-        with open(path, "rb") as handle:
-            data = tomllib.load(handle)
-    except OSError as exc:
-        raise InputError(f"cannot read {path}: {exc.strerror}", field="--config") from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{path} is not valid TOML: {exc}", field="--config") from exc
+    data = read_document(path, "--config")
     allowed = {"broker": _BROKER_KEYS, "daemon": _DAEMON_KEYS, "engine": None}
     for table, value in data.items():
         if table not in allowed:

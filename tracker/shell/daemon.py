@@ -103,8 +103,8 @@ def inbound_topics(root: str) -> tuple[str, ...]:
 
 def build_engine(settings: Settings) -> Engine:
     """The engine the settings ask for: thresholds from ``[engine]``, profiles from the folder."""
-    from tracker.cli.replay import load_profiles
     from tracker.core.engine import Engine, EngineConfig
+    from tracker.shell.files import load_profiles
 
     config = EngineConfig.from_mapping(settings.engine) if settings.engine else None
     profiles = load_profiles(settings.profiles) if settings.profiles is not None else {}
