@@ -213,3 +213,88 @@ def test_deviation_message_says_which_way(gap: float, expected: str) -> None:
     book = AlertBook()
     messages = [book.apply(c, scope="A", order_id="A", symbol="ZEPH", ts=TS) for c in checks]
     assert [expected] == [m.message for m in messages if m is not None]
+
+
+def docstring_table() -> dict[str, tuple[str, str]]:
+    """The module docstring's code table as ``{code: (severity text, meaning)}``."""
+    assert alerts.__doc__ is not None
+    lines = alerts.__doc__.split("\n")
+    rules = [i for i, line in enumerate(lines) if line.startswith("=====")]
+    rows: dict[str, tuple[str, str]] = {}
+    code = ""
+    for line in lines[rules[1] + 1 : rules[2]]:
+        first, second, third = line[:27].strip(), line[27:49].strip(), line[49:].strip()
+        if first:
+            code = first
+            rows[code] = (second, third)
+        else:  # a continuation line of the row above
+            severity, meaning = rows[code]
+            rows[code] = (f"{severity} {second}".strip(), f"{meaning} {third}".strip())
+    return rows
+
+
+def table_severity(code: alerts.Code) -> str:
+    """A code's severity as the docstring writes it."""
+    if isinstance(code.severity, str):
+        return code.severity
+    return ", ".join(f"{case}: {severity}" for case, severity in code.severity.items())
+
+
+def test_docstring_table_is_the_codes_mapping() -> None:
+    """The table in the module docstring says exactly what CODES says, code by code."""
+    expected = {name: (table_severity(code), code.meaning) for name, code in alerts.CODES.items()}
+    assert expected == docstring_table()
+
+
+def test_every_code_constant_is_in_the_mapping() -> None:
+    """Each upper-case code constant of the module has a severity and a meaning."""
+    constants = {
+        value
+        for name, value in vars(alerts).items()
+        if name.isupper() and isinstance(value, str) and name not in ("CODES",)
+    }
+    assert constants == set(alerts.CODES)
+
+
+@pytest.mark.parametrize(
+    ("code", "case", "expected"),
+    [
+        ("fill_overfill", None, "critical"),
+        ("replan_failed", None, "critical"),
+        ("internal_error", None, "critical"),
+        ("order_expired", "residual", "warning"),
+        ("order_expired", "complete", "info"),
+    ],
+    ids=["overfill", "replan-failed", "internal-error", "expired-residual", "expired-complete"],
+)
+def test_event_takes_its_severity_from_the_table(
+    code: str, case: str | None, expected: str
+) -> None:
+    """A one-shot alert carries the severity CODES gives its code (and case)."""
+    message = alerts.event(code, "text", order_id="A", symbol="ZEPH", ts=TS, case=case)
+    assert expected == message.severity
+
+
+@pytest.mark.parametrize(
+    ("code", "case"),
+    [
+        ("order_expired", None),
+        ("order_expired", "late"),
+        ("order_done", "residual"),
+        ("nope", None),
+    ],
+    ids=["case-missing", "case-unknown", "case-not-needed", "unknown-code"],
+)
+def test_event_refuses_a_case_that_does_not_fit(code: str, case: str | None) -> None:
+    """A missing, unknown or needless case, or an unknown code, is a caller's bug: KeyError."""
+    with pytest.raises(KeyError):
+        alerts.event(code, "text", order_id="A", symbol="ZEPH", ts=TS, case=case)
+
+
+def test_a_check_raises_with_the_severity_of_its_code() -> None:
+    """A condition raised through the book carries its code's severity from CODES."""
+    book = AlertBook()
+    check = alerts.completion(quantity=100_000, shortfall=5_000, config=CONFIG)
+    message = book.apply(check, scope="A", order_id="A", symbol="ZEPH", ts=TS)
+    assert message is not None
+    assert ("completion_infeasible", "critical") == (message.code, message.severity)

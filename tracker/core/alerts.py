@@ -14,28 +14,46 @@ otherwise. So a condition is reported once and cleared once, not every bin.
 *Events* (a fill for an unknown order, an overfill, an order done, ...) are one-shot: each is its
 own fact and is reported once when it happens (:func:`event`), with no clear.
 
-Codes (severity):
+Codes: :data:`CODES` maps each code to its severity and meaning; the table below is that mapping
+written out (a test holds the two together). A cleared condition is always reported with severity
+``info``. A code whose severity depends on the case lists one severity per case
+(``case: severity``), and its raiser names the case.
 
-=========================  ========  =============================================================
-behind_plan                warning   filled below the baseline plan beyond the tolerance
-ahead_of_plan              warning   filled above the baseline plan beyond the tolerance
-completion_infeasible      critical  the participation cap cannot complete the order in time
-volume_shock               warning   a bin's volume far from its forecast (symbol scope)
-spread_shock               warning   a bin's spread far from its forecast (symbol scope)
-limit_blocking             warning   the market is beyond the order's limit price
-market_data_stale          critical  no bin for the symbol for more than ``stale_bins`` bins
-replan_moved               info      a re-plan moved the schedule materially
-fill_unknown_order         critical  a fill names an order the engine does not know
-fill_overfill              critical  fills exceed the order quantity
-fill_after_close           warning   a fill on an order that is done, cancelled or expired
-fill_duplicate_conflict    critical  a fill id seen before with different content (rejected)
-fill_wrong_side            critical  a fill whose side differs from the order's (rejected)
-fill_price_outside         warning   a fill price far outside its bin's low-high range
-order_done                 info      the order is complete
-order_expired              warning   the order's end passed with shares left (info if none left)
-order_halted / resumed     info      a control message halted or resumed the order
-default_profile            info      no liquidity profile for a symbol: the stated default is used
-=========================  ========  =============================================================
+=========================  ====================  ===================================================
+code                       severity              meaning
+=========================  ====================  ===================================================
+behind_plan                warning               filled below the baseline plan beyond the tolerance
+ahead_of_plan              warning               filled above the baseline plan beyond the tolerance
+completion_infeasible      critical              the participation cap cannot complete the order in
+                                                 time
+volume_shock               warning               a bin's volume far from its forecast (symbol scope)
+spread_shock               warning               a bin's spread far from its forecast (symbol scope)
+limit_blocking             warning               the market is beyond the order's limit price
+market_data_stale          critical              no bin for the symbol for more than ``stale_bins``
+                                                 bins (symbol scope)
+replan_moved               info                  a re-plan moved the schedule materially
+replan_failed              critical              a re-plan could not be made; the previous plan and
+                                                 target stand
+fill_unknown_order         critical              a fill names an order the engine does not know
+fill_overfill              critical              fills exceed the order quantity
+fill_after_close           warning               a fill on an order that is done, cancelled or
+                                                 expired
+fill_duplicate_conflict    critical              a fill id seen before with different content
+                                                 (rejected)
+fill_wrong_side            critical              a fill whose side differs from the order's
+                                                 (rejected)
+fill_price_outside         warning               a fill price far outside its bin's low-high range
+order_done                 info                  the order is complete
+order_expired              residual: warning,    the order's end passed: with shares left (residual)
+                           complete: info        or none (complete)
+order_halted               info                  a control message (or a halt of all orders) halted
+                                                 the order
+order_resumed              info                  a control message resumed the order
+default_profile            info                  no liquidity profile for a symbol: the stated
+                                                 default is used (symbol scope)
+internal_error             critical              handling a message failed inside the engine (a
+                                                 bug); the message was not applied
+=========================  ====================  ===================================================
 """
 
 from __future__ import annotations
@@ -68,6 +86,88 @@ ORDER_EXPIRED = "order_expired"
 ORDER_HALTED = "order_halted"
 ORDER_RESUMED = "order_resumed"
 DEFAULT_PROFILE = "default_profile"
+REPLAN_FAILED = "replan_failed"
+INTERNAL_ERROR = "internal_error"
+
+
+@dataclass(frozen=True, slots=True)
+class Code:
+    """What an alert code means and how severe it is.
+
+    Attributes:
+        severity: The severity it is raised with, or one severity per case (``{"residual":
+            "warning", "complete": "info"}``) when that depends on the case; the raiser then names
+            the case.
+        meaning: One line for the desk: what happened.
+    """
+
+    severity: Severity | Mapping[str, Severity]
+    meaning: str
+
+    def severity_of(self, case: str | None = None) -> Severity:
+        """The severity of a raise (of ``case``, for a code whose severity depends on the case).
+
+        Raises:
+            KeyError: ``case`` is missing, not needed, or not one of the code's cases.
+        """
+        if isinstance(self.severity, str):
+            if case is not None:
+                raise KeyError(f"this code has one severity; got case {case!r}")
+            return self.severity
+        if case is None or case not in self.severity:
+            raise KeyError(f"name the case, one of {', '.join(self.severity)}; got {case!r}")
+        return self.severity[case]
+
+
+#: Every alert code: its severity and meaning (the module docstring's table shows the same).
+CODES: Mapping[str, Code] = {
+    BEHIND_PLAN: Code("warning", "filled below the baseline plan beyond the tolerance"),
+    AHEAD_OF_PLAN: Code("warning", "filled above the baseline plan beyond the tolerance"),
+    COMPLETION_INFEASIBLE: Code(
+        "critical", "the participation cap cannot complete the order in time"
+    ),
+    VOLUME_SHOCK: Code("warning", "a bin's volume far from its forecast (symbol scope)"),
+    SPREAD_SHOCK: Code("warning", "a bin's spread far from its forecast (symbol scope)"),
+    LIMIT_BLOCKING: Code("warning", "the market is beyond the order's limit price"),
+    MARKET_DATA_STALE: Code(
+        "critical", "no bin for the symbol for more than ``stale_bins`` bins (symbol scope)"
+    ),
+    REPLAN_MOVED: Code("info", "a re-plan moved the schedule materially"),
+    REPLAN_FAILED: Code(
+        "critical", "a re-plan could not be made; the previous plan and target stand"
+    ),
+    FILL_UNKNOWN_ORDER: Code("critical", "a fill names an order the engine does not know"),
+    FILL_OVERFILL: Code("critical", "fills exceed the order quantity"),
+    FILL_AFTER_CLOSE: Code("warning", "a fill on an order that is done, cancelled or expired"),
+    FILL_DUPLICATE_CONFLICT: Code(
+        "critical", "a fill id seen before with different content (rejected)"
+    ),
+    FILL_WRONG_SIDE: Code("critical", "a fill whose side differs from the order's (rejected)"),
+    FILL_PRICE_OUTSIDE: Code("warning", "a fill price far outside its bin's low-high range"),
+    ORDER_DONE: Code("info", "the order is complete"),
+    ORDER_EXPIRED: Code(
+        {"residual": "warning", "complete": "info"},
+        "the order's end passed: with shares left (residual) or none (complete)",
+    ),
+    ORDER_HALTED: Code("info", "a control message (or a halt of all orders) halted the order"),
+    ORDER_RESUMED: Code("info", "a control message resumed the order"),
+    DEFAULT_PROFILE: Code(
+        "info", "no liquidity profile for a symbol: the stated default is used (symbol scope)"
+    ),
+    INTERNAL_ERROR: Code(
+        "critical",
+        "handling a message failed inside the engine (a bug); the message was not applied",
+    ),
+}
+
+
+def severity(code: str, case: str | None = None) -> Severity:
+    """The severity :data:`CODES` gives ``code`` (in ``case``, where it depends on the case).
+
+    Raises:
+        KeyError: an unknown code, or a case that does not fit the code.
+    """
+    return CODES[code].severity_of(case)
 
 
 @dataclass(frozen=True)
@@ -151,8 +251,7 @@ class Check:
     """The verdict of one rule on one condition, before hysteresis.
 
     Attributes:
-        code: The alert code.
-        severity: info, warning or critical.
+        code: The alert code (its severity comes from :data:`CODES`).
         breach: The condition is bad enough to raise now.
         recovered: The condition is good enough to clear now (never true with ``breach``).
         message: Plain-language message for a raise (or a function making it: the text is
@@ -163,12 +262,16 @@ class Check:
     """
 
     code: str
-    severity: Severity
     breach: bool
     recovered: bool
     message: Text
     clear_message: Text
     details: Mapping[str, Any] | Callable[[], Mapping[str, Any]] = field(default_factory=dict)
+
+    @property
+    def severity(self) -> Severity:
+        """The severity of a raise of this code."""
+        return severity(self.code)
 
 
 class AlertBook:
@@ -182,10 +285,6 @@ class AlertBook:
     def is_raised(self, scope: str, code: str) -> bool:
         """Whether ``code`` is currently raised for ``scope``."""
         return (scope, code) in self._raised
-
-    def raised(self, scope: str) -> list[str]:
-        """The codes raised for ``scope``, sorted."""
-        return sorted(code for s, code in self._raised if s == scope)
 
     def apply(
         self,
@@ -231,20 +330,33 @@ class AlertBook:
 
 def event(
     code: str,
-    severity: Severity,
     message: str,
     *,
     order_id: str | None,
     symbol: str | None,
     ts: datetime,
     details: Mapping[str, Any] | None = None,
+    case: str | None = None,
 ) -> AlertMessage:
-    """A one-shot alert (an event, not a condition): raised once, never cleared."""
+    """A one-shot alert (an event, not a condition): raised once, never cleared.
+
+    Args:
+        code: One of :data:`CODES`; the alert's severity comes from there.
+        message: Plain-language text for the desk.
+        order_id: The order it concerns (``None``: a symbol as a whole).
+        symbol: The symbol it concerns.
+        ts: Event time.
+        details: Numbers behind it (JSON-able).
+        case: For a code whose severity depends on the case, which case this is.
+
+    Raises:
+        KeyError: an unknown code, or a case that does not fit the code (a bug of the caller).
+    """
     return AlertMessage(
         order_id=order_id,
         symbol=symbol,
         code=code,
-        severity=severity,
+        severity=severity(code, case),
         state="raised",
         message=message,
         details=dict(details or {}),
@@ -306,7 +418,6 @@ def deviation(
         checks.append(
             Check(
                 code=code,
-                severity="warning",
                 breach=big and this_side,
                 recovered=small or not this_side,
                 message=lambda word=word: (  # type: ignore[misc]
@@ -326,7 +437,6 @@ def completion(*, quantity: float, shortfall: float, config: AlertConfig) -> Che
     pct = 100.0 * shortfall / quantity if quantity > 0 else 0.0
     return Check(
         code=COMPLETION_INFEASIBLE,
-        severity="critical",
         breach=shortfall >= 1 and pct >= config.infeasible_pct,
         recovered=shortfall < 1 or pct < config.clear_ratio * config.infeasible_pct,
         message=lambda: (
@@ -357,7 +467,6 @@ def _ratio_check(
     shown = "inf" if math.isinf(ratio) else f"{ratio:.2f}"
     return Check(
         code=code,
-        severity="warning",
         breach=high or low,
         recovered=within,
         message=lambda: (
@@ -404,7 +513,6 @@ def limit_blocking(*, blocked: bool, side: str, limit: float | None, price: floa
     beyond = "above" if side == "buy" else "below"
     return Check(
         code=LIMIT_BLOCKING,
-        severity="warning",
         breach=blocked,
         recovered=not blocked,
         message=lambda: (
@@ -423,7 +531,6 @@ def stale(*, age_seconds: float | None, bin_seconds: float, config: AlertConfig)
     age_text = f"{age_seconds:.0f} s" if age_seconds is not None else "now"
     return Check(
         code=MARKET_DATA_STALE,
-        severity="critical",
         breach=breach,
         recovered=age_seconds is None,
         message=lambda: (
@@ -440,7 +547,6 @@ def replan_moved(*, move_shares: float, quantity: float, config: AlertConfig) ->
     pct = 100.0 * abs(move_shares) / quantity if quantity > 0 else 0.0
     return Check(
         code=REPLAN_MOVED,
-        severity="info",
         breach=pct >= config.replan_move_pct,
         recovered=pct < config.clear_ratio * config.replan_move_pct,
         message=lambda: (
@@ -461,6 +567,7 @@ def fill_price_outside(*, price: float, low: float, high: float, config: AlertCo
 __all__ = [
     "AHEAD_OF_PLAN",
     "BEHIND_PLAN",
+    "CODES",
     "COMPLETION_INFEASIBLE",
     "DEFAULT_PROFILE",
     "FILL_AFTER_CLOSE",
@@ -469,24 +576,28 @@ __all__ = [
     "FILL_PRICE_OUTSIDE",
     "FILL_UNKNOWN_ORDER",
     "FILL_WRONG_SIDE",
+    "INTERNAL_ERROR",
     "LIMIT_BLOCKING",
     "MARKET_DATA_STALE",
     "ORDER_DONE",
     "ORDER_EXPIRED",
     "ORDER_HALTED",
     "ORDER_RESUMED",
+    "REPLAN_FAILED",
     "REPLAN_MOVED",
     "SPREAD_SHOCK",
     "VOLUME_SHOCK",
     "AlertBook",
     "AlertConfig",
     "Check",
+    "Code",
     "completion",
     "deviation",
     "event",
     "fill_price_outside",
     "limit_blocking",
     "replan_moved",
+    "severity",
     "spread_shock",
     "stale",
     "volume_shock",

@@ -109,8 +109,6 @@ FloatArray = npt.NDArray[np.float64]
 #: first bin of the symbol arrives.
 ASSUMED_SPREAD_BPS = 5.0
 
-REPLAN_FAILED = "replan_failed"
-
 
 @dataclass(frozen=True)
 class EngineConfig(AlertConfig):
@@ -567,21 +565,21 @@ class Engine:
     def _event(
         self,
         code: str,
-        severity: str,
         message: str,
         order: _Order | None,
         symbol: str | None,
         ts: datetime,
         details: Mapping[str, Any] | None = None,
+        case: str | None = None,
     ) -> AlertMessage:
         return rules.event(
             code,
-            severity,  # type: ignore[arg-type]
             message,
             order_id=order.order_id if order else None,
             symbol=symbol,
             ts=ts,
             details=details,
+            case=case,
         )
 
     def _symbol(self, name: str, ts: datetime) -> _Symbol:
@@ -594,7 +592,6 @@ class Engine:
             self._emit(
                 self._event(
                     rules.DEFAULT_PROFILE,
-                    "info",
                     f"No liquidity profile for {name}: using the stated default profile "
                     f"(1,000,000 shares a day, invented U-shaped curves). Calibrate one with "
                     f"'tracker calibrate' for real decisions.",
@@ -653,7 +650,6 @@ class Engine:
             self._emit(
                 self._event(
                     rules.ORDER_HALTED,
-                    "info",
                     "The order reached its start during a halt of all orders; it stays halted "
                     "until resumed.",
                     order,
@@ -682,12 +678,12 @@ class Engine:
         self._emit(
             self._event(
                 rules.ORDER_EXPIRED,
-                "warning" if residual > 0 else "info",
                 message,
                 order,
                 order.symbol,
                 now,
                 {"residual": residual, "filled": order.filled, "quantity": order.quantity},
+                case="residual" if residual > 0 else "complete",
             )
         )
 
@@ -791,7 +787,6 @@ class Engine:
                 self._emit(
                     self._event(
                         rules.ORDER_HALTED,
-                        "info",
                         "The order is halted: its targets are zero until it is resumed.",
                         order,
                         order.symbol,
@@ -802,7 +797,6 @@ class Engine:
                 self._emit(
                     self._event(
                         rules.ORDER_RESUMED,
-                        "info",
                         "The order is resumed and re-planned from its current inventory.",
                         order,
                         order.symbol,
@@ -996,7 +990,6 @@ class Engine:
         self._emit(
             self._event(
                 rules.ORDER_DONE,
-                "info",
                 f"The order is complete: {order.filled:,} shares at an average price of "
                 f"{order.notional / order.filled:.4f}."
                 if order.filled
@@ -1013,7 +1006,6 @@ class Engine:
         if order is None:
             alert = self._event(
                 rules.FILL_UNKNOWN_ORDER,
-                "critical",
                 f"Fill {fill.fill_id} ({fill.quantity:,} shares at {fill.price}) names an order "
                 "the engine does not know; it is not counted anywhere.",
                 None,
@@ -1033,7 +1025,6 @@ class Engine:
                 return  # redelivery
             alert = self._event(
                 rules.FILL_DUPLICATE_CONFLICT,
-                "critical",
                 f"Fill id {fill.fill_id} arrived again with different content; the first "
                 "version stands and this one is not counted.",
                 order,
@@ -1054,7 +1045,6 @@ class Engine:
         if fill.side is not None and fill.side != order.side:
             alert = self._event(
                 rules.FILL_WRONG_SIDE,
-                "critical",
                 f"Fill {fill.fill_id} is a {fill.side} on a {order.side} order; it is not counted.",
                 order,
                 order.symbol,
@@ -1077,7 +1067,6 @@ class Engine:
             self._emit(
                 self._event(
                     rules.FILL_AFTER_CLOSE,
-                    "warning",
                     f"Fill {fill.fill_id} ({fill.quantity:,} shares) arrived after the order was "
                     f"{order.life.state.value}; it is recorded because it happened in the market.",
                     order,
@@ -1090,7 +1079,6 @@ class Engine:
             self._emit(
                 self._event(
                     rules.FILL_OVERFILL,
-                    "critical",
                     f"Fills total {order.filled:,} shares, {order.filled - order.quantity:,} more "
                     f"than the order's {order.quantity:,}. The fill is recorded; targets stay at "
                     "zero.",
@@ -1222,7 +1210,6 @@ class Engine:
                 self._emit(
                     self._event(
                         rules.FILL_PRICE_OUTSIDE,
-                        "warning",
                         f"Fill {fill.fill_id} at {fill.price} is outside its bin's range "
                         f"{message.low}-{message.high} by more than "
                         f"{self.config.fill_price_tolerance_pct:g} %. Check the fill.",
@@ -1458,8 +1445,7 @@ class Engine:
 
     def _replan_failed(self, order: _Order, ts: datetime, why: str) -> AlertMessage:
         return self._event(
-            REPLAN_FAILED,
-            "critical",
+            rules.REPLAN_FAILED,
             f"The re-plan failed ({why}); the previous plan and target stand. Report this with "
             "the replay file.",
             order,
@@ -1578,4 +1564,4 @@ def _order_key(message: Outbound) -> str:
     return order_id or ""
 
 
-__all__ = ["ASSUMED_SPREAD_BPS", "REPLAN_FAILED", "Engine", "EngineConfig"]
+__all__ = ["ASSUMED_SPREAD_BPS", "Engine", "EngineConfig"]
