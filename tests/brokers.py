@@ -176,7 +176,7 @@ async def async_wait_until(predicate: Callable[[], bool], timeout: float, what: 
 
 @functools.lru_cache(maxsize=1)
 def _day() -> tuple[tuple[str, bytes, str], ...]:
-    from tracker.sim.scenario import run_day
+    from tracker.shell.simulated_day import run_day
 
     rows = []
     for record in run_day().records:

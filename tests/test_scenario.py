@@ -19,7 +19,7 @@ import pytest
 from tracker.cli import main
 from tracker.core.engine import Engine
 from tracker.edge.recordings import read_input
-from tracker.edge.records import Record
+from tracker.edge.records import Record, payload_bytes, record_line
 from tracker.edge.wire import (
     BinMessage,
     ControlMessage,
@@ -32,15 +32,12 @@ from tracker.edge.wire import (
 )
 from tracker.errors import InputError
 from tracker.shell.replay import OUTPUT_FILES, replay, write_outputs
+from tracker.shell.simulated_day import DayRun, run_day, write_day
 from tracker.sim.scenario import (
     CANCEL,
     SHOCK,
     VOLUME_SHARE_CAP,
-    DayRun,
     Scenario,
-    record_line,
-    run_day,
-    write_day,
 )
 
 BIN = timedelta(minutes=5)
@@ -377,11 +374,9 @@ def test_simulate_day_command_writes_the_recording(tmp_path: Path) -> None:
 
 def test_payload_bytes_decode_to_the_same_message() -> None:
     """The bytes published over MQTT decode to the same message as the recorded object."""
-    from tracker.sim.scenario import payload_bytes
-
     record = Scenario(7).inbound_until(datetime(2026, 3, 10, 13, 29, tzinfo=UTC))[0]
     expected = decode(record.topic, record.payload)
-    assert expected == decode(record.topic, payload_bytes(record))
+    assert expected == decode(record.topic, payload_bytes(record.payload))
 
 
 def test_no_fill_while_halted(closed_loop: DayRun) -> None:

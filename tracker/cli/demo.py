@@ -3,14 +3,13 @@
 The demo starts an embedded MQTT broker (:mod:`tracker.shell.broker`, pure Python) on a free
 loopback port -- or uses ``--broker URL`` -- and on it:
 
-* the daemon (:class:`tracker.shell.daemon.Daemon`), exactly as ``tracker run`` runs it, journaling
-into
-  ``OUT/journal.sqlite``, on a simulated clock that runs ``--speed`` times real time;
-* the scripted market and order router of :mod:`tracker.sim.scenario` (invented symbols ZEPH, KALO
-and
-  MIRA on the invented venue Harbour Lane Exchange, HLX): it publishes bins, orders and fills when
-  they fall due on that clock, and works the targets the daemon publishes (it reads them from the
-  broker like any router would).
+* the daemon (:class:`tracker.shell.daemon.Daemon`), exactly as ``tracker run`` runs it,
+  journaling into ``OUT/journal.sqlite``, on a simulated clock that runs ``--speed`` times real
+  time;
+* the scripted market and order router of :mod:`tracker.sim.scenario` (invented symbols ZEPH,
+  KALO and MIRA on the invented venue Harbour Lane Exchange, HLX): it publishes bins, orders and
+  fills when they fall due on that clock, and works the targets the daemon publishes (it reads them
+  from the broker like any router would).
 
 While the day runs, a table of the working orders is shown. At the end the daemon stops as on
 SIGTERM, the journal is replayed into ``OUT/replay/`` (targets, alerts, status, errors and
@@ -23,7 +22,6 @@ from __future__ import annotations
 import argparse
 import asyncio
 import contextlib
-import json
 import shutil
 import sys
 import time as _time
@@ -33,6 +31,8 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+from tracker.core.topics import DEFAULT_ROOT, Topics
+from tracker.edge.records import payload_bytes
 from tracker.errors import InputError
 
 DESCRIPTION = """\
@@ -82,7 +82,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         metavar="URL",
         help="use this MQTT broker (mqtt://HOST:PORT) instead of starting the embedded one",
     )
-    parser.add_argument("--root", default="tracker", help="MQTT topic root (default tracker)")
+    parser.add_argument(
+        "--root", default=DEFAULT_ROOT, help=f"MQTT topic root (default {DEFAULT_ROOT})"
+    )
     parser.add_argument("--seed", type=int, default=7, help="seed of the invented day (default 7)")
     parser.add_argument(
         "--table",
@@ -167,7 +169,7 @@ async def play_day(
     speed: float = 390.0,
     out: Path,
     broker_url: str | None = None,
-    root: str = "tracker",
+    root: str = DEFAULT_ROOT,
     seed: int = 7,
     show_table: bool = False,
 ) -> DemoResult:
@@ -302,7 +304,8 @@ async def _drive(
 
     broker = settings.broker
     root = settings.root
-    watched = (f"{root}/targets/+", f"{root}/status/+")
+    topics = Topics(root)
+    watched = (topics.targets(), topics.status())
     close = scenario.session.bins(scenario.day)[-1][1]
     finish = close.astimezone(UTC) + timedelta(minutes=AFTER_CLOSE_MINUTES)
     heard = [_time.monotonic()]
@@ -328,7 +331,7 @@ async def _drive(
                 heard[0] = _time.monotonic()
                 payload = message.payload
                 assert isinstance(payload, bytes | bytearray)
-                if topic.startswith(f"{root}/targets/"):
+                if topic.startswith(topics.targets("")):
                     scenario.on_output(TargetMessage.model_validate_json(payload))
                     woken.set()
                 else:
@@ -342,7 +345,7 @@ async def _drive(
                 now = clock()
                 if due is not None and due <= now:
                     for record in scenario.inbound_until(now):
-                        await client.publish(record.topic, _payload(record.payload), qos=1)
+                        await client.publish(record.topic, payload_bytes(record.payload), qos=1)
                         heard[0] = _time.monotonic()
                     continue
                 refresh()
@@ -372,14 +375,6 @@ async def _quiet(daemon: Any, heard: list[float]) -> bool:
     """The daemon has nothing in hand and nothing was heard for a moment."""
     busy = daemon.inbox.qsize() or len(daemon.outbox)
     return not busy and _time.monotonic() - heard[0] >= QUIET_SECONDS
-
-
-def _payload(payload: Any) -> bytes:
-    if isinstance(payload, bytes):
-        return payload
-    if isinstance(payload, str):
-        return payload.encode("utf-8")
-    return json.dumps(payload, separators=(",", ":"), ensure_ascii=False).encode("utf-8")
 
 
 class _SimClock:

@@ -9,7 +9,7 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
-from tracker.edge.records import Record
+from tracker.edge.records import Record, compact_json
 from tracker.errors import InputError
 
 DESCRIPTION = """\
@@ -71,17 +71,13 @@ def export_payload(payload: bytes) -> tuple[Any, bool]:
         parsed = json.loads(text, parse_constant=_no_constants)
     except (ValueError, RecursionError):
         return text, True
-    if isinstance(parsed, dict) and _compact(parsed) == text:
+    if isinstance(parsed, dict) and compact_json(parsed) == text:
         return parsed, True
     return text, True
 
 
 def _no_constants(name: str) -> Any:
     raise ValueError(name)
-
-
-def _compact(obj: Any) -> str:
-    return json.dumps(obj, ensure_ascii=False, separators=(",", ":"))
 
 
 def export_lines(records: Iterable[Record]) -> Iterable[tuple[str, bool]]:
@@ -93,7 +89,7 @@ def export_lines(records: Iterable[Record]) -> Iterable[tuple[str, bool]]:
         else:
             value, exact = payload, True
         line = {"topic": record.topic, "payload": value, "ts": record.ts}
-        yield _compact(line), exact
+        yield compact_json(line), exact
 
 
 def run_export(args: argparse.Namespace) -> int:

@@ -9,7 +9,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from tracker.edge.wire import DEFAULT_ROOT
+from tracker.core.topics import DEFAULT_ROOT
 
 if TYPE_CHECKING:
     pass

@@ -9,6 +9,7 @@ import argparse
 from datetime import date
 from pathlib import Path
 
+from tracker.core.topics import DEFAULT_ROOT
 from tracker.errors import InputError
 
 DESCRIPTION = """\
@@ -59,7 +60,9 @@ def add_day_parser(actions: argparse._SubParsersAction[argparse.ArgumentParser])
         help="also write the engine's outputs of the run (as `tracker replay --out` does)",
     )
     parser.add_argument(
-        "--root", default="tracker", help="MQTT topic root of the messages (default: tracker)"
+        "--root",
+        default=DEFAULT_ROOT,
+        help=f"MQTT topic root of the messages (default: {DEFAULT_ROOT})",
     )
     parser.set_defaults(handler=run)
 
@@ -68,7 +71,7 @@ def run(args: argparse.Namespace) -> int:
     """Run the day, write the recording (and the outputs if asked); print a one-line account."""
     from tracker.shell.config import validate_root
     from tracker.shell.replay import write_outputs
-    from tracker.sim.scenario import run_day, write_day
+    from tracker.shell.simulated_day import run_day, write_day
 
     try:
         day = date.fromisoformat(args.date)

@@ -79,7 +79,6 @@ class Forecast:
         volatility_ratio: Today's volatility multiplier.
         average_daily_volume: The profile's average daily volume (shares), unscaled.
         observed: Indexes of the bins observed so far, sorted.
-        fraction_seen: Fraction of the day's expected volume in the observed bins.
     """
 
     session: Session
@@ -91,7 +90,6 @@ class Forecast:
     volatility_ratio: float = 1.0
     average_daily_volume: float = DEFAULT_ADV
     observed: tuple[int, ...] = ()
-    fraction_seen: float = 0.0
 
     @property
     def n_bins(self) -> int:
@@ -212,5 +210,4 @@ def forecast(
         volatility_ratio=volatility_ratio,
         average_daily_volume=profile.average_daily_volume,
         observed=tuple(indexes),
-        fraction_seen=fraction,
     )

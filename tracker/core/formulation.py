@@ -39,7 +39,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, fields
 from datetime import datetime
 from typing import Any
 
@@ -186,11 +186,6 @@ def preferences(
             )
         values[key] = value
     return Preferences(**values, urgency=name)
-
-
-def with_preferences(base: Preferences, **changes: Any) -> Preferences:
-    """A copy of ``base`` with some fields changed (validated again)."""
-    return replace(base, **changes)
 
 
 def build_problem(

@@ -44,11 +44,11 @@ from pathlib import Path
 from typing import Any, Final, Literal
 from urllib.parse import unquote, urlsplit
 
+from tracker.core.topics import DEFAULT_ROOT
 from tracker.errors import InputError
 from tracker.shell.files import read_document
 
 __all__ = [
-    "DEFAULT_ROOT",
     "ENVIRONMENT",
     "BrokerSettings",
     "Secret",
@@ -58,7 +58,6 @@ __all__ = [
     "validate_root",
 ]
 
-DEFAULT_ROOT: Final = "tracker"
 DEFAULT_BROKER: Final = "mqtt://127.0.0.1:1883"
 
 #: Environment variable of each setting (the key is the setting's dotted name).

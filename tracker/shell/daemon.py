@@ -7,18 +7,17 @@ Everything the engine sees passes through two stages, in one order. Stage 1 (jou
 1. take what is waiting in the bounded inbox (deliveries from :class:`tracker.shell.bus.Bus`, tick
    requests from the timer), at most ``batch_size`` at a time;
 2. append them to the :class:`tracker.shell.journal.Journal` in one transaction and commit it
-(durably,
-   per the journal's policy), each with the receive time of the daemon's clock; the commit runs in
-   a worker thread, so messages keep arriving meanwhile and the next group is larger when the disk
-   is slow (group commit);
+   (durably, per the journal's policy), each with the receive time of the daemon's clock; the
+   commit runs in a worker thread, so messages keep arriving meanwhile and the next group is larger
+   when the disk is slow (group commit);
 3. acknowledge them to the broker (only now: a crash before this line makes the broker deliver
    them again, and a redelivered copy changes nothing).
 
 Stage 2 (apply), which works on one group while stage 1 commits the next:
 
-4. feed each journaled record, exactly as journaled, to a :class:`tracker.edge.intake.Intake` -- the
-   same code ``tracker replay`` runs -- which decodes it (or rejects it with a reason), skips exact
-   redeliveries, and hands it to :meth:`Engine.handle`;
+4. feed each journaled record, exactly as journaled, to a :class:`tracker.edge.intake.Intake` --
+   the same code ``tracker replay`` runs -- which decodes it (or rejects it with a reason), skips
+   exact redeliveries, and hands it to :meth:`Engine.handle`;
 5. put every output in the outbox, which the bus publishes at QoS 1 (status retained).
 
 Because live processing *is* a replay of the journal as it grows, a replay of the journal gives
@@ -59,6 +58,8 @@ from typing import IO, TYPE_CHECKING, Any, Self
 
 import structlog
 
+from tracker.core.formats import utc_text
+from tracker.core.topics import Topics
 from tracker.edge.intake import EngineLike, Intake
 from tracker.edge.records import Record
 from tracker.edge.wire import (
@@ -93,12 +94,12 @@ OUTBOX_CAPACITY = 20_000
 
 def format_ts(moment: datetime) -> str:
     """A receive time as the journal keeps it: ISO 8601 in UTC with microseconds and a ``Z``."""
-    return moment.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    return utc_text(moment, "microseconds")
 
 
 def inbound_topics(root: str) -> tuple[str, ...]:
     """The topic filters the daemon subscribes to (never the tick topic: ticks are ours)."""
-    return (f"{root}/orders/+", f"{root}/fills/+", f"{root}/bins/+", f"{root}/control")
+    return Topics(root).inbound
 
 
 def build_engine(settings: Settings) -> Engine:
@@ -215,7 +216,7 @@ class Daemon:
             subscriptions=inbound_topics(settings.root),
             inbox=self.inbox,  # type: ignore[arg-type]
             outbox=self.outbox,
-            health_topic=f"{settings.root}/health/{settings.instance}",
+            health_topic=Topics(settings.root).health(settings.instance),
             health=self.health,
             on_published=self._confirmed,
             heartbeat_seconds=settings.heartbeat_seconds,
@@ -417,7 +418,7 @@ class Daemon:
         for item in batch:
             if isinstance(item, _TickRequest):
                 tick = Tick(ts=_parse_ts(ts))
-                rows.append((f"{self.root}/tick", encode(tick), ts))
+                rows.append((Topics(self.root).tick, encode(tick), ts))
             else:
                 rows.append((item.topic, self._limited(item), ts))
                 self.received += 1
@@ -445,7 +446,7 @@ class Daemon:
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
-        for run in _runs(records, f"{self.root}/bins/"):
+        for run in _runs(records, Topics(self.root).bins("")):
             for record, outputs in zip(run, self._feed_run(run), strict=True):
                 seq = record.line
                 self._applied = seq

@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from tracker.core.topics import DEFAULT_ROOT
 from tracker.edge.intake import DEFAULT_TICK_SECONDS, EngineLike, Intake, has_ticks
 from tracker.edge.recordings import BadLine
 from tracker.edge.records import Record
@@ -65,7 +66,7 @@ class ReplayResult:
 def replay(
     records: Iterable[Record | BadLine],
     engine: EngineLike,
-    root: str = "tracker",
+    root: str = DEFAULT_ROOT,
     *,
     tick_seconds: float = DEFAULT_TICK_SECONDS,
     check_time: bool = True,

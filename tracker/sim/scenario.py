@@ -9,9 +9,9 @@ Theory of operation
 :class:`Scenario` is a state machine that owns a queue of timed inbound messages. It never reads a
 clock and never touches the network: its driver asks :meth:`Scenario.next_time` when the next
 message is due, takes the due messages with :meth:`Scenario.inbound_until`, hands them to the engine
-(in-process, :func:`run_day`) or publishes them (over MQTT, ``tracker demo``), and passes whatever
-the engine said back through :meth:`Scenario.on_output`. Only targets matter to it: they are what
-the order router works.
+(in-process, :func:`tracker.shell.simulated_day.run_day`) or publishes them (over MQTT,
+``tracker demo``), and passes whatever the engine said back through :meth:`Scenario.on_output`.
+Only targets matter to it: they are what the order router works.
 
 What goes into the queue:
 
@@ -29,13 +29,13 @@ What goes into the queue:
 
 The same seed gives the same day, message for message (given the same engine outputs).
 
-Driving it (in-process, :func:`run_day`, or over MQTT, ``tracker demo``)::
+Driving it (in-process as :func:`tracker.shell.simulated_day.run_day` does, or over MQTT)::
 
     scenario = Scenario(seed)
     while (due := scenario.next_time()) is not None:
         # live: wait until the (scaled) clock reaches `due`
         for record in scenario.inbound_until(due):
-            publish(record.topic, payload_bytes(record))   # or feed the engine directly
+            publish(record.topic, payload_bytes(record.payload))  # or feed the engine
         for message in outputs_received_meanwhile():        # targets, status, ...
             scenario.on_output(message)
 
@@ -46,23 +46,20 @@ handed out, so outputs that arrive late (over a broker) never make time go backw
 from __future__ import annotations
 
 import heapq
-import json
 import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, time, timedelta
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from tracker.core.formats import utc_text
 from tracker.core.session import Session
-from tracker.edge.intake import DEFAULT_TICK_SECONDS, Intake
-from tracker.edge.recordings import parse_line
+from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.edge.records import Record
 from tracker.edge.wire import Outbound, StatusMessage, TargetMessage
 from tracker.errors import InputError
-from tracker.shell.replay import ReplayResult, finish_summary
 from tracker.sim.market import MarketParameters, simulate_day
 
 __all__ = [
@@ -70,14 +67,9 @@ __all__ = [
     "ORDERS",
     "SYMBOLS",
     "VENUE",
-    "DayRun",
     "MarketBin",
     "Scenario",
     "ScenarioOrder",
-    "payload_bytes",
-    "record_line",
-    "run_day",
-    "write_day",
 ]
 
 #: The invented venue.
@@ -256,7 +248,7 @@ class Scenario:
         seed: int = 7,
         *,
         day: date = DAY,
-        root: str = "tracker",
+        root: str = DEFAULT_ROOT,
         session: Session | None = None,
     ) -> None:
         if day.weekday() >= 5:
@@ -264,6 +256,7 @@ class Scenario:
         self.seed = seed
         self.day = day
         self.root = root
+        self.topics = Topics(root)
         self.session = session or Session()
         self._rng = np.random.default_rng([seed, 1])
         self._queue: list[_Due] = []
@@ -280,11 +273,6 @@ class Scenario:
         self._schedule_malformed()
 
     # ------------------------------------------------------------------ driver interface
-
-    @property
-    def done(self) -> bool:
-        """True when no message is left to send."""
-        return not self._queue
 
     def next_time(self) -> datetime | None:
         """When the next message falls due (``None`` when the day is over)."""
@@ -305,7 +293,7 @@ class Scenario:
             topic, payload = built
             self._clock = due.when
             self._line += 1
-            out.append(Record(line=self._line, topic=topic, payload=payload, ts=_iso(due.when)))
+            out.append(Record(line=self._line, topic=topic, payload=payload, ts=_ms(due.when)))
         if self._clock is None or ts > self._clock:
             self._clock = ts
         return out
@@ -326,7 +314,7 @@ class Scenario:
             for market_bin in self.market[symbol]:
                 self._push(
                     market_bin.end.astimezone(UTC) + BIN_LATENCY,
-                    f"{self.root}/bins/{symbol}",
+                    self.topics.bins(symbol),
                     _constant(_bin_payload(market_bin, market_bin.end + BIN_LATENCY)),
                 )
 
@@ -338,22 +326,22 @@ class Scenario:
     def _schedule_orders(self) -> None:
         for spec in ORDERS:
             submit = self._local(spec.submit)
-            self._push(submit, f"{self.root}/orders/{spec.order_id}", self._new_order(spec, submit))
+            self._push(submit, self.topics.orders(spec.order_id), self._new_order(spec, submit))
         order_id, at, changes = AMEND
         self._push(
-            self._local(at), f"{self.root}/orders/{order_id}", self._amend(order_id, at, changes)
+            self._local(at), self.topics.orders(order_id), self._amend(order_id, at, changes)
         )
         order_id, at = CANCEL
-        self._push(self._local(at), f"{self.root}/orders/{order_id}", self._cancel(order_id, at))
+        self._push(self._local(at), self.topics.orders(order_id), self._cancel(order_id, at))
         order_id, halt, resume = HALT
         for command, clock in (("halt", halt), ("resume", resume)):
             payload = {
                 "type": "control",
                 "command": command,
                 "order_id": order_id,
-                "ts": _iso(self._local(clock)),
+                "ts": _ms(self._local(clock)),
             }
-            self._push(self._local(clock), f"{self.root}/control", _constant(payload))
+            self._push(self._local(clock), self.topics.control, _constant(payload))
 
     def _new_order(self, spec: ScenarioOrder, submit: datetime) -> Callable[[], Mapping[str, Any]]:
         def build() -> Mapping[str, Any]:
@@ -365,12 +353,12 @@ class Scenario:
                 "symbol": spec.symbol,
                 "side": spec.side,
                 "quantity": spec.quantity,
-                "start": _iso(self._local(spec.start)),
-                "end": _iso(self._local(spec.end)),
+                "start": _ms(self._local(spec.start)),
+                "end": _ms(self._local(spec.end)),
                 "urgency": spec.urgency,
                 "max_participation": spec.max_participation,
                 "arrival_price": self._last_price(spec.symbol, submit),
-                "ts": _iso(submit),
+                "ts": _ms(submit),
             }
             if spec.limit_price is not None:
                 payload["limit_price"] = spec.limit_price
@@ -389,8 +377,8 @@ class Scenario:
                 payload["quantity"] = working.quantity
             if "end" in changes:
                 working.end = self._local(changes["end"])
-                payload["end"] = _iso(working.end)
-            payload["ts"] = _iso(self._local(at))
+                payload["end"] = _ms(working.end)
+            payload["ts"] = _ms(self._local(at))
             return payload
 
         return build
@@ -404,7 +392,7 @@ class Scenario:
                 "type": "order",
                 "action": "cancel",
                 "order_id": order_id,
-                "ts": _iso(self._local(at)),
+                "ts": _ms(self._local(at)),
             }
 
         return build
@@ -445,7 +433,7 @@ class Scenario:
             draw = self._rng.uniform(size=3)
             self._push(
                 when,
-                f"{self.root}/fills/{working.spec.order_id}",
+                self.topics.fills(working.spec.order_id),
                 self._slice(working, version, market_bin, ask, when, draw),
             )
 
@@ -488,9 +476,9 @@ class Scenario:
                 "order_id": working.spec.order_id,
                 "quantity": quantity,
                 "price": price,
-                "ts": _iso(when),
+                "ts": _ms(when),
             }
-            self._fills_sent.append((f"{self.root}/fills/{working.spec.order_id}", payload))
+            self._fills_sent.append((self.topics.fills(working.spec.order_id), payload))
             return payload
 
         return build
@@ -498,13 +486,13 @@ class Scenario:
     # ------------------------------------------------------------------ bad messages
 
     def _schedule_malformed(self) -> None:
-        root = self.root
+        topics = self.topics
         for clock, topic, make in (
-            (time(10, 12, 3), f"{root}/fills/ZEPH-B1", _truncated_fill),
-            (time(10, 47, 30), f"{root}/fills/KALO-S1", _negative_fill),
-            (time(11, 20, 10), f"{root}/fills/MIRA-B1", _unknown_type),
-            (time(12, 5, 0), f"{root}/fills/ORIN-B9", _unknown_order_fill),
-            (time(14, 10, 0), f"{root}/bins/KALO", self._misrouted_bin),
+            (time(10, 12, 3), topics.fills("ZEPH-B1"), _truncated_fill),
+            (time(10, 47, 30), topics.fills("KALO-S1"), _negative_fill),
+            (time(11, 20, 10), topics.fills("MIRA-B1"), _unknown_type),
+            (time(12, 5, 0), topics.fills("ORIN-B9"), _unknown_order_fill),
+            (time(14, 10, 0), topics.bins("KALO"), self._misrouted_bin),
         ):
             at = self._local(clock)
             self._push(at, topic, _bind(make, at))
@@ -557,7 +545,7 @@ def _negative_fill(at: datetime) -> Mapping[str, Any]:
         "order_id": "KALO-S1",
         "quantity": -400,
         "price": 18.4,
-        "ts": _iso(at),
+        "ts": _ms(at),
     }
 
 
@@ -568,7 +556,7 @@ def _unknown_type(at: datetime) -> Mapping[str, Any]:
         "order_id": "MIRA-B1",
         "quantity": 300,
         "price": 67.5,
-        "ts": _iso(at),
+        "ts": _ms(at),
     }
 
 
@@ -579,7 +567,7 @@ def _unknown_order_fill(at: datetime) -> Mapping[str, Any]:
         "order_id": "ORIN-B9",
         "quantity": 1_000,
         "price": 9.87,
-        "ts": _iso(at),
+        "ts": _ms(at),
     }
 
 
@@ -587,8 +575,8 @@ def _bin_payload(market_bin: MarketBin, ts: datetime) -> dict[str, Any]:
     return {
         "type": "bin",
         "symbol": market_bin.symbol,
-        "start": _iso(market_bin.start),
-        "end": _iso(market_bin.end),
+        "start": _ms(market_bin.start),
+        "end": _ms(market_bin.end),
         "volume": market_bin.volume,
         "vwap": market_bin.vwap,
         "open": market_bin.open,
@@ -596,13 +584,8 @@ def _bin_payload(market_bin: MarketBin, ts: datetime) -> dict[str, Any]:
         "low": market_bin.low,
         "close": market_bin.close,
         "spread": market_bin.spread,
-        "ts": _iso(ts),
+        "ts": _ms(ts),
     }
-
-
-def _iso(ts: datetime) -> str:
-    """UTC ISO 8601 with milliseconds and a Z."""
-    return ts.astimezone(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
 # --------------------------------------------------------------------------------------------------
@@ -653,97 +636,6 @@ def _market_bin(session: Session, symbol: str, row: Any) -> MarketBin:
     )
 
 
-# --------------------------------------------------------------------------------------------------
-# Running the day in-process and recording it
-
-
-@dataclass
-class DayRun:
-    """A closed-loop day: the recording (lines as sent) and what the engine said."""
-
-    records: list[Record]
-    lines: list[str]
-    result: ReplayResult
-
-
-def record_line(record: Record) -> str:
-    """One recording line: ``{"topic", "payload", "ts"}`` as compact JSON."""
-    payload: Any = record.payload
-    if isinstance(payload, bytes):
-        payload = payload.decode("utf-8", errors="replace")
-    obj = {"topic": record.topic, "payload": payload, "ts": record.ts}
-    return json.dumps(obj, ensure_ascii=False, separators=(",", ":"))
-
-
-def payload_bytes(record: Record) -> bytes:
-    """A record's payload as the bytes to publish over MQTT (compact JSON, or the raw text)."""
-    payload = record.payload
-    if isinstance(payload, bytes):
-        return payload
-    if isinstance(payload, str):
-        return payload.encode("utf-8")
-    return json.dumps(payload, ensure_ascii=False, separators=(",", ":")).encode("utf-8")
-
-
-def run_day(
-    seed: int = 7,
-    *,
-    engine: Any = None,
-    day: date = DAY,
-    root: str = "tracker",
-    tick_seconds: float | None = None,
-) -> DayRun:
-    """Run the invented day in-process: the scenario feeds the engine, the router sees its targets.
-
-    Each message goes through exactly the path a replay of the written file takes (the line's JSON
-    text is parsed back), with ticks derived the same way, so replaying the recording reproduces
-    these outputs byte for byte.
-
-    Args:
-        seed: The scenario's seed.
-        engine: The engine (default: a fresh :class:`tracker.core.engine.Engine` with default
-        settings
-            and this root).
-        day: The trading day.
-        root: MQTT topic root.
-        tick_seconds: Interval of derived ticks (default: the replay default).
-
-    Returns:
-        The recording and the engine's outputs.
-    """
-
-    if engine is None:
-        from tracker.core.engine import Engine
-
-        engine = Engine(root=root)
-    scenario = Scenario(seed, day=day, root=root)
-    intake = Intake(engine, root=root, tick_seconds=tick_seconds or DEFAULT_TICK_SECONDS)
-    result = ReplayResult()
-    records: list[Record] = []
-    lines: list[str] = []
-    while (due := scenario.next_time()) is not None:
-        for record in scenario.inbound_until(due):
-            text = record_line(record)
-            records.append(record)
-            lines.append(text)
-            outputs = intake.feed(parse_line(record.line, text))
-            result.add(outputs)
-            for message in outputs:
-                scenario.on_output(message)
-    result.summary = finish_summary(engine, intake)
-    return DayRun(records=records, lines=lines, result=result)
-
-
-def write_day(run: DayRun, path: str | Path) -> Path:
-    """Write a day's recording as a JSON Lines replay file.
-
-    Raises:
-        InputError: The file cannot be written.
-    """
-    path = Path(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text("".join(line + "\n" for line in run.lines), encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"cannot write {path}: {exc.strerror}", field="-o") from exc
-    return path
+def _ms(ts: datetime) -> str:
+    """A send time as recordings write it: UTC, to the millisecond."""
+    return utc_text(ts, "milliseconds")
