@@ -516,8 +516,7 @@ def described(message: StatusMessage | TargetMessage) -> tuple[object, ...]:
 
 def test_statuses_and_targets_equal_their_validated_models() -> None:
     """The engine builds status and target messages unvalidated; pydantic would build the same."""
-    from tracker.edge.recordings import read_input
-    from tracker.shell.replay import replay
+    from tracker.shell.replay import read_input, replay
 
     engine = Engine()
     messages = [*day_of_messages(), fill("A", "done", 20_000, 19.9, ts=at(60))]

@@ -14,9 +14,8 @@ from pathlib import Path
 import pytest
 
 from tracker.core.engine import Engine
-from tracker.edge.recordings import read_input
 from tracker.edge.wire import WireError, decode
-from tracker.shell.replay import OUTPUT_FILES, replay, write_outputs
+from tracker.shell.replay import OUTPUT_FILES, read_input, replay, write_outputs
 
 DATA = Path(__file__).resolve().parent.parent / "replay_data"
 DAY = DATA / "day-2026-03-10-seed7.jsonl"

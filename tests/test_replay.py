@@ -18,11 +18,11 @@ import pytest
 from tracker.cli import main
 from tracker.core.engine import Engine
 from tracker.edge.intake import Intake
-from tracker.edge.recordings import BadLine, read_input, read_jsonl
+from tracker.edge.recordings import BadLine, read_jsonl
 from tracker.edge.records import Record
 from tracker.edge.wire import ErrorMessage, Inbound, Outbound, Tick
 from tracker.errors import InputError
-from tracker.shell.replay import OUTPUT_FILES, dumps_summary, replay, write_outputs
+from tracker.shell.replay import OUTPUT_FILES, dumps_summary, read_input, replay, write_outputs
 
 
 def make_engine() -> Engine:

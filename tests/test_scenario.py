@@ -18,7 +18,6 @@ import pytest
 
 from tracker.cli import main
 from tracker.core.engine import Engine
-from tracker.edge.recordings import read_input
 from tracker.edge.records import Record, payload_bytes, record_line
 from tracker.edge.wire import (
     BinMessage,
@@ -31,7 +30,7 @@ from tracker.edge.wire import (
     decode,
 )
 from tracker.errors import InputError
-from tracker.shell.replay import OUTPUT_FILES, replay, write_outputs
+from tracker.shell.replay import OUTPUT_FILES, read_input, replay, write_outputs
 from tracker.shell.simulated_day import DayRun, run_day, write_day
 from tracker.sim.scenario import (
     CANCEL,

@@ -82,10 +82,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 def run(args: argparse.Namespace) -> int:
     """Replay INPUT into DIR; print a one-line account; return 0."""
     from tracker.core.engine import Engine
-    from tracker.edge.recordings import read_input
     from tracker.shell.config import validate_root
     from tracker.shell.files import load_engine_config, load_profiles
-    from tracker.shell.replay import replay, write_outputs
+    from tracker.shell.replay import read_input, replay, write_outputs
 
     config, config_root = load_engine_config(Path(args.config)) if args.config else (None, None)
     root = validate_root(args.root or config_root or DEFAULT_ROOT, field="--root")

@@ -17,9 +17,6 @@ from pathlib import Path
 from tracker.edge.records import Record
 from tracker.errors import InputError
 
-#: The first 16 bytes of every SQLite database file.
-SQLITE_HEADER = b"SQLite format 3\x00"
-
 
 @dataclass(frozen=True, slots=True)
 class BadLine:
@@ -141,43 +138,6 @@ def parse_line(number: int, raw_bytes: bytes | str) -> Record | BadLine:
             ts=usable_ts,
         )
     return Record(line=number, topic=topic, payload=payload, ts=usable_ts)
-
-
-def is_journal(path: str | Path) -> bool:
-    """Whether a file is a SQLite database (the daemon's journal), by its first 16 bytes.
-
-    Raises:
-        InputError: The file cannot be read.
-    """
-    try:
-        with open(path, "rb") as handle:
-            return handle.read(len(SQLITE_HEADER)) == SQLITE_HEADER
-    except OSError as exc:
-        raise InputError(f"cannot read {path}: {exc.strerror}", field="INPUT") from exc
-
-
-def read_input(path: str | Path) -> Iterator[Record | BadLine]:
-    """Read a recording: a SQLite journal of the daemon, or else a JSON Lines file.
-
-    The kind is told by the file's first bytes (SQLite's header ``SQLite format 3\\0``), not by its
-    name.
-
-    Raises:
-        InputError: The file cannot be read, or it is a journal and the journal reader is missing.
-    """
-    path = Path(path)
-    if is_journal(path):
-        try:
-            from tracker.shell.journal import read_journal
-        except ImportError as exc:  # pragma: no cover - the journal ships with the package
-            raise InputError(
-                f"{path} is a SQLite journal, and reading journals needs tracker.shell.journal, "
-                "which this installation lacks; export the journal to JSON Lines or update "
-                "tracker",
-                field="INPUT",
-            ) from exc
-        return iter(read_journal(path))
-    return read_jsonl(path)
 
 
 def _json_kind(value: object) -> str:

@@ -11,14 +11,14 @@ from __future__ import annotations
 import gc
 import json
 import math
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from tracker.core.topics import DEFAULT_ROOT
 from tracker.edge.intake import DEFAULT_TICK_SECONDS, EngineLike, Intake, has_ticks
-from tracker.edge.recordings import BadLine
+from tracker.edge.recordings import BadLine, read_jsonl
 from tracker.edge.records import Record
 from tracker.edge.wire import (
     AlertMessage,
@@ -29,6 +29,10 @@ from tracker.edge.wire import (
     encode,
 )
 from tracker.errors import InputError
+from tracker.shell.journal import read_journal
+
+#: The first 16 bytes of every SQLite database file.
+SQLITE_HEADER = b"SQLite format 3\x00"
 
 #: Output files, in the order :func:`write_outputs` writes them.
 OUTPUT_FILES = ("targets.jsonl", "alerts.jsonl", "status.jsonl", "errors.jsonl", "summary.json")
@@ -126,6 +130,34 @@ def finish_summary(engine: EngineLike, intake: Intake) -> dict[str, Any]:
     summary = dict(engine.summary())
     summary["replay"] = intake.counts()
     return summary
+
+
+def is_journal(path: str | Path) -> bool:
+    """Whether a file is a SQLite database (the daemon's journal), by its first 16 bytes.
+
+    Raises:
+        InputError: The file cannot be read.
+    """
+    try:
+        with open(path, "rb") as handle:
+            return handle.read(len(SQLITE_HEADER)) == SQLITE_HEADER
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}", field="INPUT") from exc
+
+
+def read_input(path: str | Path) -> Iterator[Record | BadLine]:
+    """Read a recording: a SQLite journal of the daemon, or else a JSON Lines file.
+
+    The kind is told by the file's first bytes (SQLite's header ``SQLite format 3\\0``), not by its
+    name.
+
+    Raises:
+        InputError: The file cannot be read.
+    """
+    path = Path(path)
+    if is_journal(path):
+        return iter(read_journal(path))
+    return read_jsonl(path)
 
 
 def write_outputs(result: ReplayResult, out_dir: str | Path) -> list[Path]:
