@@ -8,9 +8,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from tracker.core.calibration import HISTORY_COLUMNS
 from tracker.core.session import Session
 from tracker.errors import InputError
-from tracker.sim.market import COLUMNS, MarketParameters, simulate_day, simulate_history
+from tracker.sim.market import MarketParameters, simulate_day, simulate_history
 
 
 @pytest.fixture(scope="module")
@@ -31,7 +32,7 @@ def test_same_seed_same_history() -> None:
 
 def test_columns_are_the_calibrate_input() -> None:
     """The columns are those `tracker calibrate` reads."""
-    assert list(COLUMNS) == list(simulate_history("ZEPH", 1, 1).columns)
+    assert list(HISTORY_COLUMNS) == list(simulate_history("ZEPH", 1, 1).columns)
 
 
 def test_prices_are_consistent(long_history: pd.DataFrame) -> None:

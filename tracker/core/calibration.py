@@ -211,7 +211,7 @@ def _prepare(
     bin_ = np.where(on_grid, offset // session.bin_minutes, 0)
 
     values: dict[str, FloatArray] = {}
-    for name in ("volume", "vwap", "open", "high", "low", "close", "spread"):
+    for name in HISTORY_COLUMNS[2:]:  # the numeric columns
         number = pd.to_numeric(frame[name], errors="coerce").to_numpy(np.float64, na_value=np.nan)
         flag(~np.isfinite(number), name, "is not a number")
         values[name] = number

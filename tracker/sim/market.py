@@ -45,8 +45,6 @@ FloatArray = npt.NDArray[np.float64]
 
 #: The invented venue of the demo data.
 VENUE = "Harbour Lane Exchange (HLX), an invented venue"
-#: Columns of a simulated history, in order (the input columns of ``tracker calibrate``).
-COLUMNS = ("start", "symbol", "volume", "vwap", "open", "high", "low", "close", "spread")
 #: Smallest spread (one tick), currency.
 TICK = 0.01
 
@@ -172,7 +170,8 @@ def simulate_days(
         first_price: Price at the first open; ``params.price`` when ``None``.
 
     Returns:
-        One row per day and bin with the columns of :data:`COLUMNS`; ``start`` is tz-aware.
+        One row per day and bin with the columns of
+        :data:`~tracker.core.calibration.HISTORY_COLUMNS`; ``start`` is tz-aware.
     """
     session = session or Session()
     params = params or MarketParameters()
@@ -290,7 +289,8 @@ def simulate_history(
         first_day: The first calendar day considered.
 
     Returns:
-        The columns of :data:`COLUMNS`, one row per day and bin; ``start`` is tz-aware local time.
+        The columns of :data:`~tracker.core.calibration.HISTORY_COLUMNS`, one row per day and bin;
+        ``start`` is tz-aware local time.
 
     Raises:
         InputError: ``days`` < 1.
@@ -330,7 +330,7 @@ def simulate_day(
         close_at: An early close (bin boundary), or ``None``.
 
     Returns:
-        The bins of the day in order (columns of :data:`COLUMNS`).
+        The bins of the day in order (columns of :data:`~tracker.core.calibration.HISTORY_COLUMNS`).
     """
     session = session or Session()
     if not (volume_scale > 0 and math.isfinite(volume_scale)):

@@ -60,7 +60,7 @@ from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.edge.records import Record
 from tracker.edge.wire import Outbound, StatusMessage, TargetMessage
 from tracker.errors import InputError
-from tracker.sim.market import MarketParameters, simulate_day
+from tracker.sim.market import VENUE, MarketParameters, simulate_day
 
 __all__ = [
     "DAY",
@@ -71,9 +71,6 @@ __all__ = [
     "Scenario",
     "ScenarioOrder",
 ]
-
-#: The invented venue.
-VENUE = "Harbour Lane Exchange (HLX), an invented venue"
 
 #: The invented trading day (a Tuesday).
 DAY = date(2026, 3, 10)
