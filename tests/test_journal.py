@@ -12,7 +12,14 @@ from pathlib import Path
 import pytest
 
 from tracker.edge.records import Record
-from tracker.shell.journal import Journal, JournalError, read_journal, record_crc
+from tracker.shell.journal import (
+    Journal,
+    JournalError,
+    JournalLost,
+    JournalWriteError,
+    read_journal,
+    record_crc,
+)
 
 TS = "2026-03-02T14:30:00.000001Z"
 
@@ -85,8 +92,8 @@ def test_missing_journal_is_an_error(tmp_path: Path) -> None:
         list(read_journal(tmp_path / "nope.sqlite"))
 
 
-def test_damaged_last_record_is_dropped_on_open(tmp_path: Path) -> None:
-    """A last record whose checksum fails (a write cut short) is dropped; the rest is kept."""
+def test_damaged_last_record_is_quarantined_on_open(tmp_path: Path) -> None:
+    """A last record whose checksum fails (a write cut short) is moved aside, kept byte for byte."""
     path = tmp_path / "j.sqlite"
     with Journal(path) as journal:
         journal.append_many(_rows(3))
@@ -95,8 +102,46 @@ def test_damaged_last_record_is_dropped_on_open(tmp_path: Path) -> None:
     db.commit()
     db.close()
     with Journal(path) as journal:
-        assert (1, 2) == (journal.dropped_tail, journal.last_seq)
+        assert ([3], 2) == (journal.quarantined, journal.last_seq)
+        (kept,) = journal.quarantine()
+        assert (3, b'{"n": 2') == (kept[0], kept[2])
+        assert "checksum" in kept[4]
     assert [1, 2] == [r.line for r in read_journal(path)]
+    with Journal(path) as journal:  # kept on the next open too, and not quarantined twice
+        assert ([], 1) == (journal.quarantined, len(journal.quarantine()))
+
+
+def test_journal_deleted_while_open_stops_the_writer(tmp_path: Path) -> None:
+    """A journal deleted under its writer refuses the next commit (no writing into the void)."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(1))
+        path.unlink()
+        with pytest.raises(JournalLost, match="deleted or replaced"):
+            journal.append_many(_rows(1))
+
+
+def test_journal_replaced_while_open_stops_the_writer(tmp_path: Path) -> None:
+    """A journal replaced by another file (same name, new inode) is noticed at the next commit."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(1))
+        path.rename(tmp_path / "moved.sqlite")
+        path.write_bytes(b"")
+        with pytest.raises(JournalLost):
+            journal.append_many(_rows(1))
+
+
+def test_failed_write_is_a_journal_write_error(tmp_path: Path) -> None:
+    """A write SQLite refuses (here: a full database, as on a full disk) says nothing was kept."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(1))
+        pages = journal._db.execute("PRAGMA page_count").fetchone()[0]
+        journal._db.execute(f"PRAGMA max_page_count = {pages}")
+        with pytest.raises(JournalWriteError, match="nothing of this group was journaled"):
+            journal.append_many([("t/fills/A", b"x" * 100_000, "2026-03-10T14:30:00Z")])
+        assert 1 == len(journal)
 
 
 def test_damaged_record_in_the_middle_is_an_error(tmp_path: Path) -> None:

@@ -234,13 +234,17 @@ def _validate_id(value: Any, field: str) -> str:
 def parse_broker_url(
     url: str, *, field: str = "broker.url"
 ) -> tuple[BrokerSettings, str | None, Secret | None]:
-    """Split ``mqtt[s]://[user[:password]@]host[:port]`` into settings and credentials.
+    """Split ``mqtt[s]://[user@]host[:port]`` into settings and the user name.
+
+    A password in the URL is refused: it would show in the process list. It belongs in a file
+    (``--password-file``) or the environment.
 
     Returns:
-        The broker settings (host, port, tls), and the username and password found in the URL.
+        The broker settings (host, port, tls), the username found in the URL, and ``None`` for the
+        password (kept in the signature for the callers that merge credentials).
 
     Raises:
-        InputError: not a URL of that form (the message never repeats a password).
+        InputError: not a URL of that form, or one with a password (the message never repeats it).
     """
     if not isinstance(url, str):
         raise InputError(f"must be a URL string like {DEFAULT_BROKER}", field=field)
@@ -261,6 +265,13 @@ def parse_broker_url(
     if parts.path not in ("", "/") or parts.query or parts.fragment:
         raise InputError(
             f"must be only scheme, host and port (no path or query); got {safe!r}", field=field
+        )
+    if parts.password:
+        raise InputError(
+            "holds a password, which anyone can read in the process list and the shell history; "
+            "keep only the user name in the URL and put the password in a file given by "
+            f"--password-file (or TRACKER_BROKER_PASSWORD_FILE); got {safe!r}",
+            field=field,
         )
     tls = parts.scheme == "mqtts"
     if port is None:

@@ -33,13 +33,23 @@ inbound batch size), in one transaction, then acknowledges them all.
 A crash in the middle of a write leaves at most a torn last transaction in the WAL; SQLite's own
 frame checksums discard it when the file is next opened, so the journal is recovered up to the last
 whole record. The per-record CRC catches what SQLite cannot (a damaged page): a bad *last* record
-is dropped on open (it cannot have been acknowledged), a bad record anywhere else is an error that
-says which sequence number is damaged.
+(it cannot have been acknowledged) is moved on open into the ``quarantine`` table, kept byte for
+byte with the reason, never deleted; a bad record anywhere else is an error that says which sequence
+number is damaged.
+
+The journal guards itself while it is written:
+
+* the file it opened must stay the file at its path: each commit checks the path's device and inode
+  against the open file's, so a journal deleted or replaced under a running daemon stops it
+  (:class:`JournalLost`) instead of letting it journal into a file nobody will ever read again;
+* a failed write (a full disk, an I/O error) raises :class:`JournalWriteError`; nothing of that
+  transaction was committed, so nothing of it may be acknowledged.
 """
 
 from __future__ import annotations
 
 import contextlib
+import os
 import sqlite3
 import zlib
 from collections.abc import Iterable, Iterator, Sequence
@@ -55,6 +65,8 @@ __all__ = [
     "Durability",
     "Journal",
     "JournalError",
+    "JournalLost",
+    "JournalWriteError",
     "published_through",
     "read_journal",
     "record_crc",
@@ -79,12 +91,32 @@ CREATE TABLE IF NOT EXISTS meta (
 );
 """
 
+#: Damaged records found on open, kept as they were (added to older journals when opened).
+_QUARANTINE = """
+CREATE TABLE IF NOT EXISTS quarantine (
+    seq INTEGER PRIMARY KEY,
+    topic TEXT,
+    payload BLOB,
+    ts TEXT,
+    crc INTEGER,
+    reason TEXT NOT NULL
+);
+"""
+
 
 class JournalError(InputError):
     """A journal file that cannot be used: not a journal, a newer format, or damaged."""
 
     def __init__(self, message: str) -> None:
         super().__init__(message, field="journal")
+
+
+class JournalLost(JournalError):
+    """The journal file was deleted or replaced while it was open for writing."""
+
+
+class JournalWriteError(JournalError):
+    """A commit failed (full disk, I/O error): nothing of it is in the journal."""
 
 
 def record_crc(topic: str, payload: bytes, ts: str) -> int:
@@ -171,7 +203,8 @@ class Journal:
                     (str(FORMAT_VERSION),),
                 )
             _check_format(self._db, self.path)
-            self.dropped_tail = self._drop_damaged_tail()
+            self._db.executescript(_QUARANTINE)
+            self.quarantined = self._quarantine_damaged_tail()
             row = self._db.execute(
                 "SELECT seq, ts FROM journal ORDER BY seq DESC LIMIT 1"
             ).fetchone()
@@ -183,18 +216,47 @@ class Journal:
             raise
         self.last_seq: int = row[0] if row else 0
         self.last_ts: str | None = row[1] if row else None
+        self._identity = _identity(self.path)
 
-    def _drop_damaged_tail(self) -> int:
-        """Delete a last record whose CRC does not match (a write cut short); return how many."""
-        dropped = 0
+    def _quarantine_damaged_tail(self) -> list[int]:
+        """Move last records whose CRC does not match (a write cut short) to ``quarantine``.
+
+        Returns:
+            The sequence numbers moved, last first.
+        """
+        moved: list[int] = []
         while True:
             row = self._db.execute(
                 "SELECT seq, topic, payload, ts, crc FROM journal ORDER BY seq DESC LIMIT 1"
             ).fetchone()
             if row is None or _valid(row):
-                return dropped
-            self._db.execute("DELETE FROM journal WHERE seq = ?", (row[0],))
-            dropped += 1
+                return moved
+            with self._transaction():
+                self._db.execute(
+                    "INSERT OR REPLACE INTO quarantine(seq, topic, payload, ts, crc, reason) "
+                    "VALUES (?, ?, ?, ?, ?, ?)",
+                    (*row, "checksum mismatch in the last record (a write cut short)"),
+                )
+                self._db.execute("DELETE FROM journal WHERE seq = ?", (row[0],))
+            moved.append(row[0])
+
+    def quarantine(self) -> list[tuple[int, str, bytes, str, str]]:
+        """The damaged records kept aside: ``(seq, topic, payload, ts, reason)`` each."""
+        rows = self._db.execute(
+            "SELECT seq, topic, payload, ts, reason FROM quarantine ORDER BY seq"
+        ).fetchall()
+        return [
+            (seq, topic, bytes(payload), ts, reason) for seq, topic, payload, ts, reason in rows
+        ]
+
+    def check_file(self) -> None:
+        """Raise :class:`JournalLost` unless the path still names the file that was opened."""
+        if _identity(self.path) != self._identity:
+            raise JournalLost(
+                f"{self.path} was deleted or replaced while the daemon was writing it; what it "
+                "journaled since is in the old file only. Stop, restore the journal (or move the "
+                "new file away) and start again"
+            )
 
     # -- writing ---------------------------------------------------------------------------------
 
@@ -218,19 +280,26 @@ class Journal:
         Returns:
             The sequence numbers given to the rows.
         """
+        self.check_file()
         seqs: list[int] = []
-        with self._transaction():
-            for topic, payload, ts in rows:
-                payload = bytes(payload)
-                cursor = self._db.execute(
-                    "INSERT INTO journal(topic, payload, ts, crc) VALUES (?, ?, ?, ?)",
-                    (topic, payload, ts, record_crc(topic, payload, ts)),
-                )
-                seq = cursor.lastrowid
-                assert seq is not None
-                seqs.append(seq)
-            if published_through is not None:
-                self._set_published_through(published_through)
+        try:
+            with self._transaction():
+                for topic, payload, ts in rows:
+                    payload = bytes(payload)
+                    cursor = self._db.execute(
+                        "INSERT INTO journal(topic, payload, ts, crc) VALUES (?, ?, ?, ?)",
+                        (topic, payload, ts, record_crc(topic, payload, ts)),
+                    )
+                    seq = cursor.lastrowid
+                    assert seq is not None
+                    seqs.append(seq)
+                if published_through is not None:
+                    self._set_published_through(published_through)
+        except sqlite3.Error as exc:
+            raise JournalWriteError(
+                f"cannot write to {self.path}: {exc}; nothing of this group was journaled (free "
+                "disk space or fix the disk, then start again)"
+            ) from exc
         if seqs:
             self.last_seq = seqs[-1]
             self.last_ts = rows[-1][2]
@@ -306,7 +375,17 @@ class _Transaction:
         if exc_type is None:
             self._db.execute("COMMIT")
         else:
-            self._db.execute("ROLLBACK")
+            with contextlib.suppress(sqlite3.Error):  # a failed commit may have rolled back
+                self._db.execute("ROLLBACK")
+
+
+def _identity(path: Path) -> tuple[int, int] | None:
+    """Device and inode of the file at ``path`` (``None`` when there is none)."""
+    try:
+        status = os.stat(path)
+    except OSError:
+        return None
+    return status.st_dev, status.st_ino
 
 
 def _valid(row: tuple[int, str, bytes, str, int]) -> bool:
