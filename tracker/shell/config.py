@@ -29,8 +29,9 @@ Every setting can come from three places; the first that gives it wins:
        ...
 
 and otherwise the default. Credentials are held as :class:`Secret`, whose ``repr`` and ``str`` are
-``***``; a URL given with ``user:password@`` has them moved into the credentials and is kept and
-shown without them, so no log line or error message carries a password.
+``***``; a URL given with ``user@`` has the user moved into the credentials and is kept and shown
+without it; a URL with a password is refused (the password belongs in a file), so no process list,
+log line or error message carries a password.
 """
 
 from __future__ import annotations

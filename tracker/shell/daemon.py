@@ -230,9 +230,10 @@ class Daemon:
         self._lock()
         try:
             self._journal = Journal(self.settings.journal, durability=self.settings.durability)
-            if self._journal.dropped_tail:
+            if self._journal.quarantined:
                 self._log.warning(
-                    "dropped a damaged last journal record", count=self._journal.dropped_tail
+                    "damaged last journal records kept aside in its quarantine table",
+                    seqs=self._journal.quarantined,
                 )
             engine = (
                 self._engine_given
