@@ -1,8 +1,9 @@
 """A private Mosquitto broker on a free loopback port, for tests that need a clean broker.
 
 ``PrivateMosquitto`` writes a temporary config (listener on 127.0.0.1, anonymous allowed,
-persistence in the temp folder so that a stop/start keeps sessions and queued messages, no limit on
-messages queued for a disconnected client), starts ``mosquitto -c``, and waits until the port
+persistence in the temp folder, and the broker contract of the shipped ``deploy/mosquitto.conf``:
+persistence, no limit on messages queued for a disconnected client, a packet size limit), starts
+``mosquitto -c``, and waits until the port
 accepts connections. ``stop()`` sends SIGTERM (Mosquitto then saves its state) and ``start()``
 brings it back on the same port. Use it as a context manager or through a fixture, so it is
 stopped even when a test fails.
@@ -31,6 +32,8 @@ from typing import Any, Self
 import pytest
 
 MOSQUITTO = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
+#: The broker configuration the project ships for the daemon's broker.
+SHIPPED_CONFIG = Path(__file__).resolve().parent.parent / "deploy" / "mosquitto.conf"
 START_TIMEOUT = 20.0
 STOP_TIMEOUT = 20.0
 
@@ -51,6 +54,17 @@ def port_open(port: int, host: str = "127.0.0.1") -> bool:
         return False
 
 
+def contract_lines(path: Path = SHIPPED_CONFIG) -> list[str]:
+    """The settings of the shipped configuration's contract section (what the daemon needs)."""
+    text = path.read_text(encoding="utf-8")
+    section = text.split("# --- contract", 1)[1]
+    return [
+        line.strip()
+        for line in section.splitlines()[1:]
+        if line.strip() and not line.lstrip().startswith("#")
+    ]
+
+
 def require_mosquitto() -> None:
     """Skip the calling test when the mosquitto binary is not installed."""
     if not Path(MOSQUITTO).exists():
@@ -58,7 +72,11 @@ def require_mosquitto() -> None:
 
 
 class PrivateMosquitto:
-    """One mosquitto process with its own config, data and log under ``folder``."""
+    """One mosquitto process with its own config, data and log under ``folder``.
+
+    ``contract`` replaces the shipped contract lines (``[]``: a stock broker's defaults, as a
+    desk that skipped the shipped configuration would run).
+    """
 
     def __init__(
         self,
@@ -68,6 +86,7 @@ class PrivateMosquitto:
         max_inflight: int = 20,
         password_file: Path | None = None,
         listener_options: tuple[str, ...] = (),
+        contract: list[str] | None = None,
     ) -> None:
         self.folder = folder
         self.folder.mkdir(parents=True, exist_ok=True)
@@ -85,10 +104,8 @@ class PrivateMosquitto:
                     f"user {getpass.getuser()}",
                     "allow_anonymous true" if password_file is None else "allow_anonymous false",
                     "" if password_file is None else f"password_file {password_file}",
-                    "persistence true",
                     f"persistence_location {folder}/",
-                    "autosave_interval 1",
-                    "max_queued_messages 0",
+                    *(contract if contract is not None else contract_lines()),
                     f"max_inflight_messages {max_inflight}",
                     f"log_dest file {self.log}",
                     "log_type error",
