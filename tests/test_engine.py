@@ -504,37 +504,6 @@ def test_two_runs_give_identical_bytes() -> None:
     assert runs[0] == runs[1]
 
 
-def described(message: StatusMessage | TargetMessage) -> tuple[object, ...]:
-    """Everything that can tell two messages apart: fields with their types, set fields, bytes."""
-    return (
-        [(name, type(value), value) for name, value in message.__dict__.items()],
-        message.model_fields_set,
-        message.model_dump_json(),
-        encode(message),
-    )
-
-
-def test_statuses_and_targets_equal_their_validated_models() -> None:
-    """The engine builds status and target messages unvalidated; pydantic would build the same."""
-    from tracker.shell.replay import read_input, replay
-
-    engine = Engine()
-    messages = [*day_of_messages(), fill("A", "done", 20_000, 19.9, ts=at(60))]
-    outputs = [o for m in messages for o in engine.handle(m)]  # type: ignore[arg-type]
-    result = replay(read_input(GOLDEN_DAY), Engine())  # working, pending, halted, expired, ...
-    built = [
-        o
-        for o in [*outputs, *result.status, *result.targets]
-        if isinstance(o, StatusMessage | TargetMessage)
-    ]
-    states = {o.state for o in built if isinstance(o, StatusMessage)}
-    validated = [
-        type(o).model_validate({k: v for k, v in o.__dict__.items() if k != "type"}) for o in built
-    ]
-    assert {"pending", "working", "halted", "done", "cancelled", "expired"} == states
-    assert [described(o) for o in validated] == [described(o) for o in built]
-
-
 def test_outputs_of_one_event_are_ordered_by_order_id() -> None:
     """Within one bin close, outputs come grouped in order-id order."""
     engine = Engine()

@@ -50,7 +50,6 @@ def synthetic_bin_close(symbols: int) -> list[Inbound]:
         for side, quantity in (("buy", 50_000), ("sell", 20_000)):
             events.append(
                 OrderMessage(
-                    type="order",
                     action="new",
                     order_id=f"HX{s:02d}-{side}",
                     symbol=f"HX{s:02d}",
@@ -68,7 +67,6 @@ def synthetic_bin_close(symbols: int) -> list[Inbound]:
             price = 20.0 + s
             events.append(
                 BinMessage(
-                    type="bin",
                     symbol=f"HX{s:02d}",
                     start=start,
                     end=end,
@@ -82,7 +80,7 @@ def synthetic_bin_close(symbols: int) -> list[Inbound]:
                     ts=end + timedelta(seconds=1),
                 )
             )
-        events.append(Tick(type="tick", ts=end + timedelta(seconds=2)))
+        events.append(Tick(ts=end + timedelta(seconds=2)))
     return events
 
 

@@ -13,7 +13,7 @@ from hypothesis import strategies as st
 
 from tracker.core.engine import Engine
 from tracker.core.lifecycle import TERMINAL
-from tracker.edge.wire import ErrorMessage, TargetMessage
+from tracker.edge.wire import ErrorMessage, TargetMessage, encode
 from tracker.testing import Recorder
 
 OPEN = datetime(2026, 3, 2, 14, 30, tzinfo=UTC)
@@ -235,5 +235,5 @@ def test_same_input_same_output(steps: list[tuple[int, Any]]) -> None:
         recorder = Recorder(Engine())
         for topic, payload in messages(steps):
             recorder.feed_raw(topic, payload)
-        runs.append([o.model_dump_json() for o in recorder.outputs])
+        runs.append([encode(o) for o in recorder.outputs])
     assert runs[0] == runs[1]

@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 from collections import Counter
 from collections.abc import Iterator
+from dataclasses import replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -412,9 +413,7 @@ def test_target_without_a_bin_withdraws_planned_slices() -> None:
     assert isinstance(order, OrderMessage)
     start = datetime(2026, 3, 10, 13, 30, tzinfo=UTC)
     scenario.on_output(target(order, start, 0.05, order.ts))
-    nothing = target(order, start, 0.0, order.ts).model_copy(
-        update={"bin_start": None, "bin_end": None}
-    )
+    nothing = replace(target(order, start, 0.0, order.ts), bin_start=None, bin_end=None)
     scenario.on_output(nothing)
     records = scenario.inbound_until(start + BIN)
     expected: list[str] = []

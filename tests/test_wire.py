@@ -8,21 +8,29 @@ from typing import Any
 
 import pytest
 
+from tracker.core.formats import rounded
 from tracker.edge.wire import (
     MAX_ERROR_PAYLOAD,
     AlertMessage,
+    AlertPayload,
     BinMessage,
     ControlMessage,
     ErrorMessage,
+    ErrorPayload,
     FillMessage,
     OrderMessage,
+    Outbound,
     StatusMessage,
+    StatusPayload,
     TargetMessage,
+    TargetPayload,
     Tick,
     WireError,
     decode,
+    decode_output,
     encode,
     payload_text,
+    to_json_object,
     topic_of,
 )
 
@@ -96,7 +104,7 @@ def test_times_are_normalised_to_utc() -> None:
 def test_models_are_frozen() -> None:
     """Decoded messages cannot be changed afterwards."""
     message = decode("tracker/fills/ZEPH-1", json.dumps(FILL))
-    with pytest.raises(Exception):  # noqa: B017 - pydantic raises its ValidationError
+    with pytest.raises(AttributeError):  # frozen dataclass: FrozenInstanceError
         message.quantity = 1  # type: ignore[misc]
 
 
@@ -299,3 +307,67 @@ def test_error_payload_is_truncated() -> None:
     """Raw payloads kept for error records are cut to the documented length."""
     expected = MAX_ERROR_PAYLOAD
     assert expected == len(payload_text("x" * 5_000))
+
+
+def test_amend_carries_the_fields_it_set() -> None:
+    """An amend knows which fields its payload carried, explicit nulls included."""
+    payload = {
+        "type": "order",
+        "action": "amend",
+        "order_id": "A",
+        "quantity": 500,
+        "urgency": None,
+        "ts": TS,
+    }
+    message = decode("tracker/orders/A", payload)
+    assert isinstance(message, OrderMessage)
+    expected = {"action", "order_id", "quantity", "urgency", "ts"}
+    assert expected == set(message.fields_set)
+
+
+def golden_outputs() -> list[Outbound]:
+    """Every output of a replay of the golden day (all four kinds, every order state)."""
+    from pathlib import Path
+
+    from tracker.core.engine import Engine
+    from tracker.shell.replay import read_input, replay
+
+    day = Path(__file__).parent.parent / "replay_data" / "day-2026-03-10-seed7.jsonl"
+    result = replay(read_input(day), Engine())
+    return [*result.targets, *result.status, *result.alerts, *result.errors]
+
+
+CONTRACT = {
+    "target": TargetPayload,
+    "status": StatusPayload,
+    "alert": AlertPayload,
+    "error": ErrorPayload,
+}
+
+
+def test_encoder_writes_what_the_contract_models_write() -> None:
+    """Each output's bytes validate against its contract model, which writes the same JSON.
+
+    The engine builds plain messages and the encoder writes them itself; the pydantic models
+    are the written contract. Validating the bytes forbids unknown fields and missing ones, and
+    a float field the engine filled with an int (``100`` instead of ``100.0``) would come back
+    different.
+    """
+    outputs = golden_outputs()
+    assert {"target", "status", "alert", "error"} == {o.type for o in outputs}
+    for out in outputs:
+        model = CONTRACT[out.type].model_validate(json.loads(encode(out)))
+        written = {key: rounded(value) for key, value in model.model_dump(mode="json").items()}
+        assert to_json_object(out) == written
+
+
+def test_outputs_read_back_as_themselves() -> None:
+    """decode_output reads an encoded output back to a message that encodes the same."""
+    outputs = golden_outputs()
+    assert [encode(o) for o in outputs] == [encode(decode_output(encode(o))) for o in outputs]
+
+
+def test_decode_output_refuses_an_inbound_message() -> None:
+    """Only targets, status, alerts and errors are outbound messages."""
+    with pytest.raises(WireError, match="not an outbound message type"):
+        decode_output(json.dumps(FILL))

@@ -18,13 +18,12 @@ Exchange", HLX).
 from __future__ import annotations
 
 import json
-from collections.abc import Iterable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
-from typing import Any, Protocol
+from typing import Any, Protocol, TypeVar
 
-from tracker.edge.wire import (
-    DEFAULT_ROOT,
+from tracker.core.messages import (
     AlertMessage,
     BinMessage,
     ControlMessage,
@@ -36,11 +35,9 @@ from tracker.edge.wire import (
     StatusMessage,
     TargetMessage,
     Tick,
-    WireError,
-    decode,
-    encode,
-    topic_of,
 )
+from tracker.core.topics import DEFAULT_ROOT, Topics
+from tracker.edge.wire import WireError, decode, encode, topic_of
 
 
 class EngineLike(Protocol):
@@ -144,13 +141,6 @@ class Recorder:
             return produced
         return self.feed(message)
 
-    def feed_all(self, messages: Iterable[Inbound]) -> list[Outbound]:
-        """Feed several messages; return all their outputs."""
-        produced: list[Outbound] = []
-        for message in messages:
-            produced.extend(self.feed(message))
-        return produced
-
     def _keep(self, produced: list[Outbound]) -> None:
         self.outputs.extend(produced)
         if self.publisher is not None:
@@ -195,8 +185,18 @@ class Recorder:
 
 
 # --------------------------------------------------------------------------------------------
-# Message builders (validated like decoded messages)
+# Message builders (validated like decoded messages: through the edge's own decode)
 # --------------------------------------------------------------------------------------------
+
+_TOPICS = Topics()
+_M = TypeVar("_M", OrderMessage, FillMessage, BinMessage, ControlMessage, Tick)
+
+
+def _decoded(topic: str, data: Mapping[str, Any], kind: type[_M]) -> _M:
+    """``data`` decoded on ``topic`` exactly as a shell would (a bad value raises WireError)."""
+    message = decode(topic, data)
+    assert isinstance(message, kind)
+    return message
 
 
 def order(
@@ -223,19 +223,19 @@ def order(
         "ts": ts,
         **extra,
     }
-    return OrderMessage.model_validate(data)
+    return _decoded(_TOPICS.orders(order_id), data, OrderMessage)
 
 
 def amend(order_id: str, *, ts: str, **changes: Any) -> OrderMessage:
     """An ``amend`` order message with the given changes."""
     data = {"type": "order", "action": "amend", "order_id": order_id, "ts": ts, **changes}
-    return OrderMessage.model_validate(data)
+    return _decoded(_TOPICS.orders(order_id), data, OrderMessage)
 
 
 def cancel(order_id: str, *, ts: str) -> OrderMessage:
     """A ``cancel`` order message."""
     data = {"type": "order", "action": "cancel", "order_id": order_id, "ts": ts}
-    return OrderMessage.model_validate(data)
+    return _decoded(_TOPICS.orders(order_id), data, OrderMessage)
 
 
 def fill(
@@ -251,7 +251,7 @@ def fill(
         "ts": ts,
         **extra,
     }
-    return FillMessage.model_validate(data)
+    return _decoded(_TOPICS.fills(order_id), data, FillMessage)
 
 
 def bin_message(
@@ -283,7 +283,7 @@ def bin_message(
         "spread": spread,
         "ts": end if ts is None else ts,
     }
-    return BinMessage.model_validate(data)
+    return _decoded(_TOPICS.bins(symbol), data, BinMessage)
 
 
 def control(command: str, *, ts: str, order_id: str | None = None) -> ControlMessage:
@@ -291,12 +291,12 @@ def control(command: str, *, ts: str, order_id: str | None = None) -> ControlMes
     data: dict[str, Any] = {"type": "control", "command": command, "ts": ts}
     if order_id is not None:
         data["order_id"] = order_id
-    return ControlMessage.model_validate(data)
+    return _decoded(_TOPICS.control, data, ControlMessage)
 
 
 def tick(ts: str | datetime) -> Tick:
     """A tick at ``ts``."""
-    return Tick.model_validate({"type": "tick", "ts": ts})
+    return _decoded(_TOPICS.tick, {"type": "tick", "ts": ts}, Tick)
 
 
 __all__ = [

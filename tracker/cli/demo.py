@@ -299,7 +299,7 @@ async def _drive(
     """Publish the scenario's messages as they fall due; feed the daemon's targets to its router."""
     import aiomqtt
 
-    from tracker.edge.wire import StatusMessage, TargetMessage
+    from tracker.edge.wire import decode_output
     from tracker.shell.bus import topic_matches
 
     broker = settings.broker
@@ -332,10 +332,10 @@ async def _drive(
                 payload = message.payload
                 assert isinstance(payload, bytes | bytearray)
                 if topic.startswith(topics.targets("")):
-                    scenario.on_output(TargetMessage.model_validate_json(payload))
+                    scenario.on_output(decode_output(bytes(payload)))
                     woken.set()
                 else:
-                    scenario.on_output(StatusMessage.model_validate_json(payload))
+                    scenario.on_output(decode_output(bytes(payload)))
 
         listener = asyncio.create_task(listen(), name="demo.router")
         try:

@@ -64,7 +64,7 @@ from dataclasses import dataclass, field, fields
 from datetime import datetime
 from typing import Any
 
-from tracker.edge.wire import AlertMessage, Severity
+from tracker.core.messages import AlertMessage, Severity
 from tracker.errors import InputError
 
 BEHIND_PLAN = "behind_plan"

@@ -67,7 +67,7 @@ import json
 import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, fields, replace
 from datetime import date, datetime, timedelta
 from typing import Any
 
@@ -79,11 +79,7 @@ from tracker.core.alerts import AlertBook, AlertConfig, Check
 from tracker.core.forecast import Forecast, ObservedBin, forecast
 from tracker.core.formulation import Preferences, build_problem, preferences
 from tracker.core.lifecycle import AMENDABLE, LIVE, Event, Lifecycle, State, TransitionError
-from tracker.core.problem import Problem
-from tracker.core.profiles import Profile, default_profile
-from tracker.core.solve import CAPPED_SHORTFALL, Schedule, solve, solve_batch
-from tracker.edge.wire import (
-    DEFAULT_ROOT,
+from tracker.core.messages import (
     AlertMessage,
     BinMessage,
     ControlMessage,
@@ -92,13 +88,17 @@ from tracker.edge.wire import (
     Inbound,
     OrderMessage,
     Outbound,
+    Side,
     StatusMessage,
     TargetMessage,
     Tick,
-    encode,
+    json_object,
     payload_text,
-    to_json_object,
 )
+from tracker.core.problem import Problem
+from tracker.core.profiles import Profile, default_profile
+from tracker.core.solve import CAPPED_SHORTFALL, Schedule, solve, solve_batch
+from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.errors import InputError, TrackerError
 
 FloatArray = npt.NDArray[np.float64]
@@ -184,7 +184,7 @@ class _Plan:
 class _Order:
     order_id: str
     symbol: str
-    side: str
+    side: Side
     quantity: int
     start: datetime
     end: datetime
@@ -302,6 +302,7 @@ class Engine:
         self.config = config or EngineConfig()
         self._grace = timedelta(seconds=self.config.expiry_grace_seconds)
         self.root = root
+        self._topics = Topics(root)
         self._profiles: dict[str, Profile] = dict(profiles or {})
         self._orders: dict[str, _Order] = {}
         self._symbols: dict[str, _Symbol] = {}
@@ -310,7 +311,7 @@ class Engine:
         self._clock: datetime | None = None
         self._last_tick: datetime | None = None
         self._last_control: datetime | None = None
-        self._seen: set[bytes] = set()
+        self._seen: set[str] = set()
         self._halt_all = False
         self._starts: list[tuple[datetime, str]] = []
         self._ends: list[tuple[datetime, str]] = []
@@ -452,15 +453,12 @@ class Engine:
             reason: What is wrong and how to fix it.
             ts: When it was received (event time), if known.
         """
-        order_id = None
-        for kind in ("orders", "fills"):
-            prefix = f"{self.root}/{kind}/"
-            if topic.startswith(prefix) and "/" not in topic[len(prefix) :]:
-                candidate = topic[len(prefix) :]
-                if 0 < len(candidate) <= 64:
-                    order_id = candidate
         return ErrorMessage(
-            reason=reason, topic=topic, payload=payload_text(payload), ts=ts, order_id=order_id
+            reason=reason,
+            topic=topic,
+            payload=payload_text(payload),
+            ts=ts,
+            order_id=self._topics.order_id_of(topic),
         )
 
     def summary(self) -> dict[str, Any]:
@@ -516,23 +514,19 @@ class Engine:
     # ---------------------------------------------------------------- helpers
 
     def _error(self, event: Inbound, reason: str) -> ErrorMessage:
-        root = self.root
+        topics = self._topics
         if isinstance(event, OrderMessage):
-            topic, order_id = f"{root}/orders/{event.order_id}", event.order_id
+            topic, order_id = topics.orders(event.order_id), event.order_id
         elif isinstance(event, FillMessage):
-            topic, order_id = f"{root}/fills/{event.order_id}", event.order_id
+            topic, order_id = topics.fills(event.order_id), event.order_id
         elif isinstance(event, BinMessage):
-            topic, order_id = f"{root}/bins/{event.symbol}", None
+            topic, order_id = topics.bins(event.symbol), None
         elif isinstance(event, ControlMessage):
-            topic, order_id = f"{root}/control", event.order_id
+            topic, order_id = topics.control, event.order_id
         else:
-            topic, order_id = f"{root}/tick", None
+            topic, order_id = topics.tick, None
         # The payload as sent, as near as the decoded message can say: only the fields it set.
-        sent = {
-            key: value
-            for key, value in to_json_object(event).items()
-            if key == "type" or key in event.model_fields_set
-        }
+        sent = json_object(event, only_set=True)
         return ErrorMessage(
             reason=reason,
             topic=topic,
@@ -739,7 +733,7 @@ class Engine:
         self._advance(tick.ts)
 
     def _on_control(self, message: ControlMessage) -> None:
-        key = encode(message)
+        key = repr(message)
         if key in self._seen:
             return
         if self._last_control is not None and message.ts < self._last_control:
@@ -815,7 +809,7 @@ class Engine:
         return Event.RESUME if started else Event.RESUME_PENDING
 
     def _on_order(self, message: OrderMessage) -> None:
-        key = encode(message)
+        key = repr(message)
         if key in self._seen:
             return  # a redelivery of an accepted message: nothing changes
         existing = self._orders.get(message.order_id)
@@ -914,7 +908,7 @@ class Engine:
                 f"order {order.order_id!r} is {order.life.state.value}; only pending, working "
                 "or halted orders can be amended"
             )
-        changed = message.model_fields_set
+        changed = message.fields_set
         quantity = message.quantity if message.quantity is not None else order.quantity
         if quantity < order.filled:
             raise _Rejected(
@@ -1013,7 +1007,7 @@ class Engine:
                 fill.ts,
                 {"fill_id": fill.fill_id, "quantity": fill.quantity, "price": fill.price},
             )
-            alert = alert.model_copy(update={"order_id": fill.order_id})
+            alert = replace(alert, order_id=fill.order_id)
             raise _Rejected(
                 f"order_id: fill {fill.fill_id!r} is for order {fill.order_id!r}, which the "
                 "engine does not know; send the order (action 'new') before its fills",
@@ -1500,7 +1494,7 @@ class Engine:
         self, order: _Order, index: int, quantity: int, max_quantity: int | None, ts: datetime
     ) -> TargetMessage:
         bin_start, bin_end = self._bin_times(order, index)
-        return TargetMessage.trusted(
+        return TargetMessage(
             order_id=order.order_id,
             symbol=order.symbol,
             side=order.side,
@@ -1535,7 +1529,7 @@ class Engine:
         notional = order.remaining * plan.price if plan is not None else 0.0
         cost_bps = cost / notional * 1e4 if cost is not None and notional > 0 else None
         # Every value is already of its field's type (floats are floats, not ints or numpy).
-        return StatusMessage.trusted(
+        return StatusMessage(
             order_id=order.order_id,
             symbol=order.symbol,
             side=order.side,

@@ -2,14 +2,19 @@
 
 Theory of operation: every payload crosses the boundary exactly once, in :func:`decode`, which
 parses the JSON, checks that the topic fits the payload (kind and id) and validates every field
-into a frozen pydantic model. Inside the package nothing re-checks what was checked here. Anything
-wrong becomes a :class:`WireError` whose ``reason`` names the field and says what is allowed, so a
-person can fix the sender. Outbound messages are frozen models too; :func:`encode` turns them into
-deterministic bytes (fields in declaration order, nested keys sorted, floats rounded to
-:data:`FLOAT_DECIMALS` decimals, times in UTC with a ``Z``), so two runs on the same input write
-byte-identical output.
+against the contract's pydantic models (``*Payload``). What passes becomes one of the core's plain
+messages (:mod:`tracker.core.messages`), which the engine trusts. Anything wrong becomes a
+:class:`WireError` whose ``reason`` names the field and says what is allowed, so a person can fix
+the sender.
 
-Topics (``root`` defaults to ``tracker``)::
+Outbound, the engine returns core messages; :func:`encode` turns them into deterministic bytes
+(fields in declaration order, nested keys sorted, floats rounded to :data:`FLOAT_DECIMALS`
+decimals, times in UTC with a ``Z``), so two runs on the same input write byte-identical output.
+The outbound ``*Payload`` models are the written contract of those bytes (what a consumer may
+rely on; :func:`decode_output` reads them back); a test holds :func:`encode` to them. pydantic is
+used here, at the edge, and nowhere in the core.
+
+Topics (``root`` defaults to ``tracker``; :class:`tracker.core.topics.Topics` names them)::
 
     inbound   {root}/orders/{order_id}  {root}/fills/{order_id}  {root}/bins/{symbol}
               {root}/control            {root}/tick   (injected by the shells, never by users)
@@ -29,7 +34,7 @@ import math
 import re
 from collections.abc import Mapping
 from datetime import UTC, datetime
-from typing import Annotated, Any, Literal, Self
+from typing import Annotated, Any, Literal
 
 from pydantic import (
     AfterValidator,
@@ -43,19 +48,32 @@ from pydantic import (
     model_validator,
 )
 
+from tracker.core.formats import FLOAT_DECIMALS, utc_text
+from tracker.core.messages import (
+    AMENDABLE_FIELDS,
+    MAX_ERROR_PAYLOAD,
+    AlertMessage,
+    BinMessage,
+    ControlMessage,
+    ErrorMessage,
+    FillMessage,
+    Inbound,
+    Message,
+    OrderMessage,
+    Outbound,
+    Severity,
+    Side,
+    StatusMessage,
+    TargetMessage,
+    Tick,
+    json_object,
+    payload_text,
+)
+from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.errors import InputError
 
 #: Version of the wire contract these models implement.
 WIRE_VERSION = 1
-
-#: Default topic root.
-DEFAULT_ROOT = "tracker"
-
-#: Floats in encoded output are rounded to this many decimals (determinism across platforms).
-FLOAT_DECIMALS = 6
-
-#: Raw payloads kept in error records are truncated to this many characters.
-MAX_ERROR_PAYLOAD = 2_000
 
 _ID_PATTERN = re.compile(r"[A-Za-z0-9._-]{1,64}")
 _ID_RULE = "1 to 64 characters of A-Z, a-z, 0-9, '.', '_' or '-'"
@@ -134,10 +152,6 @@ def _aware_time(value: Any) -> datetime:
     return moment.astimezone(UTC)
 
 
-def _format_time(value: datetime) -> str:
-    return value.astimezone(UTC).isoformat().replace("+00:00", "Z")
-
-
 def _positive(value: float) -> float:
     if value <= 0:
         raise ValueError(f"must be greater than 0; got {value!r}")
@@ -151,15 +165,12 @@ def _non_negative(value: float) -> float:
 
 
 Id = Annotated[str, BeforeValidator(_check_id)]
-Time = Annotated[datetime, BeforeValidator(_aware_time), PlainSerializer(_format_time)]
-# Outbound times come from validated state; pydantic's own aware check is enough (and fast).
-OutTime = Annotated[AwareDatetime, PlainSerializer(_format_time)]
+Time = Annotated[datetime, BeforeValidator(_aware_time), PlainSerializer(utc_text)]
+OutTime = Annotated[AwareDatetime, PlainSerializer(utc_text)]
 Shares = Annotated[int, BeforeValidator(_whole_shares), AfterValidator(_positive)]
 NonNegativeShares = Annotated[int, BeforeValidator(_whole_shares), AfterValidator(_non_negative)]
 Price = Annotated[float, BeforeValidator(_finite_number), AfterValidator(_positive)]
 NonNegative = Annotated[float, BeforeValidator(_finite_number), AfterValidator(_non_negative)]
-Side = Literal["buy", "sell"]
-Severity = Literal["info", "warning", "critical"]
 
 
 def _participation(value: float) -> float:
@@ -178,36 +189,16 @@ class _Inbound(BaseModel):
 class _Outbound(BaseModel):
     model_config = ConfigDict(frozen=True, extra="forbid")
 
-    @classmethod
-    def trusted(cls, **values: Any) -> Self:
-        """The message from values the engine computed itself, without validating them again.
-
-        Equal to ``cls(**values)`` when the values are what validation would make of them: every
-        field but ``type`` given, in declaration order, each of exactly its field's type (a float
-        field holds a ``float``, not an int or a numpy scalar; times are aware datetimes). The
-        engine makes a status for every fill, and validating one costs about twice as much as
-        building it here (``model_construct`` is slower still: it walks the fields in Python).
-        The engine's tests build its outputs both ways and compare them.
-        """
-        message = cls.__new__(cls)
-        # What pydantic's own model_construct sets, without its per-field defaults and aliases.
-        kind = cls.__pydantic_fields__["type"].default
-        object.__setattr__(message, "__dict__", {"type": kind, **values})
-        object.__setattr__(message, "__pydantic_fields_set__", set(values))
-        object.__setattr__(message, "__pydantic_extra__", None)
-        object.__setattr__(message, "__pydantic_private__", None)
-        return message
-
 
 # --------------------------------------------------------------------------------------------
 # Inbound
 # --------------------------------------------------------------------------------------------
 
 _NEW_FIELDS = ("symbol", "side", "quantity", "start", "end")
-_AMENDABLE = ("quantity", "end", "limit_price", "max_participation", "urgency", "preferences")
+_AMENDABLE = AMENDABLE_FIELDS
 
 
-class OrderMessage(_Inbound):
+class OrderPayload(_Inbound):
     """A parent order: ``new`` creates it, ``amend`` changes it, ``cancel`` stops it.
 
     ``new`` needs symbol, side, quantity, start and end. ``amend`` carries only what changes
@@ -232,7 +223,7 @@ class OrderMessage(_Inbound):
     ts: Time
 
     @model_validator(mode="after")
-    def _action_fields(self) -> OrderMessage:
+    def _action_fields(self) -> OrderPayload:
         if self.action == "new":
             missing = [name for name in _NEW_FIELDS if getattr(self, name) is None]
             if missing:
@@ -256,13 +247,8 @@ class OrderMessage(_Inbound):
             raise ValueError(f"end must be after start; got start {self.start}, end {self.end}")
         return self
 
-    @property
-    def removes_limit(self) -> bool:
-        """True for an amend that explicitly sends ``"limit_price": null``."""
-        return self.limit_price is None and "limit_price" in self.model_fields_set
 
-
-class FillMessage(_Inbound):
+class FillPayload(_Inbound):
     """An execution against a parent order (shares are positive; the order has the side)."""
 
     type: Literal["fill"] = "fill"
@@ -274,7 +260,7 @@ class FillMessage(_Inbound):
     ts: Time
 
 
-class BinMessage(_Inbound):
+class BinPayload(_Inbound):
     """One closed market bin of a symbol: volume, prices and the average quoted spread.
 
     ``spread`` is in currency per share (like the prices). ``vwap`` may be null only when the
@@ -295,7 +281,7 @@ class BinMessage(_Inbound):
     ts: Time
 
     @model_validator(mode="after")
-    def _consistent(self) -> BinMessage:
+    def _consistent(self) -> BinPayload:
         if self.end <= self.start:
             raise ValueError(f"end must be after start; got start {self.start}, end {self.end}")
         if self.high < self.low:
@@ -311,7 +297,7 @@ class BinMessage(_Inbound):
         return self
 
 
-class ControlMessage(_Inbound):
+class ControlPayload(_Inbound):
     """Halt or resume one order (``order_id``) or every order (no ``order_id``)."""
 
     type: Literal["control"] = "control"
@@ -320,7 +306,7 @@ class ControlMessage(_Inbound):
     ts: Time
 
 
-class Tick(_Inbound):
+class TickPayload(_Inbound):
     """The passage of time, injected by the shells (live timer, replay); carries only ``ts``."""
 
     type: Literal["tick"] = "tick"
@@ -332,7 +318,7 @@ class Tick(_Inbound):
 # --------------------------------------------------------------------------------------------
 
 
-class TargetMessage(_Outbound):
+class TargetPayload(_Outbound):
     """What to trade in the next bin for one order.
 
     ``quantity`` is the shares for the bin ``[bin_start, bin_end)``; ``cumulative_target`` the
@@ -354,7 +340,7 @@ class TargetMessage(_Outbound):
     ts: OutTime
 
 
-class AlertMessage(_Outbound):
+class AlertPayload(_Outbound):
     """A condition the desk should know about; raised once and cleared once (hysteresis).
 
     ``state`` is ``"raised"`` or ``"cleared"`` (one-shot events such as a fill anomaly are
@@ -372,7 +358,7 @@ class AlertMessage(_Outbound):
     ts: OutTime
 
 
-class StatusMessage(_Outbound):
+class StatusPayload(_Outbound):
     """Where an order stands (retained per order on the wire).
 
     Attributes:
@@ -415,7 +401,7 @@ class StatusMessage(_Outbound):
     ts: OutTime
 
 
-class ErrorMessage(_Outbound):
+class ErrorPayload(_Outbound):
     """One rejected inbound message, with a reason a person can act on."""
 
     type: Literal["error"] = "error"
@@ -427,15 +413,19 @@ class ErrorMessage(_Outbound):
     order_id: str | None = None
 
 
-Inbound = OrderMessage | FillMessage | BinMessage | ControlMessage | Tick
-Outbound = TargetMessage | AlertMessage | StatusMessage | ErrorMessage
+_PAYLOADS: dict[str, type[_Inbound]] = {
+    "order": OrderPayload,
+    "fill": FillPayload,
+    "bin": BinPayload,
+    "control": ControlPayload,
+    "tick": TickPayload,
+}
 
-_MODELS: dict[str, type[_Inbound]] = {
-    "order": OrderMessage,
-    "fill": FillMessage,
-    "bin": BinMessage,
-    "control": ControlMessage,
-    "tick": Tick,
+_OUTPUT_PAYLOADS: dict[str, type[_Outbound]] = {
+    "target": TargetPayload,
+    "alert": AlertPayload,
+    "status": StatusPayload,
+    "error": ErrorPayload,
 }
 
 # Topic kind -> (message type, payload field that must equal the topic's last level).
@@ -446,32 +436,23 @@ _TOPIC_KINDS: dict[str, tuple[str, str | None]] = {
     "control": ("control", None),
     "tick": ("tick", None),
 }
-_TOPIC_OF_TYPE = {
-    "order": "{root}/orders/{{order_id}}",
-    "fill": "{root}/fills/{{order_id}}",
-    "bin": "{root}/bins/{{symbol}}",
-    "control": "{root}/control",
-    "tick": "{root}/tick",
-}
+
+
+def _topic_of_type(message_type: str, root: str) -> str:
+    """Where messages of ``message_type`` are published, as a pattern for an error reason."""
+    topics = Topics(root)
+    return {
+        "order": topics.orders("{order_id}"),
+        "fill": topics.fills("{order_id}"),
+        "bin": topics.bins("{symbol}"),
+        "control": topics.control,
+        "tick": topics.tick,
+    }[message_type]
 
 
 # --------------------------------------------------------------------------------------------
 # Decode / encode
 # --------------------------------------------------------------------------------------------
-
-
-def payload_text(payload: bytes | str | Mapping[str, Any]) -> str:
-    """The payload as text for an error record, truncated to :data:`MAX_ERROR_PAYLOAD` chars."""
-    if isinstance(payload, bytes):
-        text = payload.decode("utf-8", errors="replace")
-    elif isinstance(payload, str):
-        text = payload
-    else:
-        try:
-            text = json.dumps(payload, sort_keys=True, default=str, allow_nan=True)
-        except (TypeError, ValueError):
-            text = repr(payload)
-    return text[:MAX_ERROR_PAYLOAD]
 
 
 def _reject_constant(name: str) -> Any:
@@ -510,19 +491,18 @@ def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, An
 
 def _split_topic(topic: str, root: str) -> tuple[str, str | None]:
     """Return (kind, last level or None) of an inbound topic, or raise WireError."""
-    allowed = (
-        f"{root}/orders/{{order_id}}, {root}/fills/{{order_id}}, {root}/bins/{{symbol}}, "
-        f"{root}/control or {root}/tick"
-    )
     prefix = f"{root}/"
+    if topic.startswith(prefix):
+        levels = topic[len(prefix) :].split("/")
+        kind = levels[0]
+        if kind in ("control", "tick") and len(levels) == 1:
+            return kind, None
+        if kind in ("orders", "fills", "bins") and len(levels) == 2 and levels[1]:
+            return kind, levels[1]
+    allowed = ", ".join(_topic_of_type(kind, root) for kind in ("order", "fill", "bin", "control"))
+    allowed += f" or {_topic_of_type('tick', root)}"
     if not topic.startswith(prefix):
         raise WireError(f"topic {topic!r} is outside the root {root!r}; use {allowed}", topic=topic)
-    levels = topic[len(prefix) :].split("/")
-    kind = levels[0]
-    if kind in ("control", "tick") and len(levels) == 1:
-        return kind, None
-    if kind in ("orders", "fills", "bins") and len(levels) == 2 and levels[1]:
-        return kind, levels[1]
     raise WireError(f"topic {topic!r} is not an inbound topic; use {allowed}", topic=topic)
 
 
@@ -558,7 +538,7 @@ def decode(
         root: The topic root.
 
     Returns:
-        The frozen message model.
+        The core event (:mod:`tracker.core.messages`) the payload stands for.
 
     Raises:
         WireError: the topic, the JSON or a field is wrong; ``reason`` says what to fix.
@@ -569,21 +549,21 @@ def decode(
     message_type = data.get("type")
     if message_type is None:
         raise WireError(
-            f"type: is required; one of {', '.join(sorted(_MODELS))}",
+            f"type: is required; one of {', '.join(sorted(_PAYLOADS))}",
             topic=topic,
             field="type",
             order_id=order_id,
         )
-    if not isinstance(message_type, str) or message_type not in _MODELS:
+    if not isinstance(message_type, str) or message_type not in _PAYLOADS:
         raise WireError(
-            f"type: unknown message type {message_type!r}; one of {', '.join(sorted(_MODELS))}",
+            f"type: unknown message type {message_type!r}; one of {', '.join(sorted(_PAYLOADS))}",
             topic=topic,
             field="type",
             order_id=order_id,
         )
     expected_type, id_field = _TOPIC_KINDS[kind]
     if message_type != expected_type:
-        where = _TOPIC_OF_TYPE[message_type].format(root=root)
+        where = _topic_of_type(message_type, root)
         raise WireError(
             f"a {message_type} message arrived on topic {topic!r}, which takes {expected_type} "
             f"messages; publish {message_type} messages to {where}",
@@ -592,58 +572,113 @@ def decode(
             order_id=order_id,
         )
     try:
-        message = _MODELS[message_type].model_validate(data)
+        valid = _PAYLOADS[message_type].model_validate(data)
     except ValidationError as exc:
         reason, field = _describe(exc)
         raise WireError(reason, topic=topic, field=field, order_id=order_id) from None
-    if id_field is not None and getattr(message, id_field) != last:
+    if id_field is not None and getattr(valid, id_field) != last:
         raise WireError(
-            f"{id_field}: payload says {getattr(message, id_field)!r} but the topic says "
+            f"{id_field}: payload says {getattr(valid, id_field)!r} but the topic says "
             f"{last!r}; they must match",
             topic=topic,
             field=id_field,
             order_id=order_id,
         )
-    return message  # type: ignore[return-value]
+    return _event(valid)
+
+
+def _values(model: BaseModel) -> dict[str, Any]:
+    """A validated model's field values, without ``type`` (the core message's class says it)."""
+    values = dict(model.__dict__)
+    del values["type"]
+    return values
+
+
+def _event(valid: _Inbound) -> Inbound:
+    """The core event of a validated inbound payload."""
+    if type(valid) is FillPayload:  # nearly every message of a day: the short way first
+        return FillMessage(
+            fill_id=valid.fill_id,
+            order_id=valid.order_id,
+            quantity=valid.quantity,
+            price=valid.price,
+            side=valid.side,
+            ts=valid.ts,
+        )
+    if isinstance(valid, OrderPayload):
+        return OrderMessage(
+            **_values(valid), fields_set=frozenset(valid.model_fields_set - {"type"})
+        )
+    if isinstance(valid, BinPayload):
+        return BinMessage(**_values(valid))
+    if isinstance(valid, ControlPayload):
+        return ControlMessage(**_values(valid))
+    return Tick(**_values(valid))
 
 
 def topic_of(message: Outbound, root: str = DEFAULT_ROOT) -> str:
     """The topic an outbound message is published on."""
+    topics = Topics(root)
     if isinstance(message, TargetMessage):
-        return f"{root}/targets/{message.order_id}"
+        return topics.targets(message.order_id)
     if isinstance(message, StatusMessage):
-        return f"{root}/status/{message.order_id}"
+        return topics.status(message.order_id)
     if isinstance(message, AlertMessage):
-        if message.order_id is None:
-            return f"{root}/alerts"
-        return f"{root}/alerts/{message.order_id}"
-    return f"{root}/errors"
+        return topics.alerts(message.order_id)
+    return topics.errors
 
 
-def _rounded(value: Any) -> Any:
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return None
-        rounded = round(value, FLOAT_DECIMALS)
-        return 0.0 if rounded == 0 else rounded  # no "-0.0"
-    if isinstance(value, dict):
-        return {key: _rounded(value[key]) for key in sorted(value)}
-    if isinstance(value, list | tuple):
-        return [_rounded(item) for item in value]
-    return value
+def to_json_object(message: Message) -> dict[str, Any]:
+    """The JSON object of a message, floats rounded, nested mapping keys sorted.
+
+    The top level keeps the declared field order (readable: ``type`` first); see
+    :func:`tracker.core.messages.json_object`.
+    """
+    return json_object(message)
 
 
-def to_json_object(message: Outbound | Inbound) -> dict[str, Any]:
-    """The JSON object of a message, floats rounded, nested mapping keys sorted."""
-    # Top level keeps the declared field order (readable: "type" first); nested keys are sorted.
-    return {key: _rounded(item) for key, item in message.model_dump(mode="json").items()}
-
-
-def encode(message: Outbound | Inbound) -> bytes:
+def encode(message: Message) -> bytes:
     """Deterministic compact JSON bytes of a message (UTF-8, no NaN)."""
     return json.dumps(
-        to_json_object(message), separators=(",", ":"), ensure_ascii=False, allow_nan=False
+        json_object(message), separators=(",", ":"), ensure_ascii=False, allow_nan=False
     ).encode("utf-8")
+
+
+def decode_output(payload: bytes | str) -> Outbound:
+    """Read an outbound message back from its JSON bytes (as a consumer of the wire would).
+
+    Args:
+        payload: What :func:`encode` wrote for a target, status, alert or error.
+
+    Returns:
+        The core message, validated against the contract's outbound model first.
+
+    Raises:
+        WireError: not JSON, not an object, an unknown ``type``, or a field the contract does not
+            allow.
+    """
+    data = _parse("(outbound)", payload)
+    kind = data.get("type")
+    model = _OUTPUT_PAYLOADS.get(kind) if isinstance(kind, str) else None
+    if model is None:
+        raise WireError(
+            f"type: {kind!r} is not an outbound message type; one of "
+            f"{', '.join(sorted(_OUTPUT_PAYLOADS))}",
+            topic="(outbound)",
+            field="type",
+        )
+    try:
+        valid = model.model_validate(data)
+    except ValidationError as exc:
+        reason, field = _describe(exc)
+        raise WireError(reason, topic="(outbound)", field=field) from None
+    outbound: dict[str, type[Outbound]] = {
+        "target": TargetMessage,
+        "alert": AlertMessage,
+        "status": StatusMessage,
+        "error": ErrorMessage,
+    }
+    return outbound[kind](**_values(valid))  # type: ignore[index]
 
 
 __all__ = [
@@ -652,18 +687,30 @@ __all__ = [
     "MAX_ERROR_PAYLOAD",
     "WIRE_VERSION",
     "AlertMessage",
+    "AlertPayload",
     "BinMessage",
+    "BinPayload",
     "ControlMessage",
+    "ControlPayload",
     "ErrorMessage",
+    "ErrorPayload",
     "FillMessage",
+    "FillPayload",
     "Inbound",
     "OrderMessage",
+    "OrderPayload",
     "Outbound",
+    "Severity",
+    "Side",
     "StatusMessage",
+    "StatusPayload",
     "TargetMessage",
+    "TargetPayload",
     "Tick",
+    "TickPayload",
     "WireError",
     "decode",
+    "decode_output",
     "encode",
     "payload_text",
     "to_json_object",

@@ -47,6 +47,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
 import fcntl
 import os
 import time as _time
@@ -509,7 +510,7 @@ class Daemon:
                 error = self.engine.reject(
                     record.topic, payload, reason, _parse_ts(record.ts or "")
                 )
-                results.append([error.model_copy(update={"line": record.line})])
+                results.append([dataclasses.replace(error, line=record.line)])
         for record, outputs in zip(run, results, strict=True):
             self._report(record, outputs)
         return results

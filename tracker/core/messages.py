@@ -1,0 +1,317 @@
+"""The messages of the core: the events the engine takes and the outputs it returns.
+
+Theory of operation
+-------------------
+These are plain frozen dataclasses. They hold values that are already valid: the edge
+(:func:`tracker.edge.wire.decode`) checks every inbound payload against the wire contract and only
+then builds one of these, and the engine builds its outputs from its own state. Nothing in the
+core checks them again (and nothing here imports the wire's validation library).
+
+Field names and their order are those of the wire contract v1, so :func:`json_object` can write any
+of them as the JSON object the wire carries: ``type`` first, then the fields in declaration order,
+times in UTC with a ``Z``, floats rounded (:mod:`tracker.core.formats`), nested mappings with sorted
+keys. The edge's ``encode`` writes these objects as bytes; a test holds them to the wire contract's
+own models.
+
+Inbound (events): :class:`OrderMessage`, :class:`FillMessage`, :class:`BinMessage`,
+:class:`ControlMessage` and :class:`Tick` (the passage of time, injected by the shells).
+Outbound: :class:`TargetMessage`, :class:`StatusMessage`, :class:`AlertMessage` and
+:class:`ErrorMessage`.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields
+from datetime import datetime
+from typing import Any, ClassVar, Literal
+
+from tracker.core.formats import rounded, utc_text
+
+Side = Literal["buy", "sell"]
+Severity = Literal["info", "warning", "critical"]
+Action = Literal["new", "amend", "cancel"]
+Command = Literal["halt", "resume"]
+
+#: Raw payloads kept in error records are truncated to this many characters.
+MAX_ERROR_PAYLOAD = 2_000
+
+#: The fields an order ``amend`` can change.
+AMENDABLE_FIELDS = ("quantity", "end", "limit_price", "max_participation", "urgency", "preferences")
+
+# --------------------------------------------------------------------------------------------
+# Inbound
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class OrderMessage:
+    """A parent order: ``new`` creates it, ``amend`` changes it, ``cancel`` stops it.
+
+    Attributes:
+        fields_set: The names of the fields the message carried, explicit nulls included (an
+            amend changes exactly those; ``"limit_price": null`` removes the limit). Left empty
+            when built in code, it becomes the fields given a value other than ``None``.
+    """
+
+    type: ClassVar[str] = "order"
+    action: Action
+    order_id: str
+    symbol: str | None = None
+    side: Side | None = None
+    quantity: int | None = None
+    start: datetime | None = None
+    end: datetime | None = None
+    limit_price: float | None = None
+    max_participation: float | None = None
+    urgency: Literal["low", "medium", "high"] | None = None
+    preferences: Mapping[str, float | str | bool] | None = None
+    arrival_price: float | None = None
+    ts: datetime
+    fields_set: frozenset[str] = frozenset()
+
+    def __post_init__(self) -> None:
+        if not self.fields_set:
+            given = frozenset(
+                item.name
+                for item in fields(self)
+                if item.name != "fields_set" and getattr(self, item.name) is not None
+            )
+            object.__setattr__(self, "fields_set", given)
+
+    def sets(self, name: str) -> bool:
+        """Whether the message carried field ``name`` (an explicit null counts)."""
+        return name in self.fields_set
+
+    @property
+    def removes_limit(self) -> bool:
+        """True for an amend that explicitly sends ``"limit_price": null``."""
+        return self.limit_price is None and "limit_price" in self.fields_set
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class FillMessage:
+    """An execution against a parent order (shares are positive; the order has the side)."""
+
+    type: ClassVar[str] = "fill"
+    fill_id: str
+    order_id: str
+    quantity: int
+    price: float
+    side: Side | None = None
+    ts: datetime
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class BinMessage:
+    """One closed market bin of a symbol; ``spread`` in currency per share, ``vwap`` null only
+    when the bin had no volume."""
+
+    type: ClassVar[str] = "bin"
+    symbol: str
+    start: datetime
+    end: datetime
+    volume: int
+    vwap: float | None = None
+    open: float
+    high: float
+    low: float
+    close: float
+    spread: float
+    ts: datetime
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ControlMessage:
+    """Halt or resume one order (``order_id``) or every order (no ``order_id``)."""
+
+    type: ClassVar[str] = "control"
+    command: Command
+    order_id: str | None = None
+    ts: datetime
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Tick:
+    """The passage of time, injected by the shells (live timer, replay); carries only ``ts``."""
+
+    type: ClassVar[str] = "tick"
+    ts: datetime
+
+
+# --------------------------------------------------------------------------------------------
+# Outbound (the fields are described on the wire contract's models in tracker.edge.wire)
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class TargetMessage:
+    """What to trade in the next bin for one order."""
+
+    type: ClassVar[str] = "target"
+    order_id: str
+    symbol: str
+    side: Side
+    bin_start: datetime | None
+    bin_end: datetime | None
+    quantity: int
+    cumulative_target: int
+    remaining: int
+    max_quantity: int | None
+    plan_version: int
+    ts: datetime
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class AlertMessage:
+    """A condition the desk should know about, raised once and cleared once, or a one-shot
+    event; ``order_id`` is null for alerts about a symbol as a whole."""
+
+    type: ClassVar[str] = "alert"
+    order_id: str | None
+    symbol: str | None = None
+    code: str
+    severity: Severity
+    state: Literal["raised", "cleared"] = "raised"
+    message: str
+    details: Mapping[str, Any] = field(default_factory=dict)
+    ts: datetime
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class StatusMessage:
+    """Where an order stands (retained per order on the wire)."""
+
+    type: ClassVar[str] = "status"
+    order_id: str
+    symbol: str
+    side: Side
+    state: str
+    quantity: int
+    filled: int
+    remaining: int
+    progress_pct: float
+    planned_filled: int
+    deviation_shares: int
+    deviation_pct: float
+    deviation_bins: float | None
+    average_price: float | None
+    arrival_price: float | None
+    limit_price: float | None
+    volume_scale: float | None
+    expected_cost: float | None
+    expected_cost_bps: float | None
+    plan_version: int
+    ts: datetime
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ErrorMessage:
+    """One rejected inbound message, with a reason a person can act on."""
+
+    type: ClassVar[str] = "error"
+    reason: str
+    topic: str
+    payload: str
+    ts: datetime | None
+    line: int | None = None
+    order_id: str | None = None
+
+
+Inbound = OrderMessage | FillMessage | BinMessage | ControlMessage | Tick
+Outbound = TargetMessage | AlertMessage | StatusMessage | ErrorMessage
+Message = Inbound | Outbound
+
+# Per class, the names of the fields written on the wire, in order (computed once).
+_WIRE_FIELDS: dict[type, tuple[str, ...]] = {
+    cls: tuple(item.name for item in fields(cls) if item.name != "fields_set")
+    for cls in (
+        OrderMessage,
+        FillMessage,
+        BinMessage,
+        ControlMessage,
+        Tick,
+        TargetMessage,
+        AlertMessage,
+        StatusMessage,
+        ErrorMessage,
+    )
+}
+
+
+def wire_fields(message: Message) -> tuple[str, ...]:
+    """The names of a message's wire fields, in order (``type`` not included)."""
+    return _WIRE_FIELDS[type(message)]
+
+
+def _plain(value: Any) -> Any:
+    if isinstance(value, datetime):
+        return utc_text(value)
+    if isinstance(value, float | Mapping | list | tuple):
+        return rounded(value)
+    return value
+
+
+def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:
+    """The JSON object of a message as the wire carries it.
+
+    ``type`` first, then every field in declaration order; times as ISO 8601 UTC text with a
+    ``Z``, floats rounded to :data:`~tracker.core.formats.FLOAT_DECIMALS` decimals (non-finite:
+    ``None``), nested mapping keys sorted.
+
+    Args:
+        message: Any message of this module.
+        only_set: Keep only the fields the message carried (an order's ``fields_set``; for the
+            other messages the fields that are not ``None``) -- the payload as sent, as near as
+            the decoded message can say.
+    """
+    names = _WIRE_FIELDS[type(message)]
+    result: dict[str, Any] = {"type": message.type}
+    for name in names:
+        value = getattr(message, name)
+        if only_set:
+            if isinstance(message, OrderMessage):
+                if name not in message.fields_set:
+                    continue
+            elif value is None:
+                continue
+        result[name] = _plain(value)
+    return result
+
+
+def payload_text(payload: bytes | str | Mapping[str, Any]) -> str:
+    """The payload as text for an error record, truncated to :data:`MAX_ERROR_PAYLOAD` chars."""
+    if isinstance(payload, bytes):
+        text = payload.decode("utf-8", errors="replace")
+    elif isinstance(payload, str):
+        text = payload
+    else:
+        try:
+            text = json.dumps(payload, sort_keys=True, default=str, allow_nan=True)
+        except (TypeError, ValueError):
+            text = repr(payload)
+    return text[:MAX_ERROR_PAYLOAD]
+
+
+__all__ = [
+    "AMENDABLE_FIELDS",
+    "MAX_ERROR_PAYLOAD",
+    "AlertMessage",
+    "BinMessage",
+    "ControlMessage",
+    "ErrorMessage",
+    "FillMessage",
+    "Inbound",
+    "Message",
+    "OrderMessage",
+    "Outbound",
+    "Severity",
+    "Side",
+    "StatusMessage",
+    "TargetMessage",
+    "Tick",
+    "json_object",
+    "payload_text",
+    "wire_fields",
+]
