@@ -16,7 +16,16 @@ from collections.abc import Sequence
 from tracker.errors import InputError
 
 #: Sub-command modules, in the order ``--help`` lists them.
-COMMANDS: tuple[str, ...] = ("plan", "replay", "calibrate", "simulate", "run", "journal", "demo")
+COMMANDS: tuple[str, ...] = (
+    "plan",
+    "replay",
+    "calibrate",
+    "simulate",
+    "evaluate",
+    "run",
+    "journal",
+    "demo",
+)
 
 CAUTION = (
     "Caution: tracker advises; it does not place orders. Its output is meant for supervised use by "
