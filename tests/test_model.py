@@ -12,6 +12,7 @@ from tracker import solve
 from tracker.core.forecast import forecast
 from tracker.core.formulation import (
     IMPACT_LAWS,
+    OrderPlan,
     build_problem,
     plan_order,
     preferences,
@@ -303,3 +304,92 @@ def test_every_impact_law_builds_a_solvable_problem() -> None:
         for name in IMPACT_LAWS
     }
     assert {name: "optimal" for name in IMPACT_LAWS} == statuses
+
+
+def _plan(urgency: str = "medium", cap: float | None = 0.2) -> OrderPlan:
+    return plan_order(
+        symbol="ZEPH",
+        side="buy",
+        quantity=120_000,
+        start=OPEN,
+        end=CLOSE,
+        liquidity=default_profile("ZEPH"),
+        preferences=preferences(urgency),
+        max_participation=cap,
+        arrival_price=PRICE,
+    )
+
+
+def test_risk_term_is_risk_aversion_times_the_variance_of_the_cost() -> None:
+    """With p = 2 the risk term is lambda x Var[cost] (Almgren and Chriss 2000: E + lambda V)."""
+    plan = _plan()
+    adv = default_profile("ZEPH").average_daily_volume
+    lam = preferences("medium").risk_aversion / (PRICE * adv)
+    assert plan.cost["risk"] == pytest.approx(lam * plan.cost_std**2, rel=1e-9)
+
+
+def test_standard_deviation_by_hand_on_two_bins() -> None:
+    """Two flat bins, 1,000 then 0 shares left: sd = sigma P x 1,000 (arithmetic in the test)."""
+    session = Session(start="09:30", end="09:40", bin_minutes=5)  # type: ignore[arg-type]
+    profile = Profile(
+        symbol="TWO",
+        session=session,
+        volume_share=np.full(2, 0.5),
+        spread=np.full(2, 0.02),
+        volatility=np.full(2, 0.01),
+        average_daily_volume=1_000_000.0,
+    )
+    plan = plan_order(
+        symbol="TWO",
+        side="sell",
+        quantity=2_000,
+        start=datetime.fromisoformat("2026-03-02T09:30:00-05:00"),
+        end=datetime.fromisoformat("2026-03-02T09:40:00-05:00"),
+        liquidity=profile,
+        preferences=preferences("low"),
+        max_participation=None,
+        arrival_price=PRICE,
+    )
+    # Equal bins and a small risk aversion: 1,000 shares a bin, so q_1 = 1,000 (after bin 0)
+    # and q_2 = 0. Var = (0.01 x 50)^2 x 1,000^2 + 0 = 250,000; sd = 500.
+    left = plan.bins[0].inventory_after
+    assert left == pytest.approx(1_000, abs=5)
+    assert plan.cost_std == pytest.approx(0.01 * PRICE * float(plan.schedule.trajectory[1]))
+
+
+def test_expected_cost_is_spread_plus_impact_without_the_risk_term() -> None:
+    """Expected cost = spread + impact (the engine's status meaning); the total adds risk."""
+    plan = _plan()
+    expected = (
+        plan.cost["spread"] + plan.cost["impact"],
+        plan.cost["expected"] + plan.cost["risk"] + plan.cost["completion"],
+    )
+    assert expected == (plan.cost["expected"], plan.cost["total"])
+
+
+def test_milestones_are_the_bins_where_the_plan_crosses_each_quarter() -> None:
+    """25/50/75 % are the ends of the first bins whose cumulative planned shares reach them."""
+    plan = _plan()
+    done = np.cumsum([b.quantity for b in plan.bins])
+    expected = {
+        f: plan.bins[int(np.argmax(done >= f * 120_000 - 0.5))].end for f in (0.25, 0.5, 0.75)
+    }
+    assert expected == plan.milestones()
+
+
+def test_volume_share_and_participation() -> None:
+    """Quantity over window volume; peak = the largest bin share; the cap bounds the peak."""
+    plan = _plan()
+    volume = sum(b.forecast_volume for b in plan.bins)
+    expected = (pytest.approx(120_000 / volume), True)
+    actual = (plan.volume_share, plan.peak_participation <= 0.2 + 1e-4)
+    assert expected == actual
+
+
+@pytest.mark.parametrize("cap", [None, 0.2], ids=["uncapped", "capped-at-20-percent"])
+def test_efficient_frontier_more_urgency_costs_more_and_risks_less(cap: float | None) -> None:
+    """low < medium < high: expected cost rises, its sd falls (Almgren and Chriss 2000, sec. 3)."""
+    plans = [_plan(u, cap) for u in ("low", "medium", "high")]
+    costs = [p.cost["expected"] for p in plans]
+    stds = [p.cost_std for p in plans]
+    assert (costs == sorted(costs), stds == sorted(stds, reverse=True)) == (True, True)

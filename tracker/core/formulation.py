@@ -311,7 +311,20 @@ class PlannedBin:
 
 @dataclass(frozen=True, eq=False)
 class OrderPlan:
-    """The optimal schedule of an order with its expected cost.
+    """The optimal schedule of an order with its expected cost and what a trader reads first.
+
+    Costs are in currency, positive for a cost, for buys and sells alike. Three numbers are kept
+    apart because they are easily confused:
+
+    * the *expected cost* (``cost["expected"]``): half spread and fees plus temporary and
+      permanent impact of the planned trades -- what the plan expects to pay against the arrival
+      price on average; the engine's status calls the same quantity ``expected_cost``;
+    * its *standard deviation* (:attr:`cost_std`): the price risk of the inventory still held,
+      ``sqrt(sum_n (sigma_n P)^2 q_n^2)`` with ``q_n`` the shares left after bin ``n`` and
+      ``sigma_n`` the bin's volatility (Almgren and Chriss 2000, the variance of the cost of a
+      trajectory);
+    * the *risk term* (``cost["risk"]``): the penalty the optimiser adds for that risk,
+      ``lambda x variance`` when the penalty exponent is 2; a preference, not money paid.
 
     Attributes:
         symbol: The order's symbol.
@@ -322,8 +335,13 @@ class OrderPlan:
         problem: The canonical problem that was solved.
         schedule: The solver's schedule (continuous shares).
         bins: The plan per bin, rounded to whole shares.
-        cost: Expected cost in currency: ``spread``, ``impact``, ``risk``, ``completion``
-            (penalty on an unfinished quantity) and ``total``. Positive is a cost for either side.
+        cost: In currency: ``spread``, ``impact``, ``risk``, ``completion`` (penalty on an
+            unfinished quantity; infinite when completion is forced and the caps prevent it),
+            ``expected`` (spread + impact) and ``total`` (the objective: all four terms).
+        cost_std: Standard deviation of the cost, currency.
+        requested_start, requested_end: The order's window as given, venue local time.
+        timezone: The venue's IANA timezone.
+        max_participation: The participation cap, or ``None``.
     """
 
     symbol: str
@@ -335,16 +353,93 @@ class OrderPlan:
     schedule: Schedule
     bins: tuple[PlannedBin, ...]
     cost: Mapping[str, float]
+    cost_std: float = 0.0
+    requested_start: datetime | None = None
+    requested_end: datetime | None = None
+    timezone: str = ""
+    max_participation: float | None = None
 
     @property
     def cost_bps(self) -> dict[str, float]:
         """The cost in basis points of the order's value at the arrival price."""
-        notional = self.quantity * self.arrival_price
-        scale = 1e4 / notional if notional > 0 else 0.0
+        scale = self._bps_scale()
         return {name: value * scale for name, value in self.cost.items()}
+
+    @property
+    def cost_std_bps(self) -> float:
+        """:attr:`cost_std` in basis points of the order's value at the arrival price."""
+        return self.cost_std * self._bps_scale()
+
+    def _bps_scale(self) -> float:
+        notional = self.quantity * self.arrival_price
+        return 1e4 / notional if notional > 0 else 0.0
+
+    @property
+    def window_start(self) -> datetime:
+        """Start of the planned window (venue local time): the order's start inside the session."""
+        return self.bins[0].start
+
+    @property
+    def window_end(self) -> datetime:
+        """End of the planned window (venue local time)."""
+        return self.bins[-1].end
+
+    @property
+    def start_clipped(self) -> bool:
+        """Whether the session cut the start (the order asked to start before the open)."""
+        return self.requested_start is not None and self.requested_start < self.window_start
+
+    @property
+    def end_clipped(self) -> bool:
+        """Whether the session cut the end (the order asked to end after the close)."""
+        return self.requested_end is not None and self.requested_end > self.window_end
+
+    @property
+    def window_volume(self) -> float:
+        """Forecast market volume over the window, shares."""
+        return float(sum(b.forecast_volume for b in self.bins))
+
+    @property
+    def volume_share(self) -> float:
+        """The order's quantity as a fraction of the forecast volume in its window."""
+        volume = self.window_volume
+        return self.quantity / volume if volume > 0 else math.inf
+
+    @property
+    def average_participation(self) -> float:
+        """Planned shares over the forecast volume of the bins that trade (a fraction)."""
+        trading = [b for b in self.bins if b.quantity > 0]
+        volume = sum(b.forecast_volume for b in trading)
+        return sum(b.quantity for b in trading) / volume if volume > 0 else 0.0
+
+    @property
+    def peak_participation(self) -> float:
+        """The largest planned share of a bin's forecast volume (a fraction)."""
+        return max((b.participation for b in self.bins), default=0.0)
+
+    def milestones(
+        self, fractions: tuple[float, ...] = (0.25, 0.5, 0.75)
+    ) -> dict[float, datetime | None]:
+        """When the plan has done each fraction of the order: the end of the bin that reaches it.
+
+        ``None`` for a fraction the plan never reaches (a capped shortfall).
+        """
+        done = 0
+        reached: dict[float, datetime | None] = dict.fromkeys(fractions)
+        for item in self.bins:
+            done += item.quantity
+            for fraction in fractions:
+                if reached[fraction] is None and done >= fraction * self.quantity - 0.5:
+                    reached[fraction] = item.end
+        return reached
 
     def to_mapping(self) -> dict[str, Any]:
         """The plan as the JSON object of ``tracker plan --order --format json``."""
+
+        def finite(value: float) -> float | None:
+            return value if math.isfinite(value) else None
+
+        bps = self.cost_bps
         return {
             "symbol": self.symbol,
             "side": self.side,
@@ -352,16 +447,34 @@ class OrderPlan:
             "arrival_price": self.arrival_price,
             "status": self.schedule.status,
             "shortfall": float(self.schedule.shortfall),
+            "timezone": self.timezone,
+            "window": {
+                "start": self.window_start.isoformat(),
+                "end": self.window_end.isoformat(),
+                "start_clipped": self.start_clipped,
+                "end_clipped": self.end_clipped,
+            },
+            "max_participation": self.max_participation,
+            "forecast_volume": self.window_volume,
+            "volume_share": finite(self.volume_share),
+            "average_participation": self.average_participation,
+            "peak_participation": self.peak_participation,
+            "milestones": {
+                f"{round(fraction * 100)}%": None if when is None else when.isoformat()
+                for fraction, when in self.milestones().items()
+            },
             "preferences": self.preferences.to_mapping(),
             "bins": [b.to_mapping() for b in self.bins],
             "expected_cost": {
-                "currency": self.cost["total"],
-                "bps": self.cost_bps["total"],
+                "currency": self.cost["expected"],
+                "bps": bps["expected"],
                 "breakdown": {
-                    name: {"currency": self.cost[name], "bps": self.cost_bps[name]}
+                    name: {"currency": finite(self.cost[name]), "bps": finite(bps[name])}
                     for name in ("spread", "impact", "risk", "completion")
                 },
             },
+            "cost_std": {"currency": self.cost_std, "bps": self.cost_std_bps},
+            "objective": {"currency": finite(self.cost["total"]), "bps": finite(bps["total"])},
         }
 
 
@@ -446,6 +559,11 @@ def plan_order(
         "completion": float(terms["terminal_penalty"]),
     }
     cost["total"] = sum(cost.values())
+    cost["expected"] = cost["spread"] + cost["impact"]
+    # Variance of the cost (Almgren and Chriss 2000): the price of each bin moves with standard
+    # deviation sigma_n P and acts on the shares still held after the bin's trades.
+    sigma = today.volatility[first:end_bin] * float(arrival_price)
+    variance = float(np.sum((sigma * np.asarray(schedule.trajectory[1:])) ** 2))
     return OrderPlan(
         symbol=symbol,
         side=side,
@@ -456,4 +574,9 @@ def plan_order(
         schedule=schedule,
         bins=bins,
         cost=cost,
+        cost_std=math.sqrt(variance),
+        requested_start=session.local(start),
+        requested_end=session.local(end),
+        timezone=session.timezone,
+        max_participation=max_participation,
     )
