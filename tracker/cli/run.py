@@ -216,6 +216,8 @@ async def serve(settings: Any) -> int:
         finally:
             for signum in (signal.SIGTERM, signal.SIGINT):
                 loop.remove_signal_handler(signum)
+    if daemon.failure is not None:
+        raise daemon.failure
     if not daemon.stopped_cleanly:
         raise InputError("the daemon did not stop cleanly; see the log")
     return 0

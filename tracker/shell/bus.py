@@ -20,6 +20,14 @@ messages while we are away; it subscribes at QoS 1, publishes a retained ``onlin
   again after the reconnect (at least once, in order).
 * **heartbeat** -- re-publishes the retained health message every ``heartbeat_seconds``.
 
+One instance per id: every health message carries this process's ``run_id``, and the bus also
+listens to its own health topic. Before the daemon connects with its client id (which would take
+the session over from a daemon already using it), :func:`probe_health` reads the retained health
+message with a throwaway client id, and the daemon refuses to start when it says another run is
+online. While running, a live ``online`` health message with another ``run_id`` on our topic means
+a second process took our client id: the bus reports it (``on_conflict``) and the daemon stops,
+instead of the two taking the session from each other every few seconds.
+
 A lost connection ends the three loops; the bus waits a jittered, doubling back-off
 (``reconnect_min_seconds`` .. ``reconnect_max_seconds``) and connects again. :meth:`Bus.close`
 asks it to stop reading, flush the outbox (within a timeout), publish ``offline`` and disconnect.
@@ -37,6 +45,7 @@ import functools
 import json
 import random
 import ssl
+import uuid
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -53,6 +62,7 @@ __all__ = [
     "Outbox",
     "Outgoing",
     "backoff_delays",
+    "probe_health",
     "topic_matches",
 ]
 
@@ -62,6 +72,9 @@ OPERATION_TIMEOUT = 15.0
 MAX_IN_FLIGHT = 256
 #: Seconds between "inbox full" reminders while back-pressure lasts.
 BACKPRESSURE_REPORT_SECONDS = 5.0
+#: Seconds :func:`probe_health` waits, after its subscription is confirmed, for a retained message
+#: (a broker sends retained messages right after the SUBACK, so this only covers the latency).
+PROBE_SECONDS = 0.5
 
 
 @functools.lru_cache(maxsize=256)
@@ -235,6 +248,8 @@ class Bus:
         on_published: Called with each confirmed :class:`Outgoing`.
         heartbeat_seconds: Interval of the health message.
         reconnect_min_seconds, reconnect_max_seconds: Back-off bounds.
+        on_conflict: Called with the health document of another process that publishes as this
+            instance (see the module docstring).
     """
 
     def __init__(
@@ -251,8 +266,11 @@ class Bus:
         heartbeat_seconds: float = 10.0,
         reconnect_min_seconds: float = 0.2,
         reconnect_max_seconds: float = 30.0,
+        on_conflict: Callable[[dict[str, Any]], None] | None = None,
     ) -> None:
         self.broker = broker
+        self.run_id = uuid.uuid4().hex
+        self._on_conflict = on_conflict
         self.client_id = client_id
         self.subscriptions = tuple(subscriptions)
         self.inbox = inbox
@@ -287,7 +305,7 @@ class Bus:
 
     # -- the connection loop ---------------------------------------------------------------------
 
-    def _client(self) -> aiomqtt.Client:
+    def _client(self, *, clean_session: bool = False, will: bool = True) -> aiomqtt.Client:
         broker = self.broker
         tls_params = None
         if broker.tls:
@@ -302,10 +320,12 @@ class Bus:
             broker.host,
             broker.port,
             identifier=self.client_id,
-            clean_session=False,
+            clean_session=clean_session,
             username=broker.username,
             password=broker.password.reveal() if broker.password else None,
-            will=aiomqtt.Will(self.health_topic, self._offline(), qos=1, retain=True),
+            will=aiomqtt.Will(self.health_topic, self._offline(), qos=1, retain=True)
+            if will
+            else None,
             keepalive=broker.keepalive,
             timeout=OPERATION_TIMEOUT,
             tls_params=tls_params,
@@ -319,11 +339,21 @@ class Bus:
         return client
 
     def _offline(self) -> bytes:
-        document = {"type": "health", "status": "offline", "client_id": self.client_id}
+        document = {
+            "type": "health",
+            "status": "offline",
+            "client_id": self.client_id,
+            "run_id": self.run_id,
+        }
         return json.dumps(document, separators=(",", ":")).encode()
 
     def _online(self) -> bytes:
-        document = {"type": "health", "status": "online", "client_id": self.client_id}
+        document = {
+            "type": "health",
+            "status": "online",
+            "client_id": self.client_id,
+            "run_id": self.run_id,
+        }
         document.update(self._health())
         return json.dumps(document, separators=(",", ":"), default=str).encode()
 
@@ -381,7 +411,8 @@ class Bus:
         self._give_up.set()
 
     async def _serve(self, client: aiomqtt.Client) -> None:
-        await client.subscribe([(topic, 1) for topic in self.subscriptions])
+        filters = [*self.subscriptions, self.health_topic]
+        await client.subscribe([(topic, 1) for topic in filters])
         await client.publish(self.health_topic, self._online(), qos=1, retain=True)
         try:
             async with asyncio.TaskGroup() as group:
@@ -410,9 +441,14 @@ class Bus:
         # retained messages of other clients' subscriptions: keep only what we asked for.
         async for message in client.messages:
             topic = message.topic.value
+            if topic == self.health_topic:
+                _acknowledge(client, message)
+                self._heard_health(message)
+                continue
             if not any(topic_matches(topic, pattern) for pattern in self.subscriptions):
                 self.ignored += 1
                 self._log.debug("ignored message outside our subscriptions", topic=topic)
+                _acknowledge(client, message)  # else it holds a place in the in-flight window
                 continue
             payload = message.payload
             if isinstance(payload, str):
@@ -427,6 +463,25 @@ class Bus:
                 _ack=_acker(client, message.mid, message.qos),
             )
             await self._put(delivery)
+
+    def _heard_health(self, message: aiomqtt.Message) -> None:
+        """A live health message on our own topic from another run is a second process."""
+        if message.retain:
+            return  # what was there when we subscribed: the start-up probe judged it
+        document = _health_document(message.payload)
+        if document is None or document.get("status") != "online":
+            return
+        other = document.get("run_id")
+        if other is None or other == self.run_id:
+            return
+        self._log.critical(
+            "another process publishes as this instance",
+            other_run=other,
+            other_client=document.get("client_id"),
+            run_id=self.run_id,
+        )
+        if self._on_conflict is not None:
+            self._on_conflict(document)
 
     async def _put(self, delivery: Delivery) -> None:
         try:
@@ -490,6 +545,63 @@ class Bus:
         while True:
             await asyncio.sleep(self.heartbeat_seconds)
             await client.publish(self.health_topic, self._online(), qos=1, retain=True)
+
+
+def _acknowledge(client: aiomqtt.Client, message: aiomqtt.Message) -> None:
+    """Acknowledge at once a message that is not journaled (it must not block the window)."""
+    if message.qos:
+        client._client.ack(message.mid, message.qos)
+
+
+def _health_document(payload: Any) -> dict[str, Any] | None:
+    if isinstance(payload, str):
+        payload = payload.encode("utf-8")
+    if not isinstance(payload, bytes | bytearray):
+        return None
+    try:
+        document = json.loads(payload)
+    except ValueError:
+        return None
+    return document if isinstance(document, dict) else None
+
+
+async def probe_health(
+    broker: BrokerSettings, health_topic: str, client_id: str, *, wait: float = PROBE_SECONDS
+) -> dict[str, Any] | None:
+    """The retained health message on ``health_topic``, read with a throwaway client id.
+
+    Args:
+        broker: Where and how to connect.
+        health_topic: The instance's health topic.
+        client_id: The daemon's client id (the probe uses it with a unique suffix).
+        wait: Seconds to wait after the subscription is confirmed.
+
+    Returns:
+        The health document, or ``None`` when there is none (or it is not JSON).
+
+    Raises:
+        aiomqtt.MqttError: The broker cannot be reached.
+    """
+    probe = Bus(
+        broker,
+        client_id=f"{client_id}.probe.{uuid.uuid4().hex[:8]}"[:64],
+        subscriptions=(),
+        inbox=asyncio.Queue(1),
+        outbox=Outbox(1),
+        health_topic=health_topic,
+        health=dict,
+    )
+    client = probe._client(clean_session=True, will=False)
+    async with client:
+        await client.subscribe(health_topic, qos=1)
+        try:
+            async with asyncio.timeout(wait):
+                async for message in client.messages:
+                    if message.retain:
+                        return _health_document(message.payload)
+        except TimeoutError:
+            return None
+    return None
 
 
 def _acker(client: aiomqtt.Client, mid: int, qos: int) -> Callable[[], None] | None:

@@ -57,6 +57,7 @@ from pathlib import Path
 from types import TracebackType
 from typing import IO, TYPE_CHECKING, Any, Self
 
+import aiomqtt
 import structlog
 
 from tracker.core.formats import utc_text
@@ -73,7 +74,7 @@ from tracker.edge.wire import (
     topic_of,
 )
 from tracker.errors import InputError
-from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing
+from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
 from tracker.shell.config import Settings
 from tracker.shell.journal import Journal
 from tracker.shell.replay import dumps_summary, finish_summary
@@ -223,13 +224,18 @@ class Daemon:
             heartbeat_seconds=settings.heartbeat_seconds,
             reconnect_min_seconds=settings.reconnect_min_seconds,
             reconnect_max_seconds=settings.reconnect_max_seconds,
+            on_conflict=self._conflict,
         )
+        #: Why the daemon stopped on its own (a second process with our instance id, a journal
+        #: that cannot be written); ``None`` after an ordinary stop.
+        self.failure: InputError | None = None
 
     # -- lifecycle -------------------------------------------------------------------------------
 
     async def __aenter__(self) -> Self:
         self._lock()
         try:
+            await self._check_instance()
             self._journal = Journal(self.settings.journal, durability=self.settings.durability)
             if self._journal.quarantined:
                 self._log.warning(
@@ -286,6 +292,46 @@ class Daemon:
         handle.write(f"{os.getpid()}\n")
         handle.flush()
         self._lock_file = handle
+
+    async def _check_instance(self) -> None:
+        """Refuse to start while another process is online as this instance (see the bus)."""
+        settings = self.settings
+        try:
+            document = await probe_health(
+                settings.broker, self.bus.health_topic, settings.client_id
+            )
+        except aiomqtt.MqttError as exc:  # the bus keeps trying; nothing to judge by yet
+            self._log.warning("cannot check the instance's health topic", error=str(exc))
+            return
+        if document is None or document.get("status") != "online":
+            return
+        seen = document.get("ts")
+        age = _age_seconds(seen)
+        stale = max(3.0 * settings.heartbeat_seconds, 30.0)
+        if age is not None and age > stale:
+            self._log.warning(
+                "a stale online health message is retained for this instance; starting",
+                last_heartbeat=seen,
+                age_seconds=round(age, 1),
+            )
+            return
+        raise InputError(
+            f"instance {settings.instance!r} is already online on {settings.broker.url} (client "
+            f"{document.get('client_id')!r}, last heartbeat {seen}); stop that daemon first, or "
+            "give this one another --instance",
+            field="instance",
+        )
+
+    def _conflict(self, document: dict[str, Any]) -> None:
+        """Another process publishes as this instance: stop rather than fight for the session."""
+        self.failure = InputError(
+            f"another process (client {document.get('client_id')!r}, run "
+            f"{document.get('run_id')!r}) is online as instance {self.settings.instance!r} on "
+            f"{self.settings.broker.url}; this daemon stopped so that the two do not take the "
+            "session from each other. Give each daemon its own --instance",
+            field="instance",
+        )
+        self.stop()
 
     def _unlock(self) -> None:
         if self._lock_file is not None:
@@ -640,3 +686,13 @@ async def _within(task: asyncio.Task[Any], seconds: float, log: Any, what: str) 
 
 def _parse_ts(text: str) -> datetime:
     return datetime.fromisoformat(text).astimezone(UTC)
+
+
+def _age_seconds(text: Any) -> float | None:
+    """Seconds since a health message's ``ts`` by the wall clock (``None``: no usable ts)."""
+    if not isinstance(text, str):
+        return None
+    try:
+        return (datetime.now(UTC) - _parse_ts(text)).total_seconds()
+    except ValueError:
+        return None
