@@ -7,6 +7,7 @@ asked), runs the evaluation with a progress bar, prints the tables and writes JS
 from __future__ import annotations
 
 import argparse
+import sys
 from dataclasses import replace
 from pathlib import Path
 
@@ -183,7 +184,8 @@ def run(args: argparse.Namespace) -> int:
         )
     results = results_of(evaluation)
     if not args.quiet:
-        console = Console()
+        # Piped output gets room for the tables' columns (a terminal keeps its own width).
+        console = Console(width=None if sys.stdout.isatty() else 132)
         for table in tables(results):
             console.print(table)
         for note in results["notes"]:

@@ -30,51 +30,57 @@ def _pm(mean: float | None, error: float | None, digits: int = 1) -> str:
     return f"{mean:.{digits}f} ± {error:.{digits}f}"
 
 
-def tables(results: dict[str, Any]) -> list[Any]:
-    """The two rich tables: costs and completion; the planner's model against what happened."""
+def _table(title: str, headers: tuple[str, ...]) -> Any:
     from rich.table import Table
 
+    table = Table(title=title, title_justify="left")
+    for header in headers:
+        table.add_column(header, justify="left" if header in ("scenario", "policy") else "right")
+    return table
+
+
+def tables(results: dict[str, Any]) -> list[Any]:
+    """Three rich tables: cost and completion; penalties and paired differences; the model."""
     penalty = results["penalty_bps"]
     low, _, high = (f"{p:g}" for p in results["penalties_bps"])
-    costs = Table(
-        title=f"Implementation shortfall, bps of arrival (unfinished shares at {penalty:g} bps; "
-        f"mean ± standard error; Δ = paired difference against the {BASELINE})",
-        title_justify="left",
-    )
-    for header, justify in (
-        ("scenario", "left"),
-        ("policy", "left"),
-        ("shortfall", "right"),
-        ("sd", "right"),
-        ("CVaR 95%", "right"),
-        ("left %", "right"),
-        ("days >1% left", "right"),
-        (f"at {low}", "right"),
-        (f"at {high}", "right"),
-        ("Δ", "right"),
-        (f"Δ at {low}", "right"),
-        (f"Δ at {high}", "right"),
-    ):
-        costs.add_column(header, justify=justify)  # type: ignore[arg-type]
-    model = Table(
-        title="The plan's model against what happened (spread + impact, timing risk), bps",
-        title_justify="left",
-    )
-    for header in (
-        "scenario",
-        "policy",
-        "expected s+i",
-        "realized s+i",
-        "ratio",
-        "per-day ratio sd",
-        "timing sd implied",
-        "timing sd realized",
-    ):
-        model.add_column(header, justify="left" if header in ("scenario", "policy") else "right")
     key = f"{penalty:g}"
+    costs = _table(
+        f"Implementation shortfall against arrival, bps (unfinished shares at {penalty:g} bps; "
+        "mean ± standard error)",
+        ("scenario", "policy", "shortfall", "sd", "CVaR 95%", "left %", "days >1% left"),
+    )
+    deltas = _table(
+        f"Mean shortfall by the value of an unfinished share, and paired differences against "
+        f"the {BASELINE} (same days), bps",
+        (
+            "scenario",
+            "policy",
+            f"at {low}",
+            f"at {key}",
+            f"at {high}",
+            f"Δ at {low}",
+            f"Δ at {key}",
+            f"Δ at {high}",
+        ),
+    )
+    model = _table(
+        "The plan's model against what happened: spread + impact (s+i) and timing risk, bps",
+        (
+            "scenario",
+            "policy",
+            "expected s+i",
+            "realized s+i",
+            "ratio",
+            "per-day ratio sd",
+            "timing sd implied",
+            "timing sd realized",
+        ),
+    )
     for scenario in results["scenarios"]:
         first = True
         for name, numbers in scenario["policies"].items():
+            label = scenario["name"] if first else ""
+            first = False
             shortfall = numbers["shortfall_bps"]
             by_penalty = numbers["shortfall_by_penalty"]
             paired = numbers.get(f"paired_vs_{BASELINE}")
@@ -83,24 +89,25 @@ def tables(results: dict[str, Any]) -> list[Any]:
                 return "-" if paired is None else _pm(paired[at]["mean"], paired[at]["se"], 2)
 
             costs.add_row(
-                scenario["name"] if first else "",
+                label,
                 name,
                 _pm(shortfall["mean"], shortfall["se"]),
                 f"{shortfall['sd']:.1f}",
                 f"{shortfall['cvar95']:.1f}",
                 f"{numbers['unfinished']['mean_pct']:.2f}",
                 str(numbers["unfinished"]["days_over_1pct"]),
-                _pm(by_penalty[low]["mean"], by_penalty[low]["se"]),
-                _pm(by_penalty[high]["mean"], by_penalty[high]["se"]),
-                delta(key),
-                delta(low),
-                delta(high),
+            )
+            deltas.add_row(
+                label,
+                name,
+                *(_pm(by_penalty[at]["mean"], by_penalty[at]["se"]) for at in (low, key, high)),
+                *(delta(at) for at in (low, key, high)),
             )
             check = numbers["model"]
             realized = check["realized_spread_impact_bps"]
             ratio_sd = check["ratio_per_day"]["sd"]
             model.add_row(
-                scenario["name"] if first else "",
+                label,
                 name,
                 f"{check['expected_spread_impact_bps']:.1f}",
                 _pm(realized["mean"], realized["se"]),
@@ -109,10 +116,9 @@ def tables(results: dict[str, Any]) -> list[Any]:
                 f"{check['implied_timing_sd_bps']:.1f}",
                 f"{check['realized_timing_sd_bps']:.1f}",
             )
-            first = False
-        costs.add_section()
-        model.add_section()
-    return [costs, model]
+        for table in (costs, deltas, model):
+            table.add_section()
+    return [costs, deltas, model]
 
 
 def markdown(results: dict[str, Any]) -> str:
