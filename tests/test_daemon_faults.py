@@ -259,3 +259,57 @@ def test_every_malformed_message_is_answered_on_errors(
     assert daemon.process is not None and daemon.process.poll() is None
     assert [topic for topic, _ in batch] == [e["topic"] for e in errors]
     assert all(isinstance(e["reason"], str) and e["reason"] for e in errors)
+
+
+def _fill_message(root: str, n: int) -> tuple[str, bytes]:
+    payload = {
+        "type": "fill",
+        "fill_id": f"F{n}",
+        "order_id": "ZEPH-J1",
+        "quantity": 100,
+        "price": 42.0,
+        "ts": "2026-03-10T14:31:00Z",
+    }
+    return f"{root}/fills/ZEPH-J1", json.dumps(payload).encode()
+
+
+def test_journal_deleted_while_running_stops_and_loses_nothing(
+    tmp_path: Path, mosquitto: PrivateMosquitto
+) -> None:
+    """A journal deleted under the daemon stops it; the unjournaled fill waits at the broker."""
+    root = "jl"
+
+    def settings(journal: Path) -> Settings:
+        return Settings(
+            journal=journal,
+            broker=BrokerSettings(port=mosquitto.port),
+            root=root,
+            instance="jl",
+            clock_start=datetime.fromisoformat(day_start()),
+            heartbeat_seconds=1.0,
+            tick_seconds=0,
+        )
+
+    first_journal = tmp_path / "first" / "journal.sqlite"
+    second_journal = tmp_path / "second" / "journal.sqlite"
+
+    async def scenario() -> Exception | None:
+        async with Daemon(settings(first_journal)) as daemon:
+            task = asyncio.create_task(daemon.run())
+            await asyncio.wait_for(daemon.bus.connected.wait(), 30)
+            await publish_all(mosquitto.port, [_fill_message(root, 1)], client_id="pub1")
+            await async_wait_until(lambda: daemon.received >= 1, 30, "the first fill")
+            first_journal.unlink()
+            await publish_all(mosquitto.port, [_fill_message(root, 2)], client_id="pub2")
+            await asyncio.wait_for(task, 60)  # it stops by itself
+            failure = daemon.failure
+        async with Daemon(settings(second_journal)) as again:
+            task = asyncio.create_task(again.run())
+            await async_wait_until(lambda: again.received >= 1, 30, "the redelivered fill")
+            again.stop()
+            await asyncio.wait_for(task, 60)
+        return failure
+
+    failure = asyncio.run(scenario())
+    assert failure is not None and "deleted or replaced" in str(failure)
+    assert [_fill_message(root, 2)] == journaled(second_journal, root)

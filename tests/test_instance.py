@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import json
 from collections.abc import Iterator
 from datetime import datetime
@@ -117,3 +118,19 @@ def test_collision_while_running_stops_the_daemon(
     failure = asyncio.run(scenario())
     assert failure is not None
     assert "another process" in str(failure)
+
+
+def test_symlink_to_a_locked_journal_is_refused(tmp_path: Path) -> None:
+    """A second daemon given a symlink to a journal in use meets the same lock."""
+    first = _settings(tmp_path, 1, "a")
+    first.journal.parent.mkdir(parents=True)
+    link = tmp_path / "link.sqlite"
+    link.symlink_to(first.journal)
+    holder = Daemon(first)
+    holder._lock()
+    try:
+        second = Daemon(dataclasses.replace(_settings(tmp_path, 1, "b"), journal=link))
+        with pytest.raises(InputError, match="another tracker daemon is using"):
+            second._lock()
+    finally:
+        holder._unlock()

@@ -76,7 +76,7 @@ from tracker.edge.wire import (
 from tracker.errors import InputError
 from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
 from tracker.shell.config import Settings
-from tracker.shell.journal import Journal
+from tracker.shell.journal import Journal, JournalError
 from tracker.shell.replay import dumps_summary, finish_summary
 
 if TYPE_CHECKING:
@@ -229,6 +229,7 @@ class Daemon:
         #: Why the daemon stopped on its own (a second process with our instance id, a journal
         #: that cannot be written); ``None`` after an ordinary stop.
         self.failure: InputError | None = None
+        self._journal_broken = False
 
     # -- lifecycle -------------------------------------------------------------------------------
 
@@ -265,7 +266,7 @@ class Daemon:
         tb: TracebackType | None,
     ) -> None:
         try:
-            if self._journal is not None:
+            if self._journal is not None and not self._journal_broken:
                 self._journal.mark_published(self.published_through)
             if exc_type is None and self.settings.summary is not None:
                 self.write_summary(self.settings.summary)
@@ -274,7 +275,8 @@ class Daemon:
             self._unlock()
 
     def _lock(self) -> None:
-        path = Path(f"{self.settings.journal}.lock")
+        # On the real path: a second daemon given a symlink to the same journal meets this lock.
+        path = Path(f"{Path(self.settings.journal).resolve()}.lock")
         try:
             path.parent.mkdir(parents=True, exist_ok=True)
             handle = open(path, "w")  # noqa: SIM115 -- held open for the daemon's lifetime
@@ -340,7 +342,11 @@ class Daemon:
 
     def _close_journal(self) -> None:
         if self._journal is not None:
-            self._journal.close()
+            try:
+                self._journal.close()
+            except Exception:  # a journal that failed may fail to close too; it is reported
+                if not self._journal_broken:
+                    raise
             self._journal = None
 
     @property
@@ -457,7 +463,31 @@ class Daemon:
                     batch.append(self.inbox.get_nowait())
                 except asyncio.QueueEmpty:
                     break
-            await self._journaled.put(await self._commit(batch))
+            try:
+                records = await self._commit(batch)
+            except JournalError as exc:
+                self._journal_failed(exc)
+                await self._journaled.put(None)
+                return
+            await self._journaled.put(records)
+
+    def _journal_failed(self, exc: JournalError) -> None:
+        """The journal cannot take the group: acknowledge nothing more, say so, and stop.
+
+        What was not journaled was not acknowledged either, so the broker keeps it for the next
+        start; what was journaled before is safe. The daemon stops taking messages at once and
+        then stops as on SIGTERM (publishing what it has, going offline).
+        """
+        self._log.critical(
+            "journal failed: stopping; unacknowledged messages stay with the broker",
+            error=str(exc),
+            journal=str(self.settings.journal),
+            kind=type(exc).__name__,
+        )
+        self.failure = exc
+        self._journal_broken = True
+        self.bus.stop_reading()
+        self.stop()
 
     async def _commit(self, batch: list[Delivery | _TickRequest]) -> list[Record]:
         assert self._clock is not None
