@@ -20,7 +20,10 @@ from tracker import (
     solve,
     solve_batch,
 )
-from tracker.core import _kernel
+from tracker.core import _kernel, kernel, kernel_numpy
+
+# The compiled kernel and its numpy twin: the checks of the kernel itself run on both.
+KERNELS = {"compiled": _kernel, "numpy": kernel_numpy}
 
 
 def test_nothing_to_do() -> None:
@@ -197,13 +200,14 @@ def test_iteration_limit_raises_solve_error(monkeypatch: pytest.MonkeyPatch) -> 
         solve_batch([riccati, general])
 
 
-def test_kernel_rejects_vectors_of_the_wrong_kind() -> None:
-    """The compiled kernel refuses integer or mismatched vectors instead of reading past them."""
+@pytest.mark.parametrize("module", KERNELS.values(), ids=KERNELS.keys())
+def test_kernel_rejects_vectors_of_the_wrong_kind(module: kernel.Kernel) -> None:
+    """The kernel refuses integer or mismatched vectors instead of reading past them."""
     four, one = np.ones(4), np.ones(1)
     sizes, iterations = np.array([4]), np.empty(1, dtype=np.int64)
 
     def interior_point(caps: Any, out: Any, sizes: Any) -> None:
-        _kernel.interior_point(
+        module.interior_point(
             four, four, four, caps, out, sizes, iterations, one, one, one, one, one, 1e-10, 10
         )
 
@@ -214,9 +218,14 @@ def test_kernel_rejects_vectors_of_the_wrong_kind() -> None:
     with pytest.raises(ValueError, match="sizes must be a contiguous int64 vector"):
         interior_point(four, np.empty(4), np.array([4.0]))
     with pytest.raises(ValueError, match="not C-contiguous"):
-        _kernel.riccati(four, four[::2], four, np.empty(4), 1.0, 0.0, False, 1e4)
+        module.riccati(four, four[::2], four, np.empty(4), 1.0, 0.0, False, 1e4)
+    frozen = np.ones(4)
+    frozen.setflags(write=False)  # costs writes the clipped trades back
+    with pytest.raises(ValueError, match="read-only"):
+        module.costs(four, four, four, frozen, np.empty(5), 4.0, 1.0, 0.0, 2.0, 0.0, False)
 
 
+@pytest.mark.parametrize("module", KERNELS.values(), ids=KERNELS.keys())
 @pytest.mark.parametrize(
     "diagonal",
     [
@@ -226,12 +235,12 @@ def test_kernel_rejects_vectors_of_the_wrong_kind() -> None:
     ],
     ids=["positive-definite", "indefinite", "zero-pivot"],
 )
-def test_newton_solve_matches_scipy(diagonal: list[float]) -> None:
+def test_newton_solve_matches_scipy(diagonal: list[float], module: kernel.Kernel) -> None:
     """The kernel's tridiagonal solve agrees with SciPy's solve_banded (reference library)."""
     d = np.array(diagonal)
     e = np.array([2.0, 1.0, -1.0, 3.0])
     b = np.array([1.0, 2.0, 3.0, 4.0, 5.0])
     expected = solve_banded((1, 1), np.vstack([np.r_[0.0, e], d, np.r_[e, 0.0]]), b)
     actual = b.copy()
-    _kernel.tridiagonal(d, e, actual)
+    module.tridiagonal(d, e, actual)
     np.testing.assert_allclose(actual, expected, rtol=1e-13, atol=1e-13)

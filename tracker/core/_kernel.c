@@ -38,11 +38,16 @@
  * h, k, c, caps: the problems' fixed cost, temporary impact, risk weight and caps (shares, inf
  * where none) per bin, in their own units, only bins that can trade (every cap > 0), problem
  * after problem: contiguous float64 buffers of sum(sizes) values. out: a writable buffer of the
- * same length that receives the optimal trades in shares. sizes: int64, the bins of each problem.
- * quantity, beta, b, p, terminal: float64, one per problem. iterations (int64, out): per problem
+ * same length that receives the optimal trades in shares. sizes: int64, the bins of each problem
+ * (ValueError when one is below 1, OverflowError when they add up to more than a Py_ssize_t or a
+ * problem's scratch space would). quantity, beta, b, p, terminal: float64, one per problem. iterations (int64, out): per problem
  * the Newton iterations taken (>= 0), or -1 when the method did not converge within
  * max_iterations, -2 when a Newton system was singular, -3 when the iterate became non-finite.
  * Each problem is scaled (see starting_point()), solved and converted back to shares.
+ *
+ * tracker/core/kernel_numpy.py is this file's twin in numpy, step for step (same stopping rules,
+ * same codes, same errors); a change here is made there too, and tests/test_kernel_parity.py
+ * holds the two together.
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
@@ -201,7 +206,8 @@ static double barrier(const Problem *P, const State *S, double mu)
  * Solve the symmetric tridiagonal system (diagonal d, off-diagonal e) for rhs b in place.
  * First as positive definite (L D L^T, no pivoting, like LAPACK's dptsv); if a pivot is not
  * positive, Gaussian elimination with partial pivoting (like dgtsv); if that meets a zero pivot,
- * again with the diagonal shifted by 1e-12 of itself. Returns 0, or -1 when singular.
+ * again with the diagonal shifted by 1e-12 of itself. Returns 0, or -1 when singular (for
+ * n = 1: when the one pivot is zero).
  * b receives the solution; d and e are kept; work needs 4n doubles.
  */
 static int solve_tridiagonal(Py_ssize_t n, const double *d, const double *e, double *b,
@@ -209,6 +215,9 @@ static int solve_tridiagonal(Py_ssize_t n, const double *d, const double *e, dou
 {
     double *dd = work, *l = work + n, *rhs = work + 2 * n;
     if (n == 1) {
+        if (d[0] == 0.0) {
+            return -1;
+        }
         b[0] /= d[0];
         return 0;
     }
@@ -564,6 +573,9 @@ static double starting_point(Py_ssize_t n, const double *caps, const double *h, 
  * h, k, c and caps, the start and the iterate. */
 #define OWN_VECTORS (6 + 4 + 2)
 
+/* Vectors of n doubles one problem of n bins needs in all. */
+#define VECTORS (OWN_VECTORS + RUN_VECTORS)
+
 /*
  * One problem of n bins, in its own units (see the header comment): scale it, start, run the
  * method and write the optimal trades in shares. mem holds (OWN_VECTORS + RUN_VECTORS) n doubles.
@@ -673,18 +685,30 @@ static PyObject *interior_point(PyObject *self, PyObject *args)
         PyBuffer_Release(&sizes);
         return NULL;
     }
+    /* Sizes come from the caller: every sum and product below is checked before it is made, so
+     * that no crafted size can wrap around to match the vectors' length or shrink the scratch
+     * allocation (each problem needs VECTORS doubles per bin). */
     const long long *size = sizes.buf;
     Py_ssize_t total = 0, largest = 0;
     int valid = 1;
-    for (Py_ssize_t i = 0; i < count; i++) {
-        valid = valid && size[i] >= 1;
-        total += (Py_ssize_t)size[i];
-        largest = size[i] > largest ? (Py_ssize_t)size[i] : largest;
+    for (Py_ssize_t i = 0; i < count && valid; i++) {
+        if (size[i] < 1) {
+            PyErr_SetString(PyExc_ValueError, "every problem needs at least one bin");
+            valid = 0;
+        } else if (size[i] > PY_SSIZE_T_MAX - total) {
+            PyErr_SetString(PyExc_OverflowError, "sizes add up to more bins than memory can hold");
+            valid = 0;
+        } else {
+            total += (Py_ssize_t)size[i];
+            largest = size[i] > largest ? (Py_ssize_t)size[i] : largest;
+        }
+    }
+    if (valid && largest > PY_SSIZE_T_MAX / (Py_ssize_t)(VECTORS * sizeof(double))) {
+        PyErr_SetString(PyExc_OverflowError, "a problem has more bins than memory can hold");
+        valid = 0;
     }
     int got = 0;
-    if (!valid) {
-        PyErr_SetString(PyExc_ValueError, "every problem needs at least one bin");
-    } else {
+    if (valid) {
         for (; got < 10; got++) {
             if (get_vector(objects[got], &views[got], got < 5 ? total : count, got == 4,
                            names[got]) != 0) {
@@ -694,7 +718,7 @@ static PyObject *interior_point(PyObject *self, PyObject *args)
     }
     PyObject *result = NULL;
     if (got == 10) {
-        double *mem = malloc((size_t)largest * (OWN_VECTORS + RUN_VECTORS) * sizeof(double));
+        double *mem = malloc((size_t)largest * VECTORS * sizeof(double));
         if (mem == NULL) {
             PyErr_NoMemory();
         } else {
@@ -811,7 +835,8 @@ static PyObject *riccati(PyObject *self, PyObject *args)
  *   A q_N^p (forced, A infinite: 0 when q_N <= 1e-9 max(Q, 1), else infinite),
  *
  * with v_n the trades and q_n = max(Q - v_1 - ... - v_n, 0) the inventory after bin n.
- * trades (in/out) are clipped at 0. With settle set, a schedule that completes the order up to
+ * trades (in/out) are clipped at 0; a trade that is not a finite number (NaN, infinite) raises
+ * ValueError and leaves every buffer as it was. With settle set, a schedule that completes the order up to
  * rounding (|Q - sum v| <= 1e-9 Q, and forced or overshooting) has its last trade take the
  * rounding, so that the trajectory ends at exactly 0 and never below. trajectory (out, N + 1
  * values) receives Q, q_1, ..., q_N.
@@ -842,8 +867,14 @@ static PyObject *costs(PyObject *self, PyObject *args)
         }
     }
     PyObject *result = NULL;
+    Py_ssize_t bad = -1; /* the first bin whose trade is not a finite number */
+    for (Py_ssize_t j = 0; got == 5 && j < n && bad < 0; j++) {
+        bad = isfinite(((const double *)views[3].buf)[j]) ? -1 : j;
+    }
     if (got == 5 && n < 1) {
         PyErr_SetString(PyExc_ValueError, "need at least one bin");
+    } else if (got == 5 && bad >= 0) {
+        PyErr_Format(PyExc_ValueError, "trades must be finite numbers (bin %zd is not)", bad);
     } else if (got == 5) {
         const double *h = views[0].buf, *k = views[1].buf, *c = views[2].buf;
         double *v = views[3].buf, *q = views[4].buf;

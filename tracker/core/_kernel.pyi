@@ -1,5 +1,6 @@
 """Types of the compiled inner loop of :mod:`tracker.core.solve` (source:
-``tracker/core/_kernel.c``)."""
+``tracker/core/_kernel.c``; its numpy twin, :mod:`tracker.core.kernel_numpy`, has the same
+signatures, and :class:`tracker.core.kernel.Kernel` holds both to them)."""
 
 import numpy as np
 import numpy.typing as npt

@@ -34,6 +34,10 @@ Three paths, chosen per problem:
   on the others). The recursion of the riccati path and the costing of a final schedule are
   compiled there too; the choice of path and the :class:`Schedule` are made here.
 
+The compiled kernel is optional: where it was not built (no C compiler at install time), its numpy
+twin (:mod:`tracker.core.kernel_numpy`) runs the same steps, slower. :mod:`tracker.core.kernel`
+chooses; the calls below go to ``kernel.KERNEL``, whichever it is.
+
 Bins whose cap is zero cannot trade: they are taken out before solving (their risk weights are
 folded into the neighbouring inventory they share) and put back as zero trades.
 
@@ -51,7 +55,7 @@ from typing import Final, NamedTuple
 import numpy as np
 import numpy.typing as npt
 
-from tracker.core import _kernel
+from tracker.core import kernel
 from tracker.core.problem import FloatArray, Problem
 from tracker.errors import ProblemError, SolveError
 
@@ -134,12 +138,18 @@ def cost_breakdown(problem: Problem, trades: Sequence[float] | FloatArray) -> di
         trades: ``problem.bins`` shares per bin (any schedule, optimal or not).
 
     Raises:
-        ProblemError: ``trades`` has the wrong length, a negative trade, or sells more than the
-            quantity.
+        ProblemError: ``trades`` has the wrong length, a trade that is not a finite number, a
+            negative trade, or sells more than the quantity.
     """
     v = np.asarray(trades, dtype=np.float64)
     if v.shape != (problem.bins,):
         raise ProblemError(f"need {problem.bins} trades, got shape {v.shape}", field="trades")
+    finite = np.isfinite(v)
+    if not finite.all():
+        bad = int(np.flatnonzero(~finite)[0])
+        raise ProblemError(
+            f"trades must be finite numbers; bin {bad} is {float(v[bad])!r}", field="trades"
+        )
     quantity = problem.quantity
     slack = 1e-9 * max(quantity, 1.0)
     if (v < -slack).any():
@@ -158,11 +168,11 @@ def _costed(
 
     With ``settle``, a schedule that completes the order up to rounding has its last trade take
     the rounding, so that the trajectory ends at exactly zero and never below. The objective's
-    terms are summed in the compiled kernel (``tracker/core/_kernel.c``, ``costs``): a loop over the
-    bins that ran for every order of every bin close.
+    terms are summed in the kernel (``costs``; compiled in ``tracker/core/_kernel.c``): a loop over
+    the bins that ran for every order of every bin close.
     """
     trajectory = np.empty(problem.bins + 1)
-    terms = _kernel.costs(
+    terms = kernel.KERNEL.costs(
         problem.fixed_cost,
         problem.temporary_impact,
         problem.inventory_penalty,
@@ -247,7 +257,7 @@ def solve(problem: Problem, *, tolerance: float = TOLERANCE) -> Schedule:
 
 
 def solve_batch(problems: Sequence[Problem], *, tolerance: float = TOLERANCE) -> list[Schedule]:
-    """Solve many problems; the general ones in one call of the compiled method.
+    """Solve many problems; the general ones in one call of the kernel's method.
 
     Each problem is solved on its own, so its answer never depends on the others.
 
@@ -354,7 +364,7 @@ def _riccati(problem: Problem) -> Schedule | None:
         a = problem.terminal_penalty + half_b
         d = -2.0 * half_b * quantity
     v = np.empty(problem.bins)
-    q = _kernel.riccati(
+    q = kernel.KERNEL.riccati(
         problem.fixed_cost, kappa, problem.inventory_penalty, v, a, d, problem.forced, quantity
     )
     if math.isnan(q):
@@ -375,7 +385,7 @@ def _interior_point(
 ) -> tuple[list[FloatArray], npt.NDArray[np.int64]]:
     """Optimal trades (shares) of general problems, and per problem the kernel's iteration count.
 
-    One call of the compiled method for the whole batch, laid end to end; each problem is solved
+    One call of the kernel's method for the whole batch, laid end to end; each problem is solved
     on its own, so its answer never depends on the others. A negative count is a failure
     (:func:`_kernel_failure`).
 
@@ -388,7 +398,7 @@ def _interior_point(
     sizes = np.array([part.h.size for part in parts], dtype=np.int64)
     out = np.empty(int(sizes.sum()))
     iterations = np.empty(len(problems), dtype=np.int64)
-    _kernel.interior_point(
+    kernel.KERNEL.interior_point(
         np.concatenate([part.h for part in parts]),
         np.concatenate([part.k for part in parts]),
         np.concatenate([part.c for part in parts]),
@@ -444,7 +454,8 @@ def _tradeable(problem: Problem) -> _Tradeable:
 
 
 def _kernel_failure(code: int) -> str:
-    """What a negative iteration count from the kernel means (codes of ``_kernel.c``)."""
+    """What a negative iteration count from the kernel means (codes of ``_kernel.c``, which
+    ``kernel_numpy`` shares)."""
     if code == -1:
         return f"the interior-point method did not converge in {_MAX_ITERATIONS} iterations"
     if code == -2:
