@@ -154,6 +154,36 @@ def test_a_bad_scenario_file_names_the_key(data: dict[str, Any], field: str | No
         assert "bin boundaries" in str(caught.value)
 
 
+def test_listed_orders_are_taken_in_turn() -> None:
+    """Listed orders ([[order]]) replace the drawn ones: day i takes order i modulo the list."""
+    config = parse_config(
+        {
+            "scenario": [{"name": "a"}],
+            "order": [
+                {"side": "sell", "quantity": 50_000, "urgency": "high", "start": "10:00"},
+                {"side": "buy", "size": 0.1, "max_participation": 0.1},
+            ],
+        }
+    )
+    profile = config.market.profile(config.session)
+    orders = [simulated_day(config, config.scenarios[0], i, 1, profile).order for i in range(3)]
+    assert ("sell", 50_000, "high", 6, 0.2) == (
+        orders[0].side,
+        orders[0].quantity,
+        orders[0].urgency,
+        orders[0].first,
+        orders[0].max_participation,
+    )
+    assert ("buy", 200_000, "medium", 0, 0.1) == (
+        orders[1].side,
+        orders[1].quantity,
+        orders[1].urgency,
+        orders[1].first,
+        orders[1].max_participation,
+    )
+    assert orders[0] == orders[2]
+
+
 def test_an_unknown_scenario_name_lists_the_known_ones() -> None:
     """Asking for a scenario the file does not have says which ones it has."""
     with pytest.raises(InputError, match="known: normal, half-volume"):
@@ -175,27 +205,60 @@ def exact_config() -> EvaluationConfig:
     )
 
 
-@pytest.mark.parametrize("index", [0, 1, 2, 3])
-def test_replanning_reproduces_the_opening_plan_when_nothing_deviates(index: int) -> None:
+def mid_day_config() -> EvaluationConfig:
+    """An exact day with a listed high-urgency sell from 10:00 to 14:00 (bins before it)."""
+    return parse_config(
+        {
+            "scenario": [{"name": "exact", "exact": True}],
+            "costs": {"permanent_impact": 0.0},
+            "order": [
+                {
+                    "side": "sell",
+                    "quantity": 150_000,
+                    "urgency": "high",
+                    "start": "10:00",
+                    "end": "14:00",
+                }
+            ],
+        }
+    )
+
+
+@pytest.mark.parametrize(
+    ("make", "index"),
+    [
+        (exact_config, 0),
+        (exact_config, 1),
+        (exact_config, 2),
+        (exact_config, 3),
+        (mid_day_config, 0),
+    ],
+    ids=["day0", "day1", "day2", "day3", "mid-day-high-urgency"],
+)
+def test_replanning_reproduces_the_opening_plan_when_nothing_deviates(
+    make: Any, index: int
+) -> None:
     """Almgren and Chriss (2000), section 3.1: with nothing new learned (volume, spread and
     volatility exactly as forecast, the price still, fills equal to the targets), re-solving the
     remaining horizon every bin gives the rest of the opening plan, so the engine's executed
     schedule equals the static one up to whole-share rounding: the engine rounds each bin's
     target, the static plan its cumulative, so the two cumulatives may drift apart by at most half
     a share per bin."""
-    config = exact_config()
+    config = make()
     scenario = config.scenarios[0]
     day = simulated_day(config, scenario, index, 4, config.market.profile(config.session))
     results = run_day(day, scenario, config, ["replan", "opening-plan"])
-    engine, static = results["replan"].executed, results["opening-plan"].executed
+    window = slice(day.order.first, day.order.end)
+    engine, static = results["replan"].executed[window], results["opening-plan"].executed[window]
     quantity = day.order.quantity
     assert quantity == engine.sum() == static.sum()
+    assert 0 == results["replan"].executed.sum() - engine.sum()  # nothing outside the window
     continuous = quantity - OpeningPlan(day).schedule.trajectory[1:]
     drift = np.abs(np.cumsum(engine) - continuous)
     bound = 0.5 * np.arange(1, drift.size + 1) + 0.5
     assert (drift <= bound).all()
     assert np.abs(np.cumsum(engine) - np.cumsum(static)).max() <= 0.5 * drift.size + 1
-    # Not vacuous: the schedule follows the volume curve, far from an even split.
+    # Not vacuous: the schedule follows the volume curve and the urgency, far from an even split.
     assert np.abs(static - quantity / static.size).max() > 100
 
 
