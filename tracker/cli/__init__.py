@@ -23,6 +23,7 @@ COMMANDS: tuple[str, ...] = (
     "simulate",
     "evaluate",
     "run",
+    "watch",
     "journal",
     "demo",
 )
