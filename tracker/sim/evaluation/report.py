@@ -181,17 +181,25 @@ def write_chart(evaluation: Evaluation, path: Path) -> None:
     extension of ``path``; matplotlib is imported here, only when a chart is asked for.
 
     Raises:
-        InputError: an extension matplotlib cannot write, or the file cannot be written.
+        InputError: an extension matplotlib cannot write, matplotlib is missing, or the file
+            cannot be written.
     """
     if path.suffix.lower() not in CHART_FORMATS:
         raise InputError(
             f"must end in {', '.join(CHART_FORMATS)} (the format); got {path.name!r}",
             field="--chart",
         )
-    import matplotlib
+    try:
+        import matplotlib
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError as exc:
+        raise InputError(
+            "needs matplotlib, which is not installed; install it (pip install matplotlib) or "
+            "leave out --chart",
+            field="--chart",
+        ) from exc
 
     penalty = evaluation.config.costs.penalty_bps
     runs = evaluation.runs
