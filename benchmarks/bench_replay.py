@@ -203,7 +203,7 @@ def bin_close_times(orders: int, closes: int) -> tuple[list[float], list[float],
         engine's :func:`tracker.solve_batch` calls (ms); and the CPU time (ms, median of three) of
         the reference ``solve_batch`` of the last close's problems, called on its own.
     """
-    import tracker.core.engine as engine_module
+    import tracker.core.engine.planning as engine_module
     from tracker import solve_batch
     from tracker.core.engine import Engine
     from tracker.edge.wire import BinMessage, OrderMessage

@@ -8,8 +8,8 @@ from pathlib import Path
 from pytest import MonkeyPatch
 
 from tracker import Problem, Schedule, solve_batch
-from tracker.core import engine as engine_module
 from tracker.core.engine import Engine
+from tracker.core.engine import planning as engine_module
 from tracker.edge.recordings import read_jsonl
 from tracker.edge.records import Record
 from tracker.edge.wire import BinMessage, Inbound, OrderMessage, Tick, WireError, decode, encode

@@ -216,7 +216,7 @@ def test_random_sequences_keep_the_invariants(steps: list[tuple[int, Any]]) -> N
             assert 0 <= out.quantity <= out.remaining
             if out.max_quantity is not None:
                 assert out.quantity <= out.max_quantity
-            assert out.cumulative_target <= engine._orders[out.order_id].quantity
+            assert out.cumulative_target <= engine._state.orders[out.order_id].quantity
             ended_before = before.get(out.order_id) in TERMINAL
             ended_now = engine.state_of(out.order_id) in TERMINAL
             if ended_before or ended_now:

@@ -1,0 +1,288 @@
+"""Building what the engine says: targets, status, alerts and error records.
+
+Outputs of one event are ordered by order id (symbol-level alerts first, :func:`order_key`), and
+within an order as produced: target, status, alerts. Floats are rounded only when written
+(:func:`tracker.core.messages.json_object`).
+
+* Symbol-wide conditions (liquidity shock, stale data, default profile) are published once per
+  symbol on ``{root}/alerts`` with ``order_id`` null, not once per order; the summary counts the
+  alerts of each order only.
+* Raised conditions of an order that ends (done, cancelled, expired) are dropped without a
+  "cleared" message: the end of the order says it.
+"""
+
+from __future__ import annotations
+
+import json
+from collections import Counter
+from collections.abc import Mapping
+from datetime import datetime
+from typing import Any
+
+from tracker.core import alerts as rules
+from tracker.core.alerts import Check
+from tracker.core.engine.state import Deviation, EngineState, OrderState, SymbolState
+from tracker.core.engine.step import Step
+from tracker.core.formats import rounded
+from tracker.core.lifecycle import LIVE
+from tracker.core.messages import (
+    AlertMessage,
+    BinMessage,
+    ControlMessage,
+    ErrorMessage,
+    FillMessage,
+    Inbound,
+    OrderMessage,
+    Outbound,
+    StatusMessage,
+    TargetMessage,
+    json_object,
+    payload_text,
+)
+from tracker.core.topics import Topics
+
+
+def order_key(message: Outbound) -> str:
+    """The sort key of an output within its event: its order id (symbol-level first)."""
+    order_id = getattr(message, "order_id", None)
+    return order_id or ""
+
+
+def bin_times(
+    state: EngineState, order: OrderState, index: int
+) -> tuple[datetime | None, datetime | None]:
+    """Start and end of bin ``index`` of the order's day (``None`` outside the session)."""
+    sym = state.symbols[order.symbol]
+    if sym.day != order.day or not 0 <= index < len(sym.day_bins):
+        bins = sym.profile.session.bins(order.day)
+        if not 0 <= index < len(bins):
+            return None, None
+        return bins[index]
+    return sym.day_bins[index]
+
+
+def target(
+    state: EngineState,
+    order: OrderState,
+    index: int,
+    quantity: int,
+    max_quantity: int | None,
+    ts: datetime,
+) -> TargetMessage:
+    """The target of bin ``index``: ``quantity`` shares, at most ``max_quantity`` (the cap)."""
+    bin_start, bin_end = bin_times(state, order, index)
+    return TargetMessage(
+        order_id=order.order_id,
+        symbol=order.symbol,
+        side=order.side,
+        bin_start=bin_start,
+        bin_end=bin_end,
+        quantity=quantity,
+        cumulative_target=min(order.filled, order.quantity) + quantity,
+        remaining=order.remaining,
+        max_quantity=max_quantity,
+        plan_version=order.plan_version,
+        ts=ts,
+    )
+
+
+def status(
+    state: EngineState, order: OrderState, ts: datetime, deviation: Deviation | None = None
+) -> StatusMessage:
+    """Where the order stands (``deviation``: already computed by the caller, else computed)."""
+    if deviation is None:
+        deviation = order.deviation(state.symbols[order.symbol].closed_for(order))
+    planned, gap, gap_bins = deviation
+    plan = order.plan
+    cost = plan.expected_cost if plan is not None and order.life.state in LIVE else None
+    notional = order.remaining * plan.price if plan is not None else 0.0
+    cost_bps = cost / notional * 1e4 if cost is not None and notional > 0 else None
+    # Every value is of its field's type (floats are floats, not ints or numpy scalars): the
+    # encoder writes them as they are (tests/test_wire.py holds it to the contract's models).
+    return StatusMessage(
+        order_id=order.order_id,
+        symbol=order.symbol,
+        side=order.side,
+        state=order.life.state.value,
+        quantity=order.quantity,
+        filled=order.filled,
+        remaining=order.remaining,
+        progress_pct=100.0 * min(order.filled, order.quantity) / order.quantity,
+        planned_filled=round(planned),
+        deviation_shares=round(gap),
+        deviation_pct=100.0 * gap / order.quantity,
+        deviation_bins=gap_bins,
+        average_price=order.notional / order.filled if order.filled else None,
+        arrival_price=order.arrival_price,
+        limit_price=order.limit_price,
+        volume_scale=order.volume_scale,
+        expected_cost=cost,
+        expected_cost_bps=cost_bps,
+        plan_version=order.plan_version,
+        ts=ts,
+    )
+
+
+def alert(
+    code: str,
+    message: str,
+    order: OrderState | None,
+    symbol: str | None,
+    ts: datetime,
+    details: Mapping[str, Any] | None = None,
+    case: str | None = None,
+) -> AlertMessage:
+    """A one-shot alert about ``order`` (or, without one, the symbol); severity from the table."""
+    return rules.event(
+        code,
+        message,
+        order_id=order.order_id if order else None,
+        symbol=symbol,
+        ts=ts,
+        details=details,
+        case=case,
+    )
+
+
+def apply_check(
+    state: EngineState,
+    step: Step,
+    check: Check,
+    order: OrderState | None,
+    symbol: str,
+    ts: datetime,
+) -> None:
+    """Pass a condition's verdict through the alert book: at most one raise or clear."""
+    scope = order.order_id if order else f"symbol:{symbol}"
+    step.emit(
+        state.book.apply(
+            check,
+            scope=scope,
+            order_id=order.order_id if order else None,
+            symbol=symbol,
+            ts=ts,
+        )
+    )
+
+
+def replan_failed(order: OrderState, ts: datetime, why: str) -> AlertMessage:
+    """The alert that a re-plan could not be made (the previous plan and target stand)."""
+    return alert(
+        rules.REPLAN_FAILED,
+        f"The re-plan failed ({why}); the previous plan and target stand. Report this with "
+        "the replay file.",
+        order,
+        order.symbol,
+        ts,
+    )
+
+
+def topic_and_order(topics: Topics, event: Inbound) -> tuple[str, str | None]:
+    """The topic an event arrived on and the order it names."""
+    if isinstance(event, OrderMessage):
+        return topics.orders(event.order_id), event.order_id
+    if isinstance(event, FillMessage):
+        return topics.fills(event.order_id), event.order_id
+    if isinstance(event, BinMessage):
+        return topics.bins(event.symbol), None
+    if isinstance(event, ControlMessage):
+        return topics.control, event.order_id
+    return topics.tick, None
+
+
+def error(topics: Topics, event: Inbound, reason: str) -> ErrorMessage:
+    """The error record of an event the engine refused (or failed on)."""
+    topic, order_id = topic_and_order(topics, event)
+    # The payload as sent, as near as the decoded message can say: only the fields it set.
+    sent = json_object(event, only_set=True)
+    return ErrorMessage(
+        reason=reason,
+        topic=topic,
+        payload=payload_text(json.dumps(sent, separators=(",", ":"), ensure_ascii=False)),
+        ts=event.ts,
+        order_id=order_id,
+    )
+
+
+def fill_price_alerts(
+    state: EngineState, step: Step, sym: SymbolState, message: BinMessage
+) -> None:
+    """Judge the fills waiting for this bin: a price far outside its range is flagged."""
+    keep: list[tuple[str, FillMessage]] = []
+    for order_id, fill in sym.unchecked:
+        if fill.ts >= message.end:
+            keep.append((order_id, fill))
+            continue
+        if fill.ts < message.start:
+            continue  # its bin never came (or came before the fill): nothing to judge by
+        if rules.fill_price_outside(
+            price=fill.price, low=message.low, high=message.high, config=state.config
+        ):
+            order = state.orders[order_id]
+            step.emit(
+                alert(
+                    rules.FILL_PRICE_OUTSIDE,
+                    f"Fill {fill.fill_id} at {fill.price} is outside its bin's range "
+                    f"{message.low}-{message.high} by more than "
+                    f"{state.config.fill_price_tolerance_pct:g} %. Check the fill.",
+                    order,
+                    order.symbol,
+                    step.ts,
+                    {
+                        "fill_id": fill.fill_id,
+                        "price": fill.price,
+                        "low": message.low,
+                        "high": message.high,
+                    },
+                )
+            )
+    sym.unchecked = keep
+
+
+def summary_row(order: OrderState, counts: Counter[str]) -> dict[str, Any]:
+    """One order's line of the summary: fills, prices, costs against its benchmarks, alerts.
+
+    ``shortfall_bps`` and ``vwap_bps`` are signed so that positive is a cost for buys and sells
+    alike: ``side_sign * (average_price - benchmark) / benchmark * 1e4``.
+    """
+    average = order.notional / order.filled if order.filled else None
+    arrival = order.arrival_price
+    vwap = order.vwap_notional / order.vwap_volume if order.vwap_volume > 0 else None
+    shortfall = (
+        order.sign * (average - arrival) / arrival * 1e4
+        if average is not None and arrival
+        else None
+    )
+    versus_vwap = (
+        order.sign * (average - vwap) / vwap * 1e4 if average is not None and vwap else None
+    )
+    return {
+        "order_id": order.order_id,
+        "symbol": order.symbol,
+        "side": order.side,
+        "quantity": order.quantity,
+        "filled": order.filled,
+        "average_price": rounded(average),
+        "arrival_price": rounded(arrival),
+        "interval_vwap": rounded(vwap),
+        "shortfall_bps": rounded(shortfall, 4),
+        "vwap_bps": rounded(versus_vwap, 4),
+        "alerts": {code: counts[code] for code in sorted(counts)},
+        "state": order.life.state.value,
+        "plan_version": order.plan_version,
+    }
+
+
+__all__ = [
+    "alert",
+    "apply_check",
+    "bin_times",
+    "error",
+    "fill_price_alerts",
+    "order_key",
+    "replan_failed",
+    "status",
+    "summary_row",
+    "target",
+    "topic_and_order",
+]

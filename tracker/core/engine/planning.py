@@ -1,0 +1,276 @@
+"""Planning: the horizon still ahead of an order, its problem, the solve, and applying a re-plan.
+
+An event asks for re-plans (:attr:`Step.to_plan <tracker.core.engine.step.Step.to_plan>`);
+:func:`plan_jobs` turns them into :class:`~tracker.core.engine.step.ReplanJob` values with their
+remaining-horizon problems, :func:`solve_problems` solves all the problems of one or several
+events in one :func:`~tracker.core.solve.solve_batch` call (a problem gets the same answer, bit for
+bit, alone or in any batch), and :func:`apply_replan` puts each schedule in place and says what
+changed: the next bin's target, the status and the alerts.
+
+When the last price is beyond an order's limit, the next bin's target is zero and the plan is
+re-solved over the bins after it. A re-plan that cannot be made (the solver fails, or a problem
+cannot be built) leaves the previous plan and target in place and raises ``replan_failed``.
+"""
+
+from __future__ import annotations
+
+import math
+from datetime import datetime
+
+import numpy as np
+
+from tracker.core import alerts as rules
+from tracker.core.engine import outputs
+from tracker.core.engine.state import EngineState, OrderState, Plan, SymbolState
+from tracker.core.engine.step import ReplanJob, Step
+from tracker.core.formulation import build_problem
+from tracker.core.lifecycle import State
+from tracker.core.messages import TargetMessage
+from tracker.core.problem import Problem
+from tracker.core.solve import CAPPED_SHORTFALL, Schedule, solve, solve_batch
+from tracker.errors import InputError, TrackerError
+
+#: When no price is known yet (no bin, no arrival price, no limit), the plan assumes the price at
+#: which the profile's median spread is this many basis points (a liquid stock's quoted spread is
+#: a few basis points: common practice). Only the plan's shape depends on it, and only until the
+#: first bin of the symbol arrives.
+ASSUMED_SPREAD_BPS = 5.0
+
+
+def horizon(step: Step, order: OrderState, sym: SymbolState, now: datetime) -> tuple[int, float]:
+    """The first bin still ahead for ``order`` at ``now`` and the fraction of it left."""
+    session = sym.profile.session
+    moment = max(order.start, now)
+    n = session.n_bins
+    key = (sym.name, moment)
+    cached = step.positions.get(key)
+    if cached is None:  # one timezone conversion per symbol and time, not per order
+        cached = (sym.local_day(moment), session.position(moment))
+        step.positions[key] = cached
+    day, offset = cached
+    if day != order.day:
+        return n, 1.0
+    if offset <= 0:
+        first, fraction = 0, 1.0
+    elif offset >= n:
+        return n, 1.0
+    else:
+        first = math.floor(offset)
+        fraction = 1.0 - (offset - first)
+        if fraction < 1e-9:
+            first, fraction = first + 1, 1.0
+    if sym.day == order.day and sym.last_index is not None and sym.last_index + 1 > first:
+        first, fraction = sym.last_index + 1, 1.0
+    return first, fraction
+
+
+def price(order: OrderState, sym: SymbolState) -> float:
+    """The price to plan with: the last close, else the arrival price, else the limit, else a
+    price made up from the profile's spread (:data:`ASSUMED_SPREAD_BPS`)."""
+    if sym.last_close is not None:
+        return sym.last_close
+    for candidate in (order.arrival_price, order.limit_price):
+        if candidate is not None:
+            return candidate
+    spread = float(np.median(sym.profile.spread))
+    return spread / (ASSUMED_SPREAD_BPS * 1e-4)
+
+
+def beyond_limit(order: OrderState, sym: SymbolState) -> bool:
+    """Whether the last price is beyond the order's limit (a buy above, a sell below)."""
+    if order.limit_price is None or sym.last_close is None:
+        return False
+    if order.side == "buy":
+        return sym.last_close > order.limit_price
+    return sym.last_close < order.limit_price
+
+
+def zero_target(state: EngineState, step: Step, order: OrderState, ts: datetime) -> TargetMessage:
+    """A target of nothing for the bin now ahead (a halt, a cancel, the order done)."""
+    sym = state.symbols[order.symbol]
+    first, _ = horizon(step, order, sym, state.now(ts))
+    return outputs.target(state, order, first, 0, None, ts)
+
+
+def plan_jobs(state: EngineState, step: Step) -> list[ReplanJob]:
+    """The re-plans the event asks for (working orders with shares left), problems built."""
+    jobs: list[ReplanJob] = []
+    for order_id in sorted(step.to_plan):
+        order = state.orders[order_id]
+        if order.life.state is not State.WORKING or order.remaining <= 0:
+            continue
+        sym = state.symbols[order.symbol]
+        if sym.day is None or sym.day < order.day:
+            sym.start_day(order.day)
+        now = state.now(step.ts)
+        if sym.stale_at is None:  # watch the feed from when an order works, in session
+            opening = sym.day_bins[0][0] if sym.day_bins else now
+            state.watch(sym, max(now, opening, sym.last_bin_end or now))
+        first, fraction = horizon(step, order, sym, now)
+        blocked = beyond_limit(order, sym)
+        plan_from = first + 1 if blocked else first
+        problem: Problem | None = None
+        if plan_from < order.end_bin:
+            try:
+                problem = build_problem(
+                    quantity=float(order.remaining),
+                    first_bin=plan_from,
+                    end_bin=order.end_bin,
+                    forecast=sym.forecast,
+                    preferences=order.prefs,
+                    max_participation=order.max_participation,
+                    price=price(order, sym),
+                    first_fraction=fraction if plan_from == first else 1.0,
+                    reference_quantity=float(order.quantity),
+                )
+            except InputError as exc:  # never expected: the inputs were checked at the edge
+                step.emit(outputs.replan_failed(order, step.ts, str(exc)))
+                continue
+        jobs.append(ReplanJob(order, step.to_plan[order_id], first, fraction, blocked, problem))
+    return jobs
+
+
+def solve_problems(problems: list[Problem | None]) -> list[Schedule | None]:
+    """Solve the problems in one batch (``None`` in, ``None`` out); a problem the solver cannot
+    solve gets ``None`` and the others their schedules."""
+    real = [p for p in problems if p is not None]
+    try:
+        solved: list[Schedule | None] = list(solve_batch(real)) if real else []
+    except (TrackerError, ArithmeticError, ValueError):
+        solved = []
+        for problem in real:  # find the one that fails; keep the others
+            try:
+                solved.append(solve(problem))
+            except (TrackerError, ArithmeticError, ValueError):
+                solved.append(None)
+    iterator = iter(solved)
+    return [next(iterator) if p is not None else None for p in problems]
+
+
+def _plan(job: ReplanJob, schedule: Schedule | None, plan_price: float) -> Plan:
+    """The plan a schedule makes (no schedule: nothing can trade, everything is shortfall)."""
+    order = job.order
+    if schedule is not None:
+        trajectory = schedule.trajectory
+        cumulative = trajectory[0] - trajectory[1:]  # cumulative trades, one array operation
+        cost = schedule.cost
+        return Plan(
+            version=order.plan_version + 1,
+            first_bin=job.first + 1 if job.blocked else job.first,
+            cumulative=cumulative,
+            filled_at=order.filled,
+            quantity=float(order.remaining),
+            status=schedule.status,
+            shortfall=float(schedule.shortfall),
+            expected_cost=float(
+                cost.get("fixed_cost", 0.0)
+                + cost.get("temporary_impact", 0.0)
+                + cost.get("permanent_impact", 0.0)
+            ),
+            price=plan_price,
+        )
+    return Plan(  # blocked on its last bin, or no bin left: nothing can trade
+        version=order.plan_version + 1,
+        first_bin=job.first,
+        cumulative=np.zeros(0),
+        filled_at=order.filled,
+        quantity=float(order.remaining),
+        status=CAPPED_SHORTFALL,
+        shortfall=float(order.remaining),
+        expected_cost=0.0,
+        price=plan_price,
+    )
+
+
+def _next_target(
+    state: EngineState, job: ReplanJob, schedule: Schedule | None, sym: SymbolState, ts: datetime
+) -> TargetMessage | None:
+    """The target of the bin ahead under the new plan (None: no bin of the order is left)."""
+    order, first = job.order, job.first
+    if first >= sym.profile.session.n_bins or first >= order.end_bin:
+        return None
+    if job.blocked or schedule is None or job.problem is None:
+        quantity = 0
+        volume = max(float(sym.forecast.volume[first]) * job.fraction, 1.0)
+        cap = order.max_participation * volume if order.max_participation is not None else None
+    else:
+        caps = job.problem.cap_array
+        cap = float(caps[0]) if math.isfinite(caps[0]) else None
+        quantity = round(float(schedule.trades[0]))
+    max_quantity = None if cap is None else math.floor(cap + 1e-9)
+    quantity = max(0, min(quantity, order.remaining))
+    if max_quantity is not None:
+        quantity = min(quantity, max_quantity)
+    return outputs.target(state, order, first, quantity, max_quantity, ts)
+
+
+def apply_replan(state: EngineState, step: Step, job: ReplanJob, schedule: Schedule | None) -> None:
+    """Put a solved re-plan in place; emit the next target, the status and the alerts."""
+    order, ts = job.order, step.ts
+    if job.problem is not None and schedule is None:
+        step.emit(outputs.replan_failed(order, ts, "the solver did not converge"))
+        return
+    sym = state.symbols[order.symbol]
+    previous = order.plan
+    plan = _plan(job, schedule, price(order, sym))
+    order.plan_version = plan.version
+    order.plan = plan
+    order.blocked = job.blocked
+    order.volume_scale = float(sym.forecast.volume_scale)
+    if job.reason in ("start", "amend") or order.baseline is None:
+        order.baseline = plan
+    step.emit(_next_target(state, job, schedule, sym, ts))
+    deviation = order.deviation(sym.closed_for(order))
+    step.emit(outputs.status(state, order, ts, deviation))
+    _plan_alerts(state, step, job, previous, plan, deviation[1:])
+
+
+def _plan_alerts(
+    state: EngineState,
+    step: Step,
+    job: ReplanJob,
+    previous: Plan | None,
+    plan: Plan,
+    gap: tuple[float, float | None],
+) -> None:
+    """The conditions a re-plan judges: deviation and moves (at a bin), completion, the limit."""
+    order, config, ts = job.order, state.config, step.ts
+    symbol = order.symbol
+    if job.reason == "bin":
+        behind, ahead = rules.deviation(
+            quantity=order.quantity, deviation_shares=gap[0], deviation_bins=gap[1], config=config
+        )
+        outputs.apply_check(state, step, behind, order, symbol, ts)
+        outputs.apply_check(state, step, ahead, order, symbol, ts)
+        if previous is not None:
+            moved = rules.replan_moved(
+                move_shares=plan.move_from(previous), quantity=order.quantity, config=config
+            )
+            outputs.apply_check(state, step, moved, order, symbol, ts)
+    # These two can only breach in one known case; otherwise they matter only if raised.
+    capped = plan.status == CAPPED_SHORTFALL
+    if capped or state.book.is_raised(order.order_id, rules.COMPLETION_INFEASIBLE):
+        check = rules.completion(
+            quantity=order.quantity, shortfall=plan.shortfall if capped else 0.0, config=config
+        )
+        outputs.apply_check(state, step, check, order, symbol, ts)
+    if job.blocked or state.book.is_raised(order.order_id, rules.LIMIT_BLOCKING):
+        check = rules.limit_blocking(
+            blocked=job.blocked,
+            side=order.side,
+            limit=order.limit_price,
+            price=state.symbols[symbol].last_close,
+        )
+        outputs.apply_check(state, step, check, order, symbol, ts)
+
+
+__all__ = [
+    "ASSUMED_SPREAD_BPS",
+    "apply_replan",
+    "beyond_limit",
+    "horizon",
+    "plan_jobs",
+    "price",
+    "solve_problems",
+    "zero_target",
+]
