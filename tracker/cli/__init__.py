@@ -19,6 +19,7 @@ from tracker.errors import InputError
 COMMANDS: tuple[str, ...] = (
     "plan",
     "replay",
+    "report",
     "calibrate",
     "simulate",
     "evaluate",
