@@ -219,7 +219,7 @@ def write_chart(evaluation: Evaluation, path: Path) -> None:
             grid = np.linspace(0.0, max(float(left.max()), 2.0), 200)
             share = 1.0 - np.searchsorted(left, grid, side="right") / left.size
             residual.step(grid, share * 100.0, where="post", color=colour, label=name)
-        plane.set_title(f"{run.scenario.name}: cost against risk")
+        plane.set_title(f"{run.scenario.name}: cost against risk (bars: standard error)")
         plane.set_xlabel("sd of shortfall, bps")
         plane.set_ylabel(f"mean shortfall, bps (unfinished at {penalty:g} bps)")
         plane.grid(alpha=0.3)
