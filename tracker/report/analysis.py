@@ -34,6 +34,7 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any
 
+from tracker.core.alerts import AlertConfig
 from tracker.errors import InputError
 from tracker.report.day import Fill, MarketBin, OrderEvent, PlanPath, ReviewDay, parse_time
 
@@ -43,8 +44,9 @@ FILL_RATE_THRESHOLD = 0.95
 RUN_BINS = 3
 #: At most this many runs are listed (those with the most shares short).
 MAX_RUNS = 4
-#: A re-plan that moves the expected filled shares by this share of the order is material.
-MATERIAL_MOVE = 0.05
+#: A re-plan that moves the expected filled shares by this share of the order is material:
+#: the engine's own threshold for its ``replan_moved`` alert.
+MATERIAL_MOVE = AlertConfig().replan_move_pct / 100.0
 #: A total cost above expected + this many standard deviations is "far above expected".
 FAR_ABOVE_STD = 2.0
 
