@@ -12,7 +12,12 @@ Prints figures and ratios measured in one run (no timed assertions anywhere):
 * a batch of 1,000 general problems with varied parameters, in one ``solve_batch`` call;
 * peers on the general problems: SciPy's SLSQP (analytic gradient, scaled units) and cvxpy with
   Clarabel (a parametrised problem compiled once, then re-solved with new parameter values).
-  Both peers' objectives are printed beside ours, evaluated by ``tracker.objective_value``.
+  Both peers' objectives are printed beside ours, evaluated by ``tracker.objective_value``;
+* the numpy kernel (the fallback where the compiled one could not be built) against the compiled
+  kernel on the same problems: the exact path, the general path and the batch, as ratios, and
+  whether the schedules are the same.
+
+The figures above it are taken with the kernel ``TRACKER_KERNEL`` chooses (the header says which).
 
 Timings are medians of wall-clock times (``time.perf_counter``) over repeats; the machine is
 shared, so the median rather than the mean. BLAS threads are pinned to one (one core).
@@ -44,7 +49,8 @@ from rich.table import Table  # noqa: E402
 from scipy.linalg import solveh_banded  # noqa: E402
 from scipy.optimize import minimize  # noqa: E402
 
-from tracker import Problem, objective_value, solve, solve_batch  # noqa: E402
+from tracker import Problem, Schedule, objective_value, solve, solve_batch  # noqa: E402
+from tracker.core import kernel, kernel_numpy  # noqa: E402
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -253,6 +259,42 @@ def median_time(run: Callable[[], object], repeats: int, warmup: int = 3) -> flo
     return statistics.median(times)
 
 
+def numpy_against_compiled(
+    exact: Problem, general: Problem, batch: list[Problem], reps: Callable[[int], int]
+) -> str:
+    """Times of the numpy kernel over the compiled kernel's on the same problems, as one line."""
+    compiled = kernel.compiled()
+    if compiled is None:
+        return "compiled kernel missing: nothing to compare with"
+    chosen = kernel.KERNEL
+    times: dict[str, list[float]] = {}
+    schedules: dict[str, list[Schedule]] = {}
+    try:
+        for name, module in (("compiled", compiled), ("numpy", kernel_numpy)):
+            kernel.KERNEL = module
+            times[name] = [
+                median_time(lambda: solve(exact), reps(1000)),
+                median_time(lambda: solve(general), reps(100)),
+                median_time(lambda: solve_batch(batch), 3, warmup=1),
+            ]
+            schedules[name] = solve_batch(batch)
+    finally:
+        kernel.KERNEL = chosen
+    same = all(
+        (a.iterations, a.trades.tolist()) == (b.iterations, b.trades.tolist())
+        for a, b in zip(schedules["compiled"], schedules["numpy"], strict=True)
+    )
+    exact_x, general_x, batch_x = (
+        slow / fast for slow, fast in zip(times["numpy"], times["compiled"], strict=True)
+    )
+    return (
+        f"numpy over compiled: exact path {exact_x:.1f}x, general path {general_x:.1f}x "
+        f"({times['numpy'][1] * 1e3:.2f} ms), batch of {len(batch):,} {batch_x:.1f}x "
+        f"({times['numpy'][2]:.2f} s); schedules "
+        + ("identical (trades and iterations)" if same else "DIFFERENT")
+    )
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="fewer repeats (a smoke run)")
@@ -266,7 +308,7 @@ def main() -> int:
     console.print(
         f"tracker solver benchmark, {datetime.now(UTC):%Y-%m-%d %H:%M} UTC, "
         f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores, "
-        f"Python {platform.python_version()}, NumPy {np.__version__}"
+        f"Python {platform.python_version()}, NumPy {np.__version__}, kernel {kernel.NAME}"
     )
     started_all = time.perf_counter()
 
@@ -320,6 +362,7 @@ def main() -> int:
         trades = peer.solve(problem)
         clarabel_times.append(time.perf_counter() - started)
         gap_clarabel.append(objective_value(problem, trades) / schedule.objective - 1.0)
+    fallback = numpy_against_compiled(exact, general, batch, reps)
     total_s = time.perf_counter() - started_all
 
     def us(seconds: float) -> str:
@@ -384,6 +427,7 @@ def main() -> int:
         "",
     )
     console.print(table)
+    console.print(fallback)
     console.print(f"total run {total_s:.1f} s")
     return 0
 
