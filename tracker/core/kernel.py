@@ -4,7 +4,7 @@ The solver's inner loops (:mod:`tracker.core.solve`) live in a compiled CPython 
 ``tracker/core/_kernel.c``, which pip builds when a C compiler and Python's headers are there. The
 extension is optional: without them the package still installs, and the solver runs
 :mod:`tracker.core.kernel_numpy`, the same method step for step in numpy (same answers to
-rounding, 8-30 times slower: benchmarks/bench_solve.py). This module chooses once, at import:
+rounding, 7-30 times slower: benchmarks/bench_solve.py). This module chooses once, at import:
 
 * ``TRACKER_KERNEL`` unset or empty: the compiled kernel when it imports, else the numpy one,
   with one :class:`RuntimeWarning` saying that the compiled kernel is missing and the solver is
@@ -127,7 +127,7 @@ def choose(setting: str | None) -> tuple[str, Kernel]:
         )
     warnings.warn(
         "tracker: the compiled solver kernel (tracker.core._kernel) is missing, so the solver "
-        "runs its numpy twin, which gives the same answers but is 8-30x slower; reinstall "
+        "runs its numpy twin, which gives the same answers but is 7-30x slower; reinstall "
         f"with a C compiler and Python's headers to build it, or set {ENVIRONMENT}=numpy to "
         "choose the numpy kernel on purpose",
         RuntimeWarning,
