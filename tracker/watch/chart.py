@@ -1,7 +1,8 @@
 """A small chart of one order drawn with characters: filled so far, the baseline plan, the targets.
 
-The horizontal axis is time (in the venue's zone), the vertical one shares. Columns of blocks are
-the shares filled (from the order's status messages, with eighth-of-a-cell steps), dots the
+The horizontal axis is time (in the venue's zone), the vertical one shares, from the lowest to the
+highest value drawn (not from zero: a few bins' progress stays visible). Columns of blocks are the
+shares filled (from the order's status messages, with eighth-of-a-cell steps), dots the
 baseline plan's filled shares at the same time, and ``+`` the cumulative shares each target aimed
 at by the end of its bin: the latest plan version bright, earlier ones dim, so a re-plan that moved
 shows as a change of aim. Only what this view has seen since it started can be drawn.
@@ -49,13 +50,15 @@ def progress_chart(view: OrderView, width: int, height: int, zone: tzinfo) -> Te
     stamps += [t.bin_start for t in targets if t.bin_start is not None]
     start, end = min(stamps), max(stamps)
     span = max((end - start).total_seconds(), 1.0)
-    top = max(
-        [view.quantity or 0]
-        + [p.filled for p in history]
-        + [p.planned or 0 for p in history]
-        + [t.cumulative or 0 for t in targets]
-        + [1]
+    values = (
+        [p.filled for p in history]
+        + [p.planned for p in history if p.planned is not None]
+        + [t.cumulative for t in targets if t.cumulative is not None]
     )
+    # The axis spans what is drawn (not 0 .. quantity): a few bins' progress stays visible.
+    bottom, top = min(values), max(values)
+    if top - bottom < 8:
+        bottom, top = max(0, bottom - 4), bottom + 4
     cells = [[(" ", "")] * width for _ in range(height)]
     times = [p.ts for p in history]
     filled = [p.filled for p in history]
@@ -64,14 +67,17 @@ def progress_chart(view: OrderView, width: int, height: int, zone: tzinfo) -> Te
     def column_time(column: int) -> datetime:
         return start + timedelta(seconds=span * (column + 1) / width)
 
+    def scaled(value: float) -> float:
+        return (value - bottom) / (top - bottom) * height
+
     def row_of(value: float) -> int:
-        return min(height - 1, max(0, round(value / top * height - 0.5)))
+        return min(height - 1, max(0, round(scaled(value) - 0.5)))
 
     for column in range(width):
         at = column_time(column)
         value = _step_value(times, filled, at) if history else None
-        if value:
-            eighths = round(value / top * height * 8)
+        if value is not None:
+            eighths = max(1, round(scaled(value) * 8))
             for row in range(height):
                 level = min(8, max(0, eighths - row * 8))
                 if level:
@@ -96,9 +102,9 @@ def progress_chart(view: OrderView, width: int, height: int, zone: tzinfo) -> Te
         if row == height - 1:
             label = f"{top:,}"
         elif row == 0:
-            label = "0"
+            label = f"{bottom:,}"
         elif row == height // 2:
-            label = f"{top // 2:,}"
+            label = f"{(top + bottom) // 2:,}"
         else:
             label = ""
         chart.append(label.rjust(label_width) + " │", style="dim")
@@ -112,7 +118,7 @@ def progress_chart(view: OrderView, width: int, height: int, zone: tzinfo) -> Te
         " " * (label_width + 2) + first + last.rjust(width - len(first)) + "\n", style="dim"
     )
     chart.append(" " * (label_width + 2))
-    chart.append("█ filled", style="cyan")
+    chart.append("█ shares filled", style="cyan")
     chart.append("   · baseline plan", style="magenta")
     chart.append(f"   + target aim (plan v{latest}", style="bold yellow")
     chart.append("; dim: earlier versions)", style="yellow dim")

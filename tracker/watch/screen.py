@@ -158,11 +158,10 @@ def last_alert(entry: AlertEntry | None, zone: tzinfo) -> Text:
     """The order's last alert: code in words, raised or cleared, and when."""
     if entry is None:
         return Text("")
-    words = entry.code.replace("_", " ")
-    when = clock(entry.ts, zone)[:5]
+    words = entry.code.replace("_", " ")  # its time is in the alerts feed
     if entry.state == "cleared":
-        return Text(f"{when} {words} cleared", style="dim")
-    return Text(f"{when} {words}", style=_SEVERITY_STYLE.get(entry.severity, ""))
+        return Text(f"{words} (cleared)", style="dim")
+    return Text(words, style=_SEVERITY_STYLE.get(entry.severity, ""))
 
 
 # -- the frame -----------------------------------------------------------------------------------
@@ -203,7 +202,7 @@ def render(
     else:
         feed_lines = max(3, min(8, height // 6))
         room = height - len(parts) - feed_lines - 2 - len(health) - 1 - 3
-        parts.append(_orders(board, state, zone, max(1, room)))
+        parts.append(_orders(board, state, zone, max(1, room), width))
         parts.append(_feed(board, zone, feed_lines))
     parts.extend(health)
     parts.append(footer)
@@ -211,14 +210,16 @@ def render(
 
 
 def _title(board: Board, state: ViewState, link: LinkStatus, wall: datetime, zone: tzinfo) -> Text:
-    title = Text()
+    title = Text(no_wrap=True, overflow="ellipsis")
     title.append(f" {state.title} ", style="bold reverse")
     title.append(f"  root {board.root}  {link.url} ")
     title.append(link.state, style="green" if link.state == "connected" else "bold red")
     zone_name = getattr(zone, "key", str(zone))
     title.append(f"  {wall.astimezone(zone):%H:%M:%S} {zone_name}")
     live = [v for v in board.orders.values() if v.state is not None and not v.finished]
-    title.append(f"  {len(board.orders)} orders, {len(live)} live")
+    title.append(
+        f"  {len(board.orders)} order{'' if len(board.orders) == 1 else 's'}, {len(live)} live"
+    )
     title.append(f"  sorted {SORT_WORDS[state.sort]}")
     described = state.keep.describe()
     if described:
@@ -258,7 +259,49 @@ def _banners(board: Board, link: LinkStatus, now: float) -> list[Text]:
     return lines
 
 
-def _orders(board: Board, state: ViewState, zone: tzinfo, room: int) -> Table:
+#: The order columns: header, justification, and the rank in which a narrow terminal drops them
+#: (0: never; higher numbers go first) so that the last alert keeps :data:`ALERT_WIDTH` cells.
+_COLUMNS: tuple[tuple[str, str, int], ...] = (
+    ("", "left", 0),
+    ("order", "left", 0),
+    ("symbol", "left", 0),
+    ("side", "left", 3),
+    ("state", "left", 0),
+    ("filled\nof quantity", "right", 0),
+    ("", "left", 4),
+    ("against\nbaseline plan", "left", 0),
+    ("this bin:\nfilled of target", "right", 1),
+    ("participation\nlast bin", "right", 5),
+    ("cost to go\nbps", "right", 2),
+    ("cost so far\nbps", "right", 6),
+)
+ALERT_WIDTH = 22
+
+
+def _cells(view: OrderView, board: Board, selected: bool) -> list[Text | str]:
+    rank = attention(view, board)
+    filled = (
+        f"{shares(view.filled)} of {shares(view.quantity)}"
+        if view.filled is not None and view.quantity is not None
+        else shares(view.filled)
+    )
+    return [
+        Text("> " if selected else _RANK_MARK.get(rank, ""), style="bold red"),
+        view.order_id,
+        view.symbol or "",
+        view.side or "",
+        Text(view.state or "no status", style=_STATE_STYLE.get(view.state or "", "dim")),
+        filled,
+        bar(view.filled, view.quantity, 8),
+        against_plan(view),
+        "" if view.finished else this_bin(view),
+        participation(view),
+        bps(view.expected_cost_bps),
+        bps(view.realized_bps),
+    ]
+
+
+def _orders(board: Board, state: ViewState, zone: tzinfo, room: int, width: int) -> Table:
     listed = rows(board, state.sort, state.keep)
     ids = [view.order_id for view in listed]
     if state.selected not in ids:
@@ -266,55 +309,45 @@ def _orders(board: Board, state: ViewState, zone: tzinfo, room: int) -> Table:
     index = ids.index(state.selected) if state.selected in ids else 0
     first = max(0, min(index - room // 2, len(listed) - room))
     shown = listed[first : first + room]
-    more = len(listed) - len(shown)
+    cells = [_cells(view, board, view.order_id == state.selected) for view in shown]
+    # Natural width of each column (its longest header line or cell, plus one space).
+    natural = [
+        1 + max([len(line) for line in header.split("\n")] + [len(str(row[i])) for row in cells])
+        for i, (header, _, _) in enumerate(_COLUMNS)
+    ]
+    natural[6] = 9 if natural[6] > 1 else 0  # the bar
+    keep = list(range(len(_COLUMNS)))
+    for drop in sorted((-rank, i) for i, (_, _, rank) in enumerate(_COLUMNS) if rank):
+        if sum(natural[i] for i in keep) + ALERT_WIDTH <= width:
+            break
+        keep.remove(drop[1])
     table = Table(
         box=box.SIMPLE_HEAD,
         expand=True,
         pad_edge=False,
-        padding=(0, 1),
-        caption=f"{first + 1}-{first + len(shown)} of {len(listed)}" if more else None,
+        padding=(0, 1, 0, 0),
+        caption=(
+            f"{first + 1}-{first + len(shown)} of {len(listed)}"
+            if len(shown) < len(listed)
+            else None
+        ),
         caption_justify="right",
     )
-    table.add_column("", width=2, no_wrap=True)
-    table.add_column("order", no_wrap=True, style="bold")
-    table.add_column("symbol", no_wrap=True)
-    table.add_column("side", no_wrap=True)
-    table.add_column("state", no_wrap=True)
-    table.add_column("filled\nof quantity", justify="right", no_wrap=True)
-    table.add_column("", width=8, no_wrap=True)
-    table.add_column("against\nbaseline plan", no_wrap=True)
-    table.add_column("this bin:\nfilled of target", justify="right", no_wrap=True)
-    table.add_column("participation\nlast bin", justify="right", no_wrap=True)
-    table.add_column("cost to go\nbps", justify="right", no_wrap=True)
-    table.add_column("cost so far\nbps", justify="right", no_wrap=True)
-    table.add_column("last alert", no_wrap=True, overflow="ellipsis", min_width=16, ratio=1)
-    for view in shown:
+    for i in keep:
+        header, justify, _ = _COLUMNS[i]
+        table.add_column(header, justify=justify, no_wrap=True)  # type: ignore[arg-type]
+    table.add_column("last alert", no_wrap=True, overflow="ellipsis", ratio=1)
+    for view, row in zip(shown, cells, strict=True):
         rank = attention(view, board)
         selected = view.order_id == state.selected
-        filled = (
-            f"{shares(view.filled)} of {shares(view.quantity)}"
-            if view.filled is not None and view.quantity is not None
-            else shares(view.filled)
-        )
         table.add_row(
-            Text(("> " if selected else "") or _RANK_MARK.get(rank, ""), style="bold red"),
-            view.order_id,
-            view.symbol or "",
-            view.side or "",
-            Text(view.state or "", style=_STATE_STYLE.get(view.state or "", "")),
-            filled,
-            bar(view.filled, view.quantity, 8),
-            against_plan(view),
-            "" if view.finished else this_bin(view),
-            participation(view),
-            bps(view.expected_cost_bps),
-            bps(view.realized_bps),
+            *[row[i] for i in keep],
             last_alert(view.last_alert, zone),
             style="reverse" if selected else ("on dark_red" if rank == 0 else None),
         )
     if not listed:
         message = "no order matches the filter" if state.keep.describe() else "no order seen yet"
-        table.add_row("", Text(message, style="dim"), *[""] * 11)
+        table.add_row("", Text(message, style="dim"), *[""] * (len(keep) - 1))
     return table
 
 
