@@ -298,3 +298,17 @@ def test_a_check_raises_with_the_severity_of_its_code() -> None:
     message = book.apply(check, scope="A", order_id="A", symbol="ZEPH", ts=TS)
     assert message is not None
     assert ("completion_infeasible", "critical") == (message.code, message.severity)
+
+
+def test_rollback_undoes_every_change_since_the_mark() -> None:
+    """Raises, clears and silent clears after mark() are undone by rollback(); earlier ones stay."""
+    book = AlertBook()
+    book.apply(behind(9_000), scope="A", order_id="A", symbol="ZEPH", ts=TS)
+    book.apply(behind(9_000), scope="B", order_id="B", symbol="ZEPH", ts=TS)
+    book.mark()
+    book.apply(behind(0), scope="A", order_id="A", symbol="ZEPH", ts=TS)  # cleared
+    book.apply(behind(9_000), scope="C", order_id="C", symbol="ZEPH", ts=TS)  # raised
+    book.clear_silently("B")
+    book.rollback()
+    expected = [True, True, False]
+    assert expected == [book.is_raised(scope, "behind_plan") for scope in ("A", "B", "C")]

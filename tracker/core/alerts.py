@@ -275,12 +275,45 @@ class Check:
 
 
 class AlertBook:
-    """Which conditions are raised, per scope and code; turns checks into raise/clear messages."""
+    """Which conditions are raised, per scope and code; turns checks into raise/clear messages.
 
-    __slots__ = ("_raised",)
+    Changes can be undone: after :meth:`mark`, the book remembers each change until
+    :meth:`rollback` (undo them all) or :meth:`release` (keep them). The engine marks the book
+    before an event and rolls it back if the event fails inside the engine.
+    """
+
+    __slots__ = ("_log", "_raised")
 
     def __init__(self) -> None:
         self._raised: set[tuple[str, str]] = set()
+        self._log: list[tuple[bool, tuple[str, str]]] | None = None  # (was added, key)
+
+    def mark(self) -> None:
+        """Start remembering changes (from now on, until :meth:`rollback` or :meth:`release`)."""
+        self._log = []
+
+    def rollback(self) -> None:
+        """Undo every change since :meth:`mark` and stop remembering."""
+        for added, key in reversed(self._log or []):
+            if added:
+                self._raised.discard(key)
+            else:
+                self._raised.add(key)
+        self._log = None
+
+    def release(self) -> None:
+        """Keep the changes since :meth:`mark` and stop remembering."""
+        self._log = None
+
+    def _add(self, key: tuple[str, str]) -> None:
+        self._raised.add(key)
+        if self._log is not None:
+            self._log.append((True, key))
+
+    def _discard(self, key: tuple[str, str]) -> None:
+        self._raised.discard(key)
+        if self._log is not None:
+            self._log.append((False, key))
 
     def is_raised(self, scope: str, code: str) -> bool:
         """Whether ``code`` is currently raised for ``scope``."""
@@ -298,7 +331,7 @@ class AlertBook:
         """The message the check causes: a raise, a clear, or ``None`` (no change)."""
         key = (scope, check.code)
         if key not in self._raised and check.breach:
-            self._raised.add(key)
+            self._add(key)
             return AlertMessage(
                 order_id=order_id,
                 symbol=symbol,
@@ -310,7 +343,7 @@ class AlertBook:
                 ts=ts,
             )
         if key in self._raised and check.recovered and not check.breach:
-            self._raised.discard(key)
+            self._discard(key)
             return AlertMessage(
                 order_id=order_id,
                 symbol=symbol,
@@ -325,7 +358,8 @@ class AlertBook:
 
     def clear_silently(self, scope: str) -> None:
         """Forget every raised condition of ``scope`` (an order that ended)."""
-        self._raised = {key for key in self._raised if key[0] != scope}
+        for key in sorted(key for key in self._raised if key[0] == scope):
+            self._discard(key)
 
 
 def event(

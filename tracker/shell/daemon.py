@@ -566,17 +566,23 @@ class Daemon:
         The bins of one bin close arrive together; fed in one ``feed_many`` call, the engine
         re-plans all their orders in one batch solve, with exactly the outputs one by one would
         give (so a replay of the journal, which feeds it in chunks, still matches).
+
+        A failure inside the engine is not caught here: the engine itself undoes the message and
+        answers with an error record and an ``internal_error`` alert, as it does in a replay. The
+        guard below is the last resort for a failure outside it (the intake); the records of such
+        a run got no answer from the engine, so each gets exactly one error record here.
         """
         assert self._intake is not None
         try:
             results = [self._intake.feed(run[0])] if len(run) == 1 else self._intake.feed_many(run)
         except Exception as exc:  # a bug of ours must not stop the desk's other orders
             self._log.exception(
-                "engine failed", topic=run[0].topic, seq=run[0].line, records=len(run)
+                "intake failed", topic=run[0].topic, seq=run[0].line, records=len(run)
             )
             reason = (
-                f"internal error while handling this message ({type(exc).__name__}); it was not "
-                "applied -- please report it with the journal"
+                f"internal error outside the engine while taking this message "
+                f"({type(exc).__name__}); it may not have been applied -- please report it with "
+                "the journal"
             )
             results = []
             for record in run:

@@ -88,6 +88,7 @@ def on_control(state: EngineState, step: Step, message: ControlMessage) -> None:
         event = _control_event(state, order, message.command)
         if not order.life.can(event):
             continue
+        step.undo.order(order)
         order.life.apply(event)
         if event is Event.HALT:
             step.to_plan.pop(order.order_id, None)
@@ -204,8 +205,11 @@ def _new_order(
         life=Lifecycle(message.order_id),
         last_ts=message.ts,
     )
+    step.undo.new_order(order)
     state.orders[order.order_id] = order
+    step.undo.symbol(sym)
     sym.orders[order.order_id] = None
+    step.undo.heaps()
     heapq.heappush(state.starts, (order.start, order.order_id))
     heapq.heappush(state.ends, (order.end, order.order_id))
     timers.advance(state, step, message.ts)
@@ -253,10 +257,12 @@ def _amend(state: EngineState, step: Step, order: OrderState, message: OrderMess
     if sets("urgency") or sets("preferences"):
         prefs = _preferences(urgency, overrides)
     # Everything checked: apply.
+    step.undo.order(order)
     order.last_ts = message.ts
     order.quantity = quantity
     if end != order.end:
         order.end = end
+        step.undo.heaps()
         heapq.heappush(state.ends, (end, order.order_id))
     order.first_bin, order.end_bin = first_bin, end_bin
     if message.limit_price is not None or message.removes_limit:
@@ -280,6 +286,7 @@ def _cancel(state: EngineState, step: Step, order: OrderState, message: OrderMes
         raise Rejected(
             str(TransitionError(order.life.state, Event.CANCEL, order_id=order.order_id).reason)
         )
+    step.undo.order(order)
     order.last_ts = message.ts
     timers.advance(state, step, message.ts)
     if order.life.terminal:  # expired while time advanced: the cancel changes nothing
@@ -293,6 +300,7 @@ def _cancel(state: EngineState, step: Step, order: OrderState, message: OrderMes
 
 
 def _complete(state: EngineState, step: Step, order: OrderState, ts: datetime) -> None:
+    step.undo.order(order)
     order.life.apply(Event.COMPLETE)
     order.live_until = ts
     step.to_plan.pop(order.order_id, None)
@@ -369,10 +377,13 @@ def on_fill(state: EngineState, step: Step, fill: FillMessage) -> None:
             f"{order.side}; send it for the right order",
             [alert],
         )
+    step.undo.order(order)
     order.fills[fill.fill_id] = fill
     order.filled += fill.quantity
     order.notional += fill.quantity * fill.price
-    state.symbols[order.symbol].unchecked.append((order.order_id, fill))
+    sym = state.symbols[order.symbol]
+    step.undo.symbol(sym)
+    sym.unchecked.append((order.order_id, fill))
     timers.advance(state, step, fill.ts)
     ts = fill.ts if state.clock is None else max(fill.ts, state.clock)
     if order.life.terminal:
@@ -419,6 +430,7 @@ def on_bin(state: EngineState, step: Step, message: BinMessage) -> None:
     if place is None:
         return  # the same bin again: nothing changes
     index, day = place
+    step.undo.symbol(sym)
     sym.start_day(day)
     before = sym.forecast
     sym.bins[index] = message
@@ -445,6 +457,7 @@ def on_bin(state: EngineState, step: Step, message: BinMessage) -> None:
     for order_id in sym.orders:
         order = state.orders[order_id]
         if order.arrival_price is None and message.start >= order.start:
+            step.undo.order(order)
             order.arrival_price = message.open
         if (
             order.live_from is not None
@@ -452,6 +465,7 @@ def on_bin(state: EngineState, step: Step, message: BinMessage) -> None:
             and (order.live_until is None or message.start < order.live_until)
             and message.vwap is not None
         ):
+            step.undo.order(order)
             order.vwap_volume += message.volume
             order.vwap_notional += message.volume * message.vwap
     outputs.fill_price_alerts(state, step, sym, message)
@@ -530,6 +544,7 @@ def _symbol(state: EngineState, step: Step, name: str) -> SymbolState:
             )
         )
     sym = SymbolState(name=name, profile=profile, forecast=forecast(profile, {}))
+    step.undo.new_symbol(sym)
     state.symbols[name] = sym
     return sym
 

@@ -13,11 +13,14 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from datetime import datetime, timedelta
 from typing import Any
 
+from tracker.core import alerts as rules
 from tracker.core.engine import handlers, outputs, planning
 from tracker.core.engine.config import EngineConfig
+from tracker.core.engine.savepoint import Savepoint
 from tracker.core.engine.state import EngineState
 from tracker.core.engine.step import Rejected, Step
 from tracker.core.lifecycle import State
@@ -64,6 +67,7 @@ class Engine:
             topics=Topics(root),
             grace=timedelta(seconds=self.config.expiry_grace_seconds),
         )
+        self._retry: dict[str, str] = {}  # re-plans a failed event left: order id -> reason
 
     # ---------------------------------------------------------------- public API
 
@@ -72,6 +76,7 @@ class Engine:
 
         Never raises on bad input: a message the engine cannot accept becomes exactly one
         :class:`~tracker.core.messages.ErrorMessage` (possibly with alerts), and nothing changes.
+        Nor does it raise on a failure of its own: see :meth:`_failed`.
 
         Args:
             event: A message from :func:`tracker.edge.wire.decode` or a
@@ -80,11 +85,21 @@ class Engine:
         Returns:
             Targets, status, alerts and errors, ordered by order id.
         """
-        step = self._prepare(event)
-        if isinstance(step, list):
-            return step
-        problems = [job.problem for job in step.jobs]
-        return self._conclude(step, planning.solve_problems(problems) if problems else [])
+        savepoint = Savepoint(self._state)
+        step = Step(event.ts, savepoint)
+        try:
+            prepared = self._prepare(event, step)
+            if prepared is not None:
+                produced = prepared
+            else:
+                problems = [job.problem for job in step.jobs]
+                schedules = planning.solve_problems(problems) if problems else []
+                produced = self._conclude(step, schedules)
+        except Exception as exc:  # a bug of ours, or a solver that raised what it should not
+            savepoint.rollback()
+            return self._failed(event, step, exc)
+        savepoint.release()
+        return self._count(produced)
 
     def handle_many(self, events: Sequence[Inbound]) -> list[list[Outbound]]:
         """Apply events in order; return the outputs of each, exactly as :meth:`handle` would.
@@ -93,7 +108,9 @@ class Engine:
         time, and each re-plans only that symbol's orders, so such a run of bins shares one
         :func:`~tracker.core.solve.solve_batch` call (the solver gives a problem the same answer,
         bit for bit, alone or in any batch). A run ends at any other event, a repeated symbol, a
-        new time, or an event that also re-plans orders of another symbol.
+        new time, or an event that also re-plans orders of another symbol. A run in which
+        something fails is undone and handed over again one event at a time, the failed event
+        failing as it did, so that the outputs are those of :meth:`handle`.
 
         Args:
             events: Messages from :func:`tracker.edge.wire.decode` or ticks, in arrival order.
@@ -102,37 +119,75 @@ class Engine:
             One list of outputs per event.
         """
         results: list[list[Outbound]] = []
-        group: list[Step] = []
+        run: list[tuple[Inbound, Step, list[Outbound] | None]] = []
         symbols: set[str] = set()
+        savepoint: Savepoint | None = None
+
+        def settle(failed: int | None, exc: Exception) -> None:
+            """Undo the run and hand its events over one at a time, as handle would have had
+            them; the event that failed (when known) fails again without running again."""
+            assert savepoint is not None
+            savepoint.rollback()
+            for index, (event, step, _) in enumerate(run):
+                if index == failed:
+                    results.append(self._failed(event, step, exc))
+                else:
+                    results.append(self.handle(event))
 
         def flush() -> None:
-            if not group:
+            nonlocal savepoint
+            if not run:
                 return
-            problems = [job.problem for step in group for job in step.jobs]
-            schedules = iter(planning.solve_problems(problems) if problems else ())
-            for step in group:
-                results.append(self._conclude(step, [next(schedules) for _ in step.jobs]))
-            group.clear()
+            assert savepoint is not None
+            steps = [step for _, step, done in run if done is None]
+            problems = [job.problem for step in steps for job in step.jobs]
+            try:
+                schedules = iter(planning.solve_problems(problems) if problems else ())
+            except Exception as exc:  # shared by the run: no one event to blame
+                settle(None, exc)
+            else:
+                produced: list[list[Outbound]] = []
+                for index, (_, step, done) in enumerate(run):
+                    try:
+                        solved = [next(schedules) for _ in step.jobs]
+                        produced.append(done if done is not None else self._conclude(step, solved))
+                    except Exception as exc:
+                        settle(index, exc)
+                        break
+                else:
+                    savepoint.release()
+                    results.extend(self._count(outputs) for outputs in produced)
+            run.clear()
             symbols.clear()
+            savepoint = None
 
         for event in events:
             joins = (
                 isinstance(event, BinMessage)
                 and event.symbol not in symbols
-                and (not group or event.ts == group[0].ts)
+                and (not run or event.ts == run[0][0].ts)
             )
-            if not joins:
+            if not joins or self._retry:
                 flush()
-            step = self._prepare(event)
-            if isinstance(step, list):
-                flush()
-                results.append(step)
+            if self._retry:  # a re-plan to try again: this event on its own, as handle does
+                results.append(self.handle(event))
                 continue
-            if not step.jobs and not group:  # nothing to solve and nothing waiting: done now
-                results.append(self._conclude(step, []))
+            if savepoint is None:
+                savepoint = Savepoint(self._state)
+            step = Step(event.ts, savepoint)
+            try:
+                done = self._prepare(event, step)
+            except Exception as exc:
+                run.append((event, step, None))
+                settle(len(run) - 1, exc)
+                run.clear()
+                symbols.clear()
+                savepoint = None
                 continue
-            group.append(step)
-            if isinstance(event, BinMessage) and all(
+            run.append((event, step, done))
+            if done is not None or (not step.jobs and len(run) == 1):
+                flush()  # refused, or nothing to solve and nothing waiting: done now
+            elif isinstance(event, BinMessage) and all(
                 job.order.symbol == event.symbol for job in step.jobs
             ):
                 symbols.add(event.symbol)
@@ -186,11 +241,14 @@ class Engine:
 
     # ---------------------------------------------------------------- one event
 
-    def _prepare(self, event: Inbound) -> Step | list[Outbound]:
-        """Apply an event up to its re-plans: the step with its jobs, or the final outputs."""
-        step = Step(event.ts)
+    def _prepare(self, event: Inbound, step: Step) -> list[Outbound] | None:
+        """Apply an event up to its re-plans (``step.jobs``); or its outputs, if it is refused.
+
+        A re-plan left by a failed event (:meth:`_failed`) joins the first event applied after
+        it, once.
+        """
+        state = self._state
         try:
-            state = self._state
             if isinstance(event, FillMessage):
                 handlers.on_fill(state, step, event)
             elif isinstance(event, BinMessage):
@@ -205,23 +263,64 @@ class Engine:
                 raise Rejected(f"unknown event type {type(event).__name__}")
         except Rejected as rejection:
             # Only a first-sight alert (default profile) can have been produced before a refusal.
-            return self._count(
-                [
-                    outputs.error(self._state.topics, event, rejection.reason),
-                    *rejection.extra,
-                    *step.out,
-                ]
-            )
+            error = outputs.error(state.topics, event, rejection.reason)
+            return [error, *rejection.extra, *step.out]
         except InputError as exc:  # a check deeper down (session, preferences): same contract
-            return self._count([outputs.error(self._state.topics, event, str(exc)), *step.out])
-        step.jobs = planning.plan_jobs(self._state, step)
-        return step
+            return [outputs.error(state.topics, event, str(exc)), *step.out]
+        if self._retry:
+            step.retried = frozenset(self._retry)
+            for order_id, reason in self._retry.items():
+                step.to_plan.setdefault(order_id, reason)
+            self._retry = {}
+        step.jobs = planning.plan_jobs(state, step)
+        return None
 
     def _conclude(self, step: Step, schedules: Sequence[Schedule | None]) -> list[Outbound]:
         """Apply the solved re-plans of a prepared event and return its outputs."""
         for job, schedule in zip(step.jobs, schedules, strict=True):
             planning.apply_replan(self._state, step, job, schedule)
-        return self._count(sorted(step.out, key=outputs.order_key))
+        return sorted(step.out, key=outputs.order_key)
+
+    def _failed(self, event: Inbound, step: Step, exc: Exception) -> list[Outbound]:
+        """The outputs of an event that failed inside the engine (its changes already undone).
+
+        One failure path, live and in replay alike (the daemon and ``tracker replay`` feed the
+        same engine through the same intake): the event becomes an error record (it was not
+        applied) and an ``internal_error`` alert naming its order (or symbol). The re-plans it
+        asked for are tried once more with the next event; a re-plan that fails again is not
+        carried further (the order is re-planned at its next bin).
+        """
+        state = self._state
+        asked = {k: v for k, v in step.to_plan.items() if k not in step.retried}
+        self._retry = {  # (still pending if the event failed before taking them on)
+            order_id: reason
+            for order_id, reason in {**asked, **self._retry}.items()
+            if order_id in state.orders
+        }
+        what = f"{type(exc).__name__}"
+        reason = (
+            f"internal error while handling this message ({what}); it was not applied -- "
+            "please report it with the journal"
+        )
+        error = outputs.error(state.topics, event, reason)
+        order = state.orders.get(error.order_id) if error.order_id else None
+        symbol = order.symbol if order else getattr(event, "symbol", None)
+        alert = outputs.alert(
+            rules.INTERNAL_ERROR,
+            f"The engine failed on a {event.type} message ({what}) and did not apply it"
+            + (
+                f"; the re-plan of {', '.join(sorted(self._retry))} is tried again with the "
+                "next message"
+                if self._retry
+                else ""
+            )
+            + ". Report this with the journal.",
+            None,
+            symbol,
+            event.ts,
+            {"message": event.type, "error": what, "retry": sorted(self._retry)},
+        )
+        return self._count([error, replace(alert, order_id=error.order_id)])
 
     def _count(self, produced: list[Outbound]) -> list[Outbound]:
         """Count the raised alerts of each order (for the summary); return ``produced``."""

@@ -101,9 +101,11 @@ def plan_jobs(state: EngineState, step: Step) -> list[ReplanJob]:
             continue
         sym = state.symbols[order.symbol]
         if sym.day is None or sym.day < order.day:
+            step.undo.symbol(sym)
             sym.start_day(order.day)
         now = state.now(step.ts)
         if sym.stale_at is None:  # watch the feed from when an order works, in session
+            step.undo.symbol(sym)
             opening = sym.day_bins[0][0] if sym.day_bins else now
             state.watch(sym, max(now, opening, sym.last_bin_end or now))
         first, fraction = horizon(step, order, sym, now)
@@ -213,6 +215,7 @@ def apply_replan(state: EngineState, step: Step, job: ReplanJob, schedule: Sched
     sym = state.symbols[order.symbol]
     previous = order.plan
     plan = _plan(job, schedule, price(order, sym))
+    step.undo.order(order)
     order.plan_version = plan.version
     order.plan = plan
     order.blocked = job.blocked

@@ -11,6 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from datetime import date, datetime
 
+from tracker.core.engine.savepoint import Savepoint
 from tracker.core.engine.state import OrderState
 from tracker.core.messages import Outbound
 from tracker.core.problem import Problem
@@ -44,18 +45,23 @@ class Step:
 
     Attributes:
         ts: The event's time (its ``ts``).
+        undo: Where the event saves each record before changing it (see
+            :mod:`tracker.core.engine.savepoint`).
         out: The outputs produced so far, in production order.
         to_plan: Orders to re-plan once the event is applied: order id -> reason (the first
             reason asked for wins; a later stop of the order removes it).
         jobs: The re-plans built from ``to_plan``, ready to solve.
         positions: Cache: (symbol, time) -> (local day, bin offset) of the symbol's session.
+        retried: The orders whose re-plan a failed event left to this one (tried once more).
     """
 
     ts: datetime
+    undo: Savepoint
     out: list[Outbound] = field(default_factory=list)
     to_plan: dict[str, str] = field(default_factory=dict)
     jobs: list[ReplanJob] = field(default_factory=list)
     positions: dict[tuple[str, datetime], tuple[date, float]] = field(default_factory=dict)
+    retried: frozenset[str] = frozenset()
 
     def emit(self, message: Outbound | None) -> None:
         """Add an output (``None``: nothing to say)."""

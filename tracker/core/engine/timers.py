@@ -25,12 +25,14 @@ def advance(state: EngineState, step: Step, ts: datetime) -> None:
         state.clock = ts
     now = state.clock
     while state.starts and state.starts[0][0] <= now:
+        step.undo.heaps()
         _, order_id = heapq.heappop(state.starts)
         order = state.orders[order_id]
         if order.life.state is State.PENDING:
             start(state, step, order, now)
     grace = state.grace
     while state.ends and state.ends[0][0] + grace <= now:
+        step.undo.heaps()
         end, order_id = heapq.heappop(state.ends)
         order = state.orders[order_id]
         if order.end == end and not order.life.terminal:
@@ -40,6 +42,7 @@ def advance(state: EngineState, step: Step, ts: datetime) -> None:
 
 def start(state: EngineState, step: Step, order: OrderState, now: datetime) -> None:
     """The order's start has come: it works (and is planned), or stays halted in a halt of all."""
+    step.undo.order(order)
     order.live_from = now
     if state.halt_all:
         order.life.apply(Event.HALT)
@@ -62,6 +65,7 @@ def start(state: EngineState, step: Step, order: OrderState, now: datetime) -> N
 
 def expire(state: EngineState, step: Step, order: OrderState, now: datetime) -> None:
     """The order's end (plus the grace) has passed: it expires, with or without a residual."""
+    step.undo.order(order)
     order.life.apply(Event.EXPIRE)
     order.live_until = now
     step.to_plan.pop(order.order_id, None)
@@ -106,6 +110,7 @@ def judge_staleness(state: EngineState, step: Step, now: datetime) -> None:
         if now <= deadline:
             due = deadline if due is None else min(due, deadline)
             continue
+        step.undo.symbol(sym)
         sym.stale_at = None
         if sym.profile.session.bin_index(now) is None:
             continue
