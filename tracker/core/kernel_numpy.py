@@ -584,7 +584,7 @@ def _starting_point(
     start = start / total
     scale = _yardstick(_unscaled_objective(start, h, k, c, beta, b, p, math.inf))
     if math.isfinite(terminal):
-        left = 0.1 if terminal == 0.0 else _fmin(0.1, _pow(0.5 * scale / terminal, 1.0 / p))
+        left = 0.1 if terminal == 0.0 else _fmin(0.1, _pow(0.5 * scale / terminal, _divide(1.0, p)))
         keep = 1.0 - _fmax(left, 1e-9)
         start = start * keep
     return scale, start
