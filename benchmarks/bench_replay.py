@@ -39,17 +39,20 @@ from typing import Any
 
 import numpy as np
 
+from tracker.core.formats import utc_text
 from tracker.core.session import Session
+from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.edge.recordings import read_jsonl
 from tracker.edge.wire import decode
 from tracker.shell.replay import replay
 
 DAY = date(2026, 3, 10)
-ROOT = "tracker"
+ROOT = DEFAULT_ROOT
+TOPICS = Topics(ROOT)
 
 
 def _iso(ts: datetime) -> str:
-    return ts.astimezone(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+    return utc_text(ts, "milliseconds")
 
 
 def make_day(symbols: int, orders_per_symbol: int, fills: int, seed: int = 1) -> list[str]:
@@ -78,7 +81,7 @@ def make_day(symbols: int, orders_per_symbol: int, fills: int, seed: int = 1) ->
             submit = open_ - timedelta(minutes=1)
             add(
                 submit,
-                f"{ROOT}/orders/{order_id}",
+                TOPICS.orders(order_id),
                 {
                     "type": "order",
                     "action": "new",
@@ -102,7 +105,7 @@ def make_day(symbols: int, orders_per_symbol: int, fills: int, seed: int = 1) ->
                 ts = open_ + timedelta(milliseconds=int(offset * 1000))
                 add(
                     ts,
-                    f"{ROOT}/fills/{order_id}",
+                    TOPICS.fills(order_id),
                     {
                         "type": "fill",
                         "fill_id": f"{order_id}-{k:05d}",
@@ -118,7 +121,7 @@ def make_day(symbols: int, orders_per_symbol: int, fills: int, seed: int = 1) ->
             ts = end.astimezone(UTC) + timedelta(seconds=1)
             add(
                 ts,
-                f"{ROOT}/bins/{symbol}",
+                TOPICS.bins(symbol),
                 {
                     "type": "bin",
                     "symbol": symbol,

@@ -61,3 +61,25 @@ def test_topics_under_root() -> None:
 def test_order_id_of(topic: str, expected: str | None) -> None:
     """Only an order or fill topic names an order."""
     assert expected == Topics("t").order_id_of(topic)
+
+
+@pytest.mark.parametrize(
+    ("topic", "expected"),
+    [
+        ("desk/orders/A-1", ("orders", "A-1")),
+        ("desk/fills/A-1", ("fills", "A-1")),
+        ("desk/bins/ZEPH", ("bins", "ZEPH")),
+        ("desk/control", ("control", None)),
+        ("desk/tick", ("tick", None)),
+        ("desk/orders", None),
+        ("desk/orders/A/B", None),
+        ("desk/targets/A-1", None),
+        ("other/orders/A-1", None),
+    ],
+    ids=["order", "fill", "bin", "control", "tick", "no-id", "too-deep", "outbound", "other-root"],
+)
+def test_inbound_topics_split_into_kind_and_name(
+    topic: str, expected: tuple[str, str | None] | None
+) -> None:
+    """An inbound topic gives its kind and last level; any other topic gives None."""
+    assert expected == Topics("desk").split_inbound(topic)

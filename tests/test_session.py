@@ -101,3 +101,18 @@ def test_session_mapping_round_trip() -> None:
     """to_mapping / from_mapping give back an equal session."""
     session = Session(time(8, 0), time(16, 30), "Europe/London", 10)
     assert session == Session.from_mapping(session.to_mapping())
+
+
+@pytest.mark.parametrize(
+    ("stamp", "expected"),
+    [
+        ("2026-01-15T14:30:00+00:00", 0.0),
+        ("2026-01-15T15:02:00+00:00", 6.4),
+        ("2026-01-15T14:00:00+00:00", -6.0),
+        ("2026-01-15T21:00:00+00:00", 78.0),
+    ],
+    ids=["open", "two-minutes-into-bin-6", "before-open", "close"],
+)
+def test_bin_offset_counts_bins_since_the_open(stamp: str, expected: float) -> None:
+    """The offset is minutes since the 09:30 open over the 5-minute bin length (fractional)."""
+    assert pytest.approx(expected) == Session().bin_offset(datetime.fromisoformat(stamp))

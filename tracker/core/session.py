@@ -198,8 +198,9 @@ class Session:
             return ts.replace(tzinfo=self.zone)
         return ts.astimezone(self.zone)
 
-    def position(self, ts: datetime) -> float:
-        """Minutes since the regular open on the local day of ``ts``, in bins (may be fractional).
+    def bin_offset(self, ts: datetime) -> float:
+        """How far ``ts`` is into the session, in bins: minutes since the regular open on its
+        local day, divided by the bin length (fractional; 6.4 is 40 % into bin 6).
 
         Negative before the open, ``n_bins`` or more at and after the close.
         """
@@ -209,10 +210,10 @@ class Session:
 
     def bin_index(self, ts: datetime) -> int | None:
         """Index of the regular bin that contains ``ts`` (start inclusive), ``None`` outside."""
-        position = self.position(ts)
-        if position < 0 or position >= self.n_bins:
+        offset = self.bin_offset(ts)
+        if offset < 0 or offset >= self.n_bins:
             return None
-        return math.floor(position)
+        return math.floor(offset)
 
     def bin_span(self, start: datetime, end: datetime) -> tuple[int, int, float]:
         """The bins an interval [start, end) touches on its local day.
@@ -235,18 +236,18 @@ class Session:
                 f"({self.timezone}); got {start.isoformat()} to {end.isoformat()}",
                 field="end",
             )
-        first_position = max(self.position(start), 0.0)
-        end_position = min(self.position(end), float(self.n_bins))
-        if first_position >= self.n_bins or end_position <= 0 or end_position <= first_position:
+        first_offset = max(self.bin_offset(start), 0.0)
+        end_offset = min(self.bin_offset(end), float(self.n_bins))
+        if first_offset >= self.n_bins or end_offset <= 0 or end_offset <= first_offset:
             raise InputError(
                 f"the interval {start.isoformat()} to {end.isoformat()} does not "
                 f"overlap the session {self.start:%H:%M}-{self.end:%H:%M} "
                 f"{self.timezone}",
                 field="start",
             )
-        first = math.floor(first_position)
-        end_bin = math.ceil(end_position)
-        fraction = 1.0 - (first_position - first)
+        first = math.floor(first_offset)
+        end_bin = math.ceil(end_offset)
+        fraction = 1.0 - (first_offset - first)
         return first, end_bin, fraction
 
     def to_mapping(self) -> dict[str, Any]:

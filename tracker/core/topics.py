@@ -72,6 +72,23 @@ class Topics:
         """The retained health of one daemon instance."""
         return f"{self.root}/health/{instance}"
 
+    def split_inbound(self, topic: str) -> tuple[str, str | None] | None:
+        """The kind and the last level of an inbound topic, or ``None`` when it is not one.
+
+        ``("orders", order_id)``, ``("fills", order_id)``, ``("bins", symbol)``,
+        ``("control", None)`` or ``("tick", None)``.
+        """
+        prefix = f"{self.root}/"
+        if not topic.startswith(prefix):
+            return None
+        levels = topic[len(prefix) :].split("/")
+        kind = levels[0]
+        if kind in ("control", "tick") and len(levels) == 1:
+            return kind, None
+        if kind in ("orders", "fills", "bins") and len(levels) == 2 and levels[1]:
+            return kind, levels[1]
+        return None
+
     def order_id_of(self, topic: str) -> str | None:
         """The order id in an inbound order or fill topic, else ``None``."""
         for kind in ("orders", "fills"):

@@ -13,15 +13,13 @@ ends in exactly one of three ways:
   earlier, as an MQTT broker re-sends a QoS 1 message whose acknowledgement was lost. It changes
   nothing and is not an error; it is counted in the summary. (Ticks are exempt: the shell makes
   them, and a repeated tick is simply handed to the engine, where it changes nothing.)
-* **rejected** -- exactly one :class:`~tracker.edge.wire.ErrorMessage` with ``line`` set to the
-input's
-  1-based line number and a reason a person can act on. The checks, in order:
+* **rejected** -- exactly one :class:`~tracker.core.messages.ErrorMessage` with ``line`` set to
+  the input's 1-based line number and a reason a person can act on. The checks, in order:
 
   1. line level (ours): not UTF-8, not JSON, not an object, no ``topic``, no ``payload``, a ``ts``
      that is not ISO 8601 with an offset;
   2. message level: :func:`tracker.edge.wire.decode` (bad JSON in a raw payload, missing field,
-  wrong
-     type, negative or NaN quantity, unknown type, wrong topic for the payload);
+     wrong type, negative or NaN quantity, unknown type, wrong topic for the payload);
   3. time order: a line whose recorded ``ts`` is earlier than that of a line before it (the
      recording is out of order). A line recorded without ``ts`` is left to the engine's own
      per-stream rules (bins per symbol, order messages per order; a late fill is legitimate). A
@@ -33,11 +31,20 @@ input's
   The line's *time*, for derived ticks, is its recorded ``ts`` (when the shell received it), else
   the message's own ``ts``; time never moves backwards.
 
+Redelivery: why here
+--------------------
+The memory of accepted messages (to tell a redelivery from a new message) is kept here, at the
+edge, and only here. Redelivery is a property of the transport (MQTT's QoS 1 delivers at least
+once), judged on what arrived: the topic and the decoded message. The core judges messages by
+what they mean instead -- a fill id counts once, a closed bin cannot change, an order id is
+created once -- and every shell (the daemon, ``tracker replay``, the simulated day) feeds the
+engine through this class, so one memory serves them all.
+
 Ticks (the rule)
 ----------------
-The live daemon injects a :class:`~tracker.edge.wire.Tick` every ``tick_seconds`` of its clock so
-that the engine can judge stale market data and expired orders with no message arriving; it journals
-those ticks like any message. So:
+The live daemon injects a :class:`~tracker.core.messages.Tick` every ``tick_seconds`` of its
+clock so that the engine can judge stale market data and expired orders with no message arriving;
+it journals those ticks like any message. So:
 
 * if the recording holds at least one line on ``{root}/tick`` (a journal always does), its ticks are
   replayed as recorded and none are invented -- doubling them would change what the engine saw;
@@ -59,6 +66,7 @@ from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 from typing import Any, Protocol
 
+from tracker.core.formats import utc_text
 from tracker.core.messages import (
     ErrorMessage,
     FillMessage,
@@ -69,6 +77,7 @@ from tracker.core.messages import (
     payload_text,
     wire_fields,
 )
+from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.edge.recordings import BadLine, parse_ts, parse_ts_or_none
 from tracker.edge.records import Record
 from tracker.edge.wire import WireError, decode
@@ -112,7 +121,7 @@ class Intake:
         self,
         engine: EngineLike,
         *,
-        root: str = "tracker",
+        root: str = DEFAULT_ROOT,
         derive_ticks: bool = True,
         tick_seconds: float = DEFAULT_TICK_SECONDS,
         check_time: bool = True,
@@ -126,7 +135,6 @@ class Intake:
         self.derive_ticks = derive_ticks
         self.check_time = check_time
         self._tick = timedelta(seconds=tick_seconds)
-        self._tick_topic = f"{root}/tick"
         self._last: datetime | None = None
         self._recorded: datetime | None = None
         self._next_tick: datetime | None = None  # the first derived tick after _last
@@ -201,10 +209,10 @@ class Intake:
                         record.line,
                         record.topic,
                         payload_text(record.payload),
-                        f"time goes backwards: this line's ts {_iso(recorded)} is earlier than "
-                        f"{_iso(self._recorded)} of a line before it; a recording must be in "
-                        "the order the messages were received -- sort the lines by 'ts' or fix "
-                        "this line's ts",
+                        f"time goes backwards: this line's ts {utc_text(recorded)} is earlier "
+                        f"than {utc_text(self._recorded)} of a line before it; a recording must "
+                        "be in the order the messages were received -- sort the lines by 'ts' or "
+                        "fix this line's ts",
                         recorded,
                     )
                 )
@@ -296,12 +304,8 @@ class Intake:
 
 def has_ticks(records: Iterable[Record | BadLine], root: str) -> bool:
     """Whether any line of a recording is on the tick topic."""
-    topic = f"{root}/tick"
+    topic = Topics(root).tick
     return any(r.topic == topic for r in records)
-
-
-def _iso(value: datetime) -> str:
-    return value.astimezone(UTC).isoformat().replace("+00:00", "Z")
 
 
 def _message_time(message: Inbound) -> datetime | None:

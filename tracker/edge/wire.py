@@ -491,17 +491,12 @@ def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, An
 
 def _split_topic(topic: str, root: str) -> tuple[str, str | None]:
     """Return (kind, last level or None) of an inbound topic, or raise WireError."""
-    prefix = f"{root}/"
-    if topic.startswith(prefix):
-        levels = topic[len(prefix) :].split("/")
-        kind = levels[0]
-        if kind in ("control", "tick") and len(levels) == 1:
-            return kind, None
-        if kind in ("orders", "fills", "bins") and len(levels) == 2 and levels[1]:
-            return kind, levels[1]
+    split = Topics(root).split_inbound(topic)
+    if split is not None:
+        return split
     allowed = ", ".join(_topic_of_type(kind, root) for kind in ("order", "fill", "bin", "control"))
     allowed += f" or {_topic_of_type('tick', root)}"
-    if not topic.startswith(prefix):
+    if not topic.startswith(f"{root}/"):
         raise WireError(f"topic {topic!r} is outside the root {root!r}; use {allowed}", topic=topic)
     raise WireError(f"topic {topic!r} is not an inbound topic; use {allowed}", topic=topic)
 

@@ -446,7 +446,7 @@ def _fills_into(rows: list[BinRow], fills: list[Fill], session: Any) -> None:
     for fill in fills:
         index = session.bin_index(fill.ts)
         if index is None:
-            position = session.position(fill.ts)
+            position = session.bin_offset(fill.ts)
             index = rows[0].index if position < 0 else rows[-1].index
         offset = min(max(index - first_index, 0), len(rows) - 1)
         rows[offset].filled += fill.quantity

@@ -43,10 +43,10 @@ def horizon(step: Step, order: OrderState, sym: SymbolState, now: datetime) -> t
     moment = max(order.start, now)
     n = session.n_bins
     key = (sym.name, moment)
-    cached = step.positions.get(key)
+    cached = step.offsets.get(key)
     if cached is None:  # one timezone conversion per symbol and time, not per order
-        cached = (sym.local_day(moment), session.position(moment))
-        step.positions[key] = cached
+        cached = (sym.local_day(moment), session.bin_offset(moment))
+        step.offsets[key] = cached
     day, offset = cached
     if day != order.day:
         return n, 1.0

@@ -51,7 +51,7 @@ class Step:
         to_plan: Orders to re-plan once the event is applied: order id -> reason (the first
             reason asked for wins; a later stop of the order removes it).
         jobs: The re-plans built from ``to_plan``, ready to solve.
-        positions: Cache: (symbol, time) -> (local day, bin offset) of the symbol's session.
+        offsets: Cache: (symbol, time) -> (local day, bin offset) of the symbol's session.
         retried: The orders whose re-plan a failed event left to this one (tried once more).
     """
 
@@ -60,7 +60,7 @@ class Step:
     out: list[Outbound] = field(default_factory=list)
     to_plan: dict[str, str] = field(default_factory=dict)
     jobs: list[ReplanJob] = field(default_factory=list)
-    positions: dict[tuple[str, datetime], tuple[date, float]] = field(default_factory=dict)
+    offsets: dict[tuple[str, datetime], tuple[date, float]] = field(default_factory=dict)
     retried: frozenset[str] = frozenset()
 
     def emit(self, message: Outbound | None) -> None:
