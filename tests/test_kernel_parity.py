@@ -12,7 +12,7 @@ seeded batch like the benchmark's). Then each entry point on its own, with raw a
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 
 import numpy as np
@@ -254,3 +254,72 @@ def test_tridiagonal_agrees(diagonal: list[float]) -> None:
         module.tridiagonal(d, e, b)
         solutions.append(b.tolist())
     assert solutions[0] == solutions[1]
+
+
+# Odd values a raw call may carry: zeros of both signs, infinities, NaN, the extremes.
+SPECIALS = [0.0, -0.0, 1.0, -1.0, math.inf, -math.inf, math.nan, 1e-300, 1e300, 0.5, 2.0]
+
+
+def sprinkled(rng: np.random.Generator, n: int, scale: float) -> FloatArray:
+    """``n`` values in [0, scale), about one in ten replaced by a special value."""
+    values = rng.uniform(0.0, scale, n)
+    odd = rng.random(n) < 0.1
+    values[odd] = rng.choice(SPECIALS, int(odd.sum()))
+    return values
+
+
+def outcome(function: Callable[..., object], args: Sequence[object], *buffers: FloatArray) -> str:
+    """What a call returned or raised and what it left in the buffers, signs of zero included."""
+    try:
+        result: object = function(*args)
+    except (ValueError, OverflowError) as exc:
+        result = (type(exc).__name__, str(exc))
+    return repr((result, [buffer.tolist() for buffer in buffers]))
+
+
+def test_raw_calls_with_odd_values_agree_to_the_bit() -> None:
+    """Calls with NaN, infinities, signed zeros and odd settings give identical results."""
+    rng = np.random.default_rng(11)
+    differ = []
+    for trial in range(300):
+        count = int(rng.integers(1, 4))
+        sizes = rng.integers(1, 8, count).astype(np.int64)
+        total = int(sizes.sum())
+        per_bin = [sprinkled(rng, total, scale) for scale in (0.02, 1e-3, 1e-6)]
+        caps = np.where(rng.random(total) < 0.5, sprinkled(rng, total, 500.0), np.inf)
+        per_problem = [
+            sprinkled(rng, count, 1e4),
+            rng.choice([0.25, 0.5, 0.6, 1.0, 1.5, 2.0, 0.0, math.nan], count),
+            sprinkled(rng, count, 1e-9),
+            rng.choice([1.0, 1.5, 2.0, 3.0, 0.0], count),
+            rng.choice([math.inf, 0.0, 1e-3, math.nan, -1.0], count),
+        ]
+        tolerance = float(rng.choice([1e-10, 1e-3, -1.0, 0.0, math.nan]))
+        limit = int(rng.choice([200, 5, 0, -1]))
+        n = int(rng.integers(1, 6))
+        trades = sprinkled(rng, n, 100.0) * rng.choice([1.0, -1.0], n)
+        coefficients = [sprinkled(rng, n, scale) for scale in (0.02, 1e-3, 1e-6)]
+        settings_ = [
+            float(rng.choice([0.0, 100.0, 300.0, math.nan, -5.0])),
+            float(rng.choice([0.5, 1.0, 0.6, 0.0])),
+            float(rng.choice([1e-6, 0.0, math.inf])),
+            float(rng.choice([1.5, 2.0, 3.0, 0.0, -1.0])),
+            float(rng.choice([math.inf, 0.0, 1e-3, -math.inf, math.nan])),
+        ]
+        settle = bool(rng.integers(2))
+        results = []
+        for module in (_kernel, kernel_numpy):
+            out = np.full(total, -7.0)
+            iterations = np.full(count, -99, dtype=np.int64)
+            v, q = trades.copy(), np.full(n + 1, -3.0)
+            solved = outcome(
+                module.interior_point,
+                (*per_bin, caps, out, sizes, iterations, *per_problem, tolerance, limit),
+                out,
+                iterations.astype(np.float64),
+            )
+            costed = outcome(module.costs, (*coefficients, v, q, *settings_, settle), v, q)
+            results.append(solved + costed)
+        if results[0] != results[1]:
+            differ.append(trial)
+    assert [] == differ

@@ -119,26 +119,35 @@ def _divide(a: float, b: float) -> float:
 
 
 def _fmax(a: float, b: float) -> float:
-    """C's ``fmax``: the larger, ignoring a NaN."""
+    """C's ``fmax``: the larger, ignoring a NaN; b when they are equal (fmax(-0.0, 0.0) is 0.0
+    in the C library here, where numpy's ``fmax`` keeps -0.0)."""
     if math.isnan(a):
         return b
     if math.isnan(b):
         return a
-    return a if a >= b else b
+    return a if a > b else b
 
 
 def _fmin(a: float, b: float) -> float:
-    """C's ``fmin``: the smaller, ignoring a NaN."""
+    """C's ``fmin``: the smaller, ignoring a NaN; b when they are equal."""
     if math.isnan(a):
         return b
     if math.isnan(b):
         return a
-    return a if a <= b else b
+    return a if a < b else b
+
+
+def _at_least_zero(x: _Vector) -> _Vector:
+    """``fmax(x, 0.0)`` per bin as the C library has it (NaN and -0.0 become 0.0)."""
+    return np.where(x > 0.0, x, 0.0)
 
 
 def _total(values: _Vector) -> float:
-    """The sum in bin order, as a C loop adds (numpy's ``sum`` adds pairwise)."""
-    return float(np.cumsum(values)[-1])
+    """The sum in bin order, as a C loop from 0.0 adds (numpy's ``sum`` adds pairwise).
+
+    The loop's first step, 0.0 + the first value, only turns -0.0 into 0.0: so does the + 0.0.
+    """
+    return float(np.cumsum(values)[-1]) + 0.0
 
 
 def _largest_magnitude(values: _Vector) -> float:
@@ -549,7 +558,7 @@ def _unscaled_objective(
 ) -> float:
     """The objective of trades v (fractions of Q) with coefficients in units of Q."""
     executed = np.cumsum(v)
-    x = np.fmax(1.0 - executed, 0.0)
+    x = _at_least_zero(1.0 - executed)
     value = _total(h * v + k * _power(v, 1.0 + beta) + c * _power(x, p))
     squares = _total(v * v)
     x_end = _fmax(1.0 - float(executed[-1]), 0.0)
@@ -575,7 +584,7 @@ def _starting_point(
     terminal: float,
 ) -> tuple[float, _Vector]:
     """The cost scale and a strictly feasible start (``starting_point`` in ``_kernel.c``)."""
-    start = np.fmin(caps, 1.0)
+    start = np.where(caps < 1.0, caps, 1.0)  # fmin(caps, 1.0): NaN becomes 1
     total = _total(start)
     cap_sum = _total(caps)
     if not cap_sum > 1.0:  # the caps cannot complete the order
@@ -647,7 +656,7 @@ def _solve_one(
         previous = np.empty(n)
         previous[0] = 1.0
         previous[1:] = x[:-1]
-        trades[:] = np.fmax(previous - x, 0.0) * quantity
+        trades[:] = _at_least_zero(previous - x) * quantity
     return code
 
 
@@ -827,7 +836,7 @@ def costs(
         bad = int(np.flatnonzero(~finite)[0])
         raise ValueError(f"trades must be finite numbers (bin {bad} is not)")
     with np.errstate(all="ignore"):
-        v[:] = np.fmax(v, 0.0)
+        v[:] = _at_least_zero(v)
         executed = np.cumsum(v)
         forced = math.isinf(terminal)
         left = quantity - float(executed[-1])
@@ -837,7 +846,7 @@ def costs(
             v[last] = _fmax(float(v[last]) + left, 0.0)
             executed[last:] = quantity  # the bins before it are unchanged
         q[0] = quantity
-        q[1:] = np.fmax(quantity - executed, 0.0)
+        q[1:] = _at_least_zero(quantity - executed)
         fixed_cost = _total(fixed * v)
         temporary = _total(impact * _power(v, 1.0 + beta))
         squares = _total(v * v)
