@@ -10,12 +10,13 @@ array layouts in full; this file follows its order of operations, down to summin
 (``np.cumsum``, not numpy's pairwise ``sum``), so that the two agree to rounding.
 ``tests/test_kernel_parity.py`` holds them together.
 
-Vector work (one expression over all bins) is numpy, except powers and logarithms, taken with the
-C library's ``pow`` and ``log`` as the kernel takes them (numpy's own differ in the last bit); the
-recursions that run bin after bin (the
-tridiagonal solve, the Riccati recursion) are plain Python loops over floats. Floating-point
-exceptions are IEEE values here as in C (a NaN or an infinity, never a warning or an error):
-every entry point runs under ``np.errstate(all="ignore")``.
+Vector work (one expression over all bins) is numpy, except where numpy's answer differs from the
+C library's in the last bit or the sign of a zero: powers and logarithms are taken with the C
+library's ``pow`` and ``log`` (through :mod:`math`), ``fmax``/``fmin`` keep its rule for equal
+values. The recursions that run bin after bin (the tridiagonal solve, the Riccati recursion) are
+plain Python loops over floats. Floating-point exceptions give IEEE values here as in C (a NaN or
+an infinity, never a warning or an error): the entry points run under
+``np.errstate(all="ignore")`` and Python's scalar divisions go through :func:`_divide`.
 """
 
 from __future__ import annotations
