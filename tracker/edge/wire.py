@@ -29,6 +29,7 @@ messages accept exactly the v1 fields: an unknown field is rejected by name (a t
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import re
@@ -489,9 +490,15 @@ def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, An
     return data
 
 
+@functools.lru_cache(maxsize=16)
+def _topics(root: str) -> Topics:
+    """The topics of a root (made once per root: decode runs for every message)."""
+    return Topics(root)
+
+
 def _split_topic(topic: str, root: str) -> tuple[str, str | None]:
     """Return (kind, last level or None) of an inbound topic, or raise WireError."""
-    split = Topics(root).split_inbound(topic)
+    split = _topics(root).split_inbound(topic)
     if split is not None:
         return split
     allowed = ", ".join(_topic_of_type(kind, root) for kind in ("order", "fill", "bin", "control"))

@@ -3,8 +3,8 @@
 An unexpected exception while the engine handles an event (a bug, a solver that raised something
 it should not) must not leave an order half-changed: moved to working but with no plan, its re-plan
 request lost. So before an event the engine takes a :class:`Savepoint`, and every change an event
-makes to an order, a symbol or the engine's timers goes through it first: the savepoint keeps a
-shallow copy of each record the first time it is touched (O(1) per record: fills, bins and
+makes to an order, a symbol or the engine's timers goes through it first: the savepoint keeps the
+field values of each record the first time it is touched (a shallow copy: fills, bins and
 forecasts are only ever added to or replaced, so remembering how many there were is enough), the
 engine-wide values (event time, the last tick and control times, the halt of all orders) and,
 lazily, the start and end heaps. The alert book keeps its own log of changes
@@ -17,9 +17,9 @@ rolling it back undoes them all.
 
 from __future__ import annotations
 
-import copy
 from dataclasses import fields
 from datetime import datetime
+from operator import attrgetter
 from typing import Any
 
 from tracker.core.engine.state import EngineState, OrderState, SymbolState
@@ -27,6 +27,8 @@ from tracker.core.lifecycle import State
 
 _ORDER_FIELDS = tuple(item.name for item in fields(OrderState))
 _SYMBOL_FIELDS = tuple(item.name for item in fields(SymbolState))
+_order_values = attrgetter(*_ORDER_FIELDS)  # every field at once, as a tuple
+_symbol_values = attrgetter(*_SYMBOL_FIELDS)
 
 
 def _truncate(mapping: dict[Any, Any], size: int) -> None:
@@ -61,8 +63,11 @@ class Savepoint:
             state.halt_all,
             state.stale_due,
         )
-        self._orders: dict[str, tuple[OrderState, OrderState, State, int]] = {}
-        self._symbols: dict[str, tuple[SymbolState, SymbolState, int, int, int, int]] = {}
+        # id -> (the record, its field values then or None for a new one, sizes then)
+        self._orders: dict[str, tuple[OrderState, tuple[Any, ...] | None, State, int]] = {}
+        self._symbols: dict[
+            str, tuple[SymbolState, tuple[Any, ...] | None, int, int, int, int]
+        ] = {}
         self._new_orders: list[str] = []
         self._new_symbols: list[str] = []
         self._heaps: tuple[list[tuple[datetime, str]], list[tuple[datetime, str]]] | None = None
@@ -71,13 +76,13 @@ class Savepoint:
     def order(self, order: OrderState) -> None:
         """Call before changing ``order`` (a no-op after the first time, or for a new order)."""
         if order.order_id not in self._orders:
-            saved = copy.copy(order)
+            saved = _order_values(order)
             self._orders[order.order_id] = (order, saved, order.life.state, len(order.fills))
 
     def symbol(self, sym: SymbolState) -> None:
         """Call before changing ``sym`` (a no-op after the first time, or for a new symbol)."""
         if sym.name not in self._symbols:
-            saved = copy.copy(sym)
+            saved = _symbol_values(sym)
             sizes = (len(sym.observed), len(sym.bins), len(sym.orders), len(sym.unchecked))
             self._symbols[sym.name] = (sym, saved, *sizes)
 
@@ -89,12 +94,12 @@ class Savepoint:
     def new_order(self, order: OrderState) -> None:
         """An order the event created (undone by forgetting it)."""
         self._new_orders.append(order.order_id)
-        self._orders[order.order_id] = (order, order, order.life.state, 0)  # nothing to restore
+        self._orders[order.order_id] = (order, None, order.life.state, 0)  # nothing to restore
 
     def new_symbol(self, sym: SymbolState) -> None:
         """A symbol the event created (undone by forgetting it)."""
         self._new_symbols.append(sym.name)
-        self._symbols[sym.name] = (sym, sym, 0, 0, 0, 0)  # nothing to restore
+        self._symbols[sym.name] = (sym, None, 0, 0, 0, 0)  # nothing to restore
 
     def rollback(self) -> None:
         """Put everything the events touched back as it was before them."""
@@ -107,17 +112,17 @@ class Savepoint:
             state.stale_due,
         ) = self._scalars
         for order, saved, life_state, fills in self._orders.values():
-            if saved is order:
+            if saved is None:
                 continue
-            for name in _ORDER_FIELDS:
-                setattr(order, name, getattr(saved, name))
+            for name, value in zip(_ORDER_FIELDS, saved, strict=True):
+                setattr(order, name, value)
             order.life.state = life_state
             _truncate(order.fills, fills)
         for sym, saved_sym, observed, bins, orders, unchecked in self._symbols.values():
-            if saved_sym is sym:
+            if saved_sym is None:
                 continue
-            for name in _SYMBOL_FIELDS:
-                setattr(sym, name, getattr(saved_sym, name))
+            for name, value in zip(_SYMBOL_FIELDS, saved_sym, strict=True):
+                setattr(sym, name, value)
             _truncate(sym.observed, observed)
             _truncate(sym.bins, bins)
             _truncate(sym.orders, orders)
