@@ -45,6 +45,8 @@ The parts, one concept each:
 * :mod:`~tracker.core.engine.timers` -- event time: starts, expiries, stale data;
 * :mod:`~tracker.core.engine.planning` -- the horizon, the problems, the solve, applying a re-plan;
 * :mod:`~tracker.core.engine.outputs` -- targets, status, alerts and error records;
+* :mod:`~tracker.core.engine.savepoint` -- undoing an event that failed inside the engine (it
+  becomes an error record and an ``internal_error`` alert, live and in replay alike);
 * :mod:`~tracker.core.engine.config` -- :class:`EngineConfig`.
 
 The alert codes, severities, thresholds and hysteresis are in :mod:`tracker.core.alerts`.

@@ -76,7 +76,9 @@ class Engine:
 
         Never raises on bad input: a message the engine cannot accept becomes exactly one
         :class:`~tracker.core.messages.ErrorMessage` (possibly with alerts), and nothing changes.
-        Nor does it raise on a failure of its own: see :meth:`_failed`.
+        Nor on a failure of its own (a bug): the event is undone and becomes an error record and
+        a critical ``internal_error`` alert; the re-plans it asked for are tried once more with
+        the next event.
 
         Args:
             event: A message from :func:`tracker.edge.wire.decode` or a
@@ -297,7 +299,7 @@ class Engine:
             for order_id, reason in {**asked, **self._retry}.items()
             if order_id in state.orders
         }
-        what = f"{type(exc).__name__}"
+        what = type(exc).__name__
         reason = (
             f"internal error while handling this message ({what}); it was not applied -- "
             "please report it with the journal"
@@ -305,20 +307,18 @@ class Engine:
         error = outputs.error(state.topics, event, reason)
         order = state.orders.get(error.order_id) if error.order_id else None
         symbol = order.symbol if order else getattr(event, "symbol", None)
+        retry = sorted(self._retry)
+        again = (
+            f"; the re-plan of {', '.join(retry)} is tried again with the next one" if retry else ""
+        )
         alert = outputs.alert(
             rules.INTERNAL_ERROR,
-            f"The engine failed on a {event.type} message ({what}) and did not apply it"
-            + (
-                f"; the re-plan of {', '.join(sorted(self._retry))} is tried again with the "
-                "next message"
-                if self._retry
-                else ""
-            )
-            + ". Report this with the journal.",
+            f"The engine failed on a {event.type} message ({what}) and did not apply it{again}. "
+            "Report this with the journal.",
             None,
             symbol,
             event.ts,
-            {"message": event.type, "error": what, "retry": sorted(self._retry)},
+            {"message": event.type, "error": what, "retry": retry},
         )
         return self._count([error, replace(alert, order_id=error.order_id)])
 
