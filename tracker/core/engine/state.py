@@ -1,6 +1,8 @@
 """What the engine remembers between events: plans, orders, symbols, and the engine as a whole.
 
-These are plain mutable records; the engine's modules change them while handling an event.
+These are plain mutable records; the engine's modules change them while handling an event, each
+record saved first in the event's savepoint (``step.undo``, :mod:`tracker.core.engine.savepoint`)
+so that an event that fails inside the engine can be undone.
 """
 
 from __future__ import annotations
