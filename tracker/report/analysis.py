@@ -34,6 +34,9 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any
 
+import numpy as np
+import numpy.typing as npt
+
 from tracker.core.alerts import AlertConfig
 from tracker.errors import InputError
 from tracker.report.day import Fill, MarketBin, OrderEvent, PlanPath, ReviewDay, parse_time
@@ -51,6 +54,7 @@ MATERIAL_MOVE = AlertConfig().replan_move_pct / 100.0
 FAR_ABOVE_STD = 2.0
 
 Point = tuple[datetime, float]
+FloatArray = npt.NDArray[np.float64]
 
 
 @dataclass
@@ -90,6 +94,29 @@ class BinRow:
         if self.volume is None or self.volume <= 0:
             return None
         return self.filled / self.volume
+
+
+@dataclass(frozen=True, eq=False)
+class PlanLine:
+    """One plan version on the day's bin edges (edge ``k`` is the start of bin ``k``).
+
+    Attributes:
+        version: The plan's version (1 = the plan made at the start).
+        first_edge: The edge of ``values[0]``: the start of the plan's first bin.
+        values: Shares expected done at edges ``first_edge, first_edge + 1, ...``.
+    """
+
+    version: int
+    first_edge: int
+    values: FloatArray
+
+    def points(self, edges: Sequence[datetime]) -> list[Point]:
+        """The line as (time, shares) points."""
+        return [
+            (edges[self.first_edge + k], float(v))
+            for k, v in enumerate(self.values)
+            if self.first_edge + k < len(edges)
+        ]
 
 
 @dataclass(frozen=True)
@@ -154,7 +181,8 @@ class OrderReview:
     vwap_bps: float | None
     bins: list[BinRow] = field(default_factory=list)
     realized: list[Point] = field(default_factory=list)
-    plans: list[tuple[int, list[Point]]] = field(default_factory=list)
+    plans: list[PlanLine] = field(default_factory=list)
+    edges: tuple[datetime, ...] = ()
     baseline: list[Point] = field(default_factory=list)
     market_curve: list[Point] = field(default_factory=list)
     market_curve_source: str = ""
@@ -397,7 +425,7 @@ def _bins(
     previous_close: float | None = None
     for index, start, end in spans:
         row = BinRow(index=index, start=start, end=end)
-        chosen = by_start.get(start)
+        chosen = by_start.get(start.astimezone(UTC))
         if chosen is not None:
             target = chosen
             row.target = _int(target.get("quantity"))
@@ -456,26 +484,38 @@ def _fills_into(rows: list[BinRow], fills: list[Fill], session: Any) -> None:
 
 
 def _status_fills_into(rows: list[BinRow], status: list[dict[str, Any]]) -> None:
-    """Filled per bin from the status messages: the change of ``filled`` within each bin."""
-    stamps = []
+    """Filled per bin from the status messages: the change of ``filled`` within each bin.
+
+    ``filled`` at a moment is that of the last status before it; one sweep over the statuses
+    (in time order, as the engine wrote them) and the bin edges.
+    """
+    stamps: list[tuple[float, int]] = []
+    previous = 0
     for item in status:
-        ts, filled = parse_time(item.get("ts")), _int(item.get("filled"))
-        if ts is not None and filled is not None:
-            stamps.append((ts, filled))
-    stamps.sort(key=lambda pair: pair[0])
+        filled = _int(item.get("filled"))
+        if filled is None or filled == previous:
+            continue  # only the changes matter
+        ts = parse_time(item.get("ts"))
+        if ts is not None:
+            stamps.append((ts.timestamp(), filled))
+            previous = filled
+    stamps.sort()
+    position, current = 0, 0
 
-    def filled_by(moment: datetime) -> int:
-        value = 0
-        for ts, filled in stamps:
-            if ts >= moment:
-                break
-            value = filled
-        return value
+    def filled_by(moment: float) -> int:
+        nonlocal position, current
+        while position < len(stamps) and stamps[position][0] < moment:
+            current = stamps[position][1]
+            position += 1
+        return current
 
+    edges = [filled_by(rows[0].start.timestamp())] if rows else []
     for row in rows:
-        row.filled = max(filled_by(row.end) - filled_by(row.start), 0)
+        edges.append(filled_by(row.end.timestamp()))
+    for row, before, after in zip(rows, edges, edges[1:], strict=False):
+        row.filled = max(after - before, 0)
     if rows and stamps:  # fills after the last bin (within the grace) land in the last bin
-        rows[-1].filled += max(stamps[-1][1] - filled_by(rows[-1].end), 0)
+        rows[-1].filled += max(stamps[-1][1] - edges[-1], 0)
 
 
 def _intervals(events: list[OrderEvent], on: str, off: str) -> list[tuple[datetime, datetime]]:
@@ -523,32 +563,36 @@ def _paths(day: ReviewDay, review: OrderReview, status: list[dict[str, Any]]) ->
     for row in rows:
         done += row.filled
         review.realized.append((row.end, float(done)))
+    review.edges = (*(start for start, _ in regular), regular[-1][1])
     for path in (day.plans or {}).get(review.order_id, []):
-        points: list[Point] = []
-        if 0 <= path.first_bin < len(regular):
-            points.append((regular[path.first_bin][0], path.filled_at))
-        for offset, value in enumerate(path.cumulative):
-            index = path.first_bin + offset
-            if 0 <= index < len(regular):
-                points.append((regular[index][1], path.filled_at + value))
-        if len(points) > 1:
-            review.plans.append((path.version, points))
+        room = len(regular) - path.first_bin  # bins of the day from the plan's first
+        if path.first_bin < 0 or room <= 0 or not path.cumulative:
+            continue
+        values = np.empty(min(len(path.cumulative), room) + 1)
+        values[0] = 0.0
+        values[1:] = path.cumulative[: values.size - 1]
+        review.plans.append(PlanLine(path.version, path.first_bin, values + path.filled_at))
+    last_planned: int | None = None
     for item in status:
-        ts, planned = parse_time(item.get("ts")), _int(item.get("planned_filled"))
-        if ts is not None and planned is not None and (_int(item.get("plan_version")) or 0) > 0:
+        planned = _int(item.get("planned_filled"))
+        if planned is None or planned == last_planned or not item.get("plan_version"):
+            continue  # one point per change of the baseline's expected filled shares
+        ts = parse_time(item.get("ts"))
+        if ts is not None:
             review.baseline.append((session.local(ts), float(planned)))
+            last_planned = planned
     volumes = [row.volume for row in rows]
     if all(v is not None for v in volumes):
         review.market_curve_source = "market volume (recorded bins)"
-        values = [float(v or 0.0) for v in volumes]
+        curve = [float(v or 0.0) for v in volumes]
     else:
         profile = day.profile(review.symbol)
         review.market_curve_source = "market volume (the profile's curve: the input holds no bins)"
-        values = [float(profile.expected_volume[row.index]) for row in rows]
-    total = sum(values)
+        curve = [float(profile.expected_volume[row.index]) for row in rows]
+    total = sum(curve)
     seen = 0.0
     review.market_curve = [(rows[0].start, 0.0)]
-    for row, value in zip(rows, values, strict=True):
+    for row, value in zip(rows, curve, strict=True):
         seen += value
         review.market_curve.append((row.end, seen / total if total > 0 else 0.0))
 
@@ -772,14 +816,21 @@ def _replan_findings(review: OrderReview) -> list[Finding]:
     if moved or len(review.plans) < 2 or review.quantity <= 0:
         return found
     biggest: list[tuple[float, int, datetime, datetime]] = []
-    for (_, old), (version, new) in zip(review.plans, review.plans[1:], strict=False):
-        old_at = dict(old[1:])
-        best = (0.0, new[0][0])
-        for moment, value in new[1:]:
-            if moment in old_at and abs(value - old_at[moment]) > abs(best[0]):
-                best = (value - old_at[moment], moment)
-        if abs(best[0]) >= MATERIAL_MOVE * review.quantity:
-            biggest.append((best[0], version, new[0][0], best[1]))
+    edges = review.edges
+    for old, new in zip(review.plans, review.plans[1:], strict=False):
+        # Compare the edges both cover, after the new plan's start (which is what was filled).
+        start = max(old.first_edge, new.first_edge + 1)
+        stop = min(old.first_edge + old.values.size, new.first_edge + new.values.size)
+        if stop <= start:
+            continue
+        difference = (
+            new.values[start - new.first_edge : stop - new.first_edge]
+            - old.values[start - old.first_edge : stop - old.first_edge]
+        )
+        where = int(np.argmax(np.abs(difference)))
+        shift = float(difference[where])
+        if abs(shift) >= MATERIAL_MOVE * review.quantity:
+            biggest.append((shift, new.version, edges[new.first_edge], edges[start + where]))
     biggest.sort(key=lambda item: -abs(item[0]))
     for shift, version, made, at in biggest[:3]:
         found.append(

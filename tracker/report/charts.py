@@ -36,19 +36,23 @@ def progress(review: OrderReview) -> str | None:
     scale = 100.0 / review.quantity
     chart.include(0.0, 100.0)
     market = [(t, 100.0 * v) for t, v in review.market_curve]
-    plans = [[(t, v * scale) for t, v in points] for _, points in review.plans]
-    for line in plans:
-        chart.include(*(v for _, v in line))
+    plans = review.plans
+    for plan in plans:
+        chart.include(float(plan.values.min()) * scale, float(plan.values.max()) * scale)
     realized = [(t, v * scale) for t, v in review.realized]
     chart.include(*(v for _, v in realized))
+    baseline = [(t, v * scale) for t, v in review.baseline]
+    if not plans:
+        chart.include(*(v for _, v in baseline))
     if market:
         label = "market volume, % of the window's"
         if "profile" in review.market_curve_source:
             label += " (profile)"
         chart.line(market, gid="market-volume", colour=MARKET, width=1.5, dash="3 3", label=label)
     if len(plans) > 1:
-        chart.paths(
-            plans[1:],
+        chart.edge_paths(
+            review.edges,
+            [(p.first_edge, p.values * scale) for p in plans[1:]],
             gid="replans",
             colour=REPLAN,
             width=1.0,
@@ -56,10 +60,9 @@ def progress(review: OrderReview) -> str | None:
             label=f"re-plans ({len(plans) - 1})",
         )
     if plans:
-        chart.line(plans[0], gid="first-plan", colour=PLAN, width=2.5, label="first plan")
-    elif review.baseline:
-        baseline = [(t, v * scale) for t, v in review.baseline]
-        chart.include(*(v for _, v in baseline))
+        first = [(t, v * scale) for t, v in plans[0].points(review.edges)]
+        chart.line(first, gid="first-plan", colour=PLAN, width=2.5, label="first plan")
+    elif baseline:
         chart.line(
             baseline,
             gid="first-plan",
@@ -111,9 +114,10 @@ def participation(review: OrderReview) -> str | None:
     rows = [r for r in review.bins if r.participation is not None]
     values = [(r.start, r.end, 100.0 * (r.participation or 0.0)) for r in rows]
     chart.include(0.0, *(v for _, _, v in values))
-    chart.bars(values, gid="participation", colour=FILLED, label="filled / market volume")
     if review.max_participation is not None:
         chart.include(100.0 * review.max_participation)
+    chart.bars(values, gid="participation", colour=FILLED, label="filled / market volume")
+    if review.max_participation is not None:
         chart.rule(100.0 * review.max_participation, gid="cap", colour=CAP, label="cap")
     return chart.render()
 
@@ -128,7 +132,7 @@ def prices(review: OrderReview) -> str | None:
     rows = [r for r in review.bins if r.vwap is not None]
     vwap = [(r.start + (r.end - r.start) / 2, float(r.vwap or 0.0)) for r in rows]
     chart.include(*(r.low for r in rows), *(r.high for r in rows))
-    chart.include(*(f.price for f in review.fills), review.arrival_price)
+    chart.include(*(f.price for f in review.fills), review.arrival_price, review.limit_price)
     lows = [(r.start + (r.end - r.start) / 2, float(r.low or 0.0)) for r in rows]
     highs = [(r.start + (r.end - r.start) / 2, float(r.high or 0.0)) for r in rows]
     chart.paths(
@@ -139,7 +143,6 @@ def prices(review: OrderReview) -> str | None:
     if review.arrival_price is not None:
         chart.rule(review.arrival_price, gid="arrival", colour=ARRIVAL, label="arrival price")
     if review.limit_price is not None:
-        chart.include(review.limit_price)
         chart.rule(review.limit_price, gid="limit", colour=LIMIT, label="limit")
     return chart.render()
 

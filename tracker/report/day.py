@@ -24,6 +24,7 @@ and, if the engine's layout changes, the review loses only the faint re-plan lin
 from __future__ import annotations
 
 import json
+import operator
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -148,7 +149,12 @@ class ReviewDay:
 
 
 def parse_time(value: Any) -> datetime | None:
-    """An ISO 8601 time with an offset (``Z`` allowed), or ``None`` for anything else."""
+    """An ISO 8601 time with an offset (``Z`` allowed), or ``None`` for anything else.
+
+    A timezone-aware ``datetime`` (an output read straight from a replay) is returned as is.
+    """
+    if isinstance(value, datetime):
+        return value if value.tzinfo is not None else None
     if not isinstance(value, str):
         return None
     try:
@@ -403,6 +409,20 @@ def _forecasts(
     return market, forecasts
 
 
+_GETTERS: dict[type, tuple[tuple[str, ...], Any]] = {}
+
+
+def _fields(message: Any) -> dict[str, Any]:
+    """An output message as the JSON object the files hold, times left as datetimes."""
+    kind = type(message)
+    found = _GETTERS.get(kind)
+    if found is None:  # one getter per message class reads every field in one C call
+        names = tuple(message.__dataclass_fields__)
+        found = _GETTERS[kind] = (names, operator.attrgetter(*names))
+    names, getter = found
+    return dict(zip(names, getter(message), strict=True))
+
+
 def read_recording(
     path: Path,
     out_dir: Path,
@@ -432,11 +452,17 @@ def read_recording(
     engine = Engine(config=config, profiles=given, root=root or DEFAULT_ROOT)
     observer = Observer(engine)
     result = replay(records, observer, root or DEFAULT_ROOT)
-    folder = out_dir / "replay"
-    write_outputs(result, folder)
-    day = read_outputs(folder, given)
-    day.source = "journal" if is_journal(path) else "recording"
-    day.input = path
+    write_outputs(result, out_dir / "replay")  # the desk gets the replay's files too
+    day = ReviewDay(
+        source="journal" if is_journal(path) else "recording",
+        input=path,
+        targets=[_fields(m) for m in result.targets],
+        alerts=[_fields(m) for m in result.alerts],
+        status=[_fields(m) for m in result.status],
+        errors=[_fields(m) for m in result.errors],
+        summary=dict(result.summary),
+        profiles=given,
+    )
     day.events = observer.events
     day.fills = observer.fills
     day.plans = {

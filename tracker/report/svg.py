@@ -13,6 +13,9 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, tzinfo
 from html import escape
+from typing import Any
+
+import numpy as np
 
 
 def nice_ticks(low: float, high: float, count: int = 5) -> list[float]:
@@ -67,23 +70,38 @@ class Chart:
     right: int = 16
     top: int = 40
     bottom: int = 34
+    _scale: tuple[float, float] | None = None
+    _xs: dict[datetime, float] = field(default_factory=dict)
 
     def include(self, *values: float | None) -> None:
-        """Widen the value axis to hold these values."""
-        for value in values:
-            if value is not None and math.isfinite(value):
-                self.y_low = min(self.y_low, value)
-                self.y_high = max(self.y_high, value)
+        """Widen the value axis to hold these values (before anything is drawn).
+
+        Raises:
+            RuntimeError: Something was drawn already (its place on the axis is fixed).
+        """
+        if self.parts:
+            raise RuntimeError("include() every value before drawing the first series")
+        finite = [v for v in values if v is not None and math.isfinite(v)]
+        if finite:
+            self.y_low = min(self.y_low, min(finite))
+            self.y_high = max(self.y_high, max(finite))
 
     def _x(self, moment: datetime) -> float:
-        span = (self.end - self.start).total_seconds() or 1.0
-        share = (moment - self.start).total_seconds() / span
-        return self.left + share * (self.width - self.left - self.right)
+        x = self._xs.get(moment)  # the points of a day fall on a few dozen bin edges
+        if x is None:
+            span = (self.end - self.start).total_seconds() or 1.0
+            share = (moment - self.start).total_seconds() / span
+            x = self.left + share * (self.width - self.left - self.right)
+            self._xs[moment] = x
+        return x
 
     def _y(self, value: float) -> float:
-        low, high = self._range()
-        share = (value - low) / (high - low)
-        return self.height - self.bottom - share * (self.height - self.top - self.bottom)
+        if self._scale is None:  # fixed at the first series drawn (include() then refuses)
+            low, high = self._range()
+            pixels = self.height - self.top - self.bottom
+            self._scale = (low, pixels / (high - low))
+        low, per_unit = self._scale
+        return self.height - self.bottom - (value - low) * per_unit
 
     def _range(self) -> tuple[float, float]:
         low, high = self.y_low, self.y_high
@@ -132,13 +150,14 @@ class Chart:
     ) -> None:
         """Several polylines as one series (one ``<path>``)."""
         commands: list[str] = []
+        digits = 0 if len(lines) > 4 else 1  # many faint lines: whole pixels keep the file small
         for points in lines:
             previous: float | None = None
             for n, (moment, value) in enumerate(points):
                 x, y = self._x(moment), self._y(value)
                 if steps and previous is not None:
-                    commands.append(f"L{x:.1f},{previous:.1f}")
-                commands.append(f"{'M' if n == 0 else 'L'}{x:.1f},{y:.1f}")
+                    commands.append(f"L{x:.{digits}f},{previous:.{digits}f}")
+                commands.append(f"{'M' if n == 0 else 'L'}{x:.{digits}f},{y:.{digits}f}")
                 previous = y
         if not commands:
             return
@@ -149,6 +168,40 @@ class Chart:
         )
         if label:
             self.legend.append((label, colour, dash or ""))
+
+    def edge_paths(
+        self,
+        edges: Sequence[datetime],
+        lines: Sequence[tuple[int, Any]],
+        *,
+        gid: str,
+        colour: str,
+        width: float = 1.0,
+        opacity: float = 1.0,
+        label: str | None = None,
+    ) -> None:
+        """Many polylines on shared times (``(first edge, values)`` each) as one series, in
+        whole pixels: the fast path for every plan version of an order."""
+        if not lines:
+            return
+        xs = np.rint([self._x(moment) for moment in edges]).astype(np.int64)
+        self._y(0.0)  # fix the scale
+        assert self._scale is not None
+        low, per_unit = self._scale
+        base = self.height - self.bottom
+        commands: list[str] = []
+        for first, values in lines:
+            ys = np.rint(base - (np.asarray(values) - low) * per_unit).astype(np.int64)
+            x = xs[first : first + ys.size].tolist()
+            pairs = [f"{a},{b}" for a, b in zip(x, ys[: len(x)].tolist(), strict=True)]
+            if len(pairs) > 1:
+                commands.append("M" + "L".join(pairs))
+        self.parts.append(
+            f'<g id="{escape(gid)}" class="series"><path d="{"".join(commands)}" fill="none" '
+            f'stroke="{colour}" stroke-width="{width}" stroke-opacity="{opacity}"/></g>'
+        )
+        if label:
+            self.legend.append((label, colour, ""))
 
     def bars(
         self,
