@@ -166,24 +166,18 @@ def test_cost_so_far_is_the_shortfall_against_arrival(
 
 
 def test_participation_is_the_orders_fills_over_the_bins_volume() -> None:
-    """2,000 shares filled in a bin of 20,000 traded: 10 % (common practice: share of volume)."""
-    bin_payload = {
-        "type": "bin",
-        "symbol": "ZEPH",
-        "start": "2026-03-10T15:25:00Z",
-        "end": "2026-03-10T15:30:00Z",
-        "volume": 20_000,
-        "ts": "2026-03-10T15:30:01Z",
-    }
-    fills = [
-        json.dumps({"type": "fill", "order_id": "ZEPH-B1", "quantity": q, "ts": t}).encode()
-        for q, t in ((500, "2026-03-10T15:24:59Z"), (1_200, "2026-03-10T15:26:00Z"))
-    ] + [json.dumps({"quantity": 800, "ts": "2026-03-10T15:29:59Z"}).encode()]
+    """2,000 shares filled between two bin closes of 20,000 traded: 10 % (common practice)."""
+
+    def bin_payload(start: str, end: str) -> bytes:
+        message = {"type": "bin", "symbol": "ZEPH", "start": start, "end": end, "volume": 20_000}
+        return json.dumps(message).encode()
+
     board = board_with(
-        ("status/ZEPH-B1", status()),
-        ("bins/ZEPH", json.dumps(bin_payload).encode()),
-        *[("fills/ZEPH-B1", fill) for fill in fills],
-        ("bins/ZEPH", json.dumps(bin_payload).encode()),
+        ("status/ZEPH-B1", status(filled=45_175)),
+        ("bins/ZEPH", bin_payload("2026-03-10T15:20:00Z", "2026-03-10T15:25:00Z")),
+        ("status/ZEPH-B1", status(filled=46_000)),
+        ("status/ZEPH-B1", status(filled=47_175)),
+        ("bins/ZEPH", bin_payload("2026-03-10T15:25:00Z", "2026-03-10T15:30:00Z")),
     )
     assert 0.10 == pytest.approx(board.orders["ZEPH-B1"].participation)
 

@@ -109,8 +109,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "--refresh",
         metavar="HZ",
         type=float,
-        default=4.0,
-        help="most screen updates per second (default 4)",
+        default=2.0,
+        help="most screen updates per second for new data (default 2; keys redraw at once)",
     )
     once = parser.add_argument_group("one snapshot")
     once.add_argument(

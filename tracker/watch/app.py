@@ -29,8 +29,10 @@ import json
 import os
 import signal
 import time
+from collections.abc import Coroutine
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, tzinfo
+from typing import Any
 
 from tracker.core.formats import utc_text
 from tracker.core.topics import Topics
@@ -79,7 +81,7 @@ class Watch:
         zone: The venue's time zone.
         allow_control: Whether halt / resume may be sent.
         stale_after: Seconds without data before the banner (``None``: two bins).
-        refresh: Most frames per second.
+        refresh: Most frames per second drawn for new data (keys redraw at once).
         input_fd, output_fd: The terminal.
     """
 
@@ -91,7 +93,7 @@ class Watch:
         zone: tzinfo,
         allow_control: bool = False,
         stale_after: float | None = None,
-        refresh: float = 4.0,
+        refresh: float = 2.0,
         input_fd: int = 0,
         output_fd: int = 1,
     ) -> None:
@@ -103,7 +105,8 @@ class Watch:
         self.state = ViewState(allow_control=allow_control)
         self.input_fd = input_fd
         self.output_fd = output_fd
-        self._changed = asyncio.Event()
+        self._changed = asyncio.Event()  # a message changed the board
+        self._poke = asyncio.Event()  # a key or a result: draw now
         self._quit = asyncio.Event()
         self._confirm: tuple[str, str | None] | None = None
         self._typing: str | None = None  # the symbol filter being typed
@@ -118,9 +121,9 @@ class Watch:
         loop = asyncio.get_running_loop()
         writer = FrameWriter(self.output_fd)
         writer.start(ENTER_SCREEN)
-        for signum in (signal.SIGINT, signal.SIGTERM):
+        for signum in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):  # SIGHUP: terminal gone
             loop.add_signal_handler(signum, self._quit.set)
-        loop.add_signal_handler(signal.SIGWINCH, self._changed.set)
+        loop.add_signal_handler(signal.SIGWINCH, self._redraw)
         try:
             with Keys(self.input_fd, self._key):
                 link = asyncio.create_task(self.link.run(), name="watch.link")
@@ -132,12 +135,14 @@ class Watch:
                     with contextlib.suppress(asyncio.CancelledError):
                         await task
         finally:
-            for signum in (signal.SIGINT, signal.SIGTERM, signal.SIGWINCH):
+            for signum in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP, signal.SIGWINCH):
                 loop.remove_signal_handler(signum)
             writer.close(LEAVE_SCREEN)
         return 0
 
     async def _draw(self, writer: FrameWriter) -> None:
+        """Draw when something changed: at once after a key, at most ``refresh`` a second for
+        data, and once a second anyway (the clock and the ages move)."""
         drawn_version = -1
         drawn_at = 0.0
         pace = 1.0 / self.refresh
@@ -149,10 +154,14 @@ class Watch:
                 self._follow_up(now)
                 writer.show(self.frame(now))
                 self.frames += 1
+            self._poke.clear()
+            with contextlib.suppress(TimeoutError):  # pacing, which a key cuts short
+                await asyncio.wait_for(self._poke.wait(), pace)
+            if self._poke.is_set() or self.board.version != drawn_version:
+                continue
             self._changed.clear()
-            with contextlib.suppress(TimeoutError):
-                await asyncio.wait_for(self._changed.wait(), IDLE_FRAME_SECONDS)
-            await asyncio.sleep(pace)  # at most `refresh` frames a second, however busy the bus
+            with contextlib.suppress(TimeoutError):  # nothing new yet: wait for it
+                await asyncio.wait_for(self._changed.wait(), max(0.0, IDLE_FRAME_SECONDS - pace))
 
     def frame(self, now: float) -> str:
         """The current frame as terminal text."""
@@ -179,8 +188,10 @@ class Watch:
             self._changed.set()
 
     def _redraw(self) -> None:
+        """Draw again at once (after a key or a result)."""
         self.board.version += 1
         self._changed.set()
+        self._poke.set()
 
     # -- keys ------------------------------------------------------------------------------------
 
@@ -203,6 +214,7 @@ class Watch:
         elif key == "enter" or (key == "esc" and state.mode == "detail"):
             if state.mode == "detail" or state.selected is not None:
                 state.mode = "list" if state.mode == "detail" else "detail"
+                self._spawn(self._follow_fills())
         elif key == "o":
             names = list(SORTS)
             state.sort = names[(names.index(state.sort) + 1) % len(names)]
@@ -284,9 +296,17 @@ class Watch:
         if key != "y":
             self._notice(f"{command} not sent")
             return
-        task = asyncio.get_running_loop().create_task(self._send(command, order_id))
+        self._spawn(self._send(command, order_id))
+
+    def _spawn(self, work: Coroutine[Any, Any, None]) -> None:
+        task = asyncio.get_running_loop().create_task(work)
         self._tasks.add(task)
         task.add_done_callback(self._tasks.discard)
+
+    async def _follow_fills(self) -> None:
+        """The detail screen shows its order's fills: read them while it is open."""
+        order_id = self.state.selected if self.state.mode == "detail" else None
+        await self.link.follow(None if order_id is None else Topics(self.root).fills(order_id))
 
     async def _send(self, command: str, order_id: str | None) -> None:
         what = "all orders" if order_id is None else order_id

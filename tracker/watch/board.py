@@ -16,8 +16,10 @@ Sources, all under ``{root}/`` (wire contract v1, see ``tracker/edge/wire.py``):
   this bin's target is filled so far.
 * ``alerts/{order_id}`` and ``alerts`` (symbol-wide): raised and cleared alerts.
 * ``health/{instance}`` (retained; ``offline`` as the last will): which daemons are up.
-* ``bins/{symbol}`` and ``fills/{order_id}`` (what the daemon reads; we only look): the bin length,
-  whether market data still arrives, and the order's share of each bin's volume (participation).
+* ``bins/{symbol}`` (what the daemon reads; we only look): the bin length, whether market data
+  still arrives, and each order's share of the bin's volume (participation: what its status says
+  was filled between two bin closes, over the bin's volume).
+* ``fills/{order_id}``: the last fills of the order whose detail is open.
 * ``orders/{order_id}``: the participation cap (``max_participation``) when the view sees the order
   message; a later daemon that states the cap on its targets or status is read the same way.
 * ``errors``: rejections, so that a control message the daemon refused shows why.
@@ -415,13 +417,10 @@ class Board:
                 continue
             before = self._bin_filled.get(view.order_id)
             self._bin_filled[view.order_id] = view.filled
-            if before is None or not volume or volume <= 0:
-                continue
-            if start is not None and end is not None and view.fills:
-                traded = sum(q for ts, q, _ in view.fills if ts is not None and start <= ts < end)
-            else:
-                traded = view.filled - before
-            view.participation = max(0, traded) / volume
+            if before is not None and volume is not None and volume > 0:
+                # Filled between two bin closes of the symbol, over the bin's volume: the fills
+                # of a bin reach the daemon during it, its bin message at its close.
+                view.participation = max(0, view.filled - before) / volume
 
     def _fill(self, order_id: str, data: dict[str, Any]) -> None:
         view = self.orders.get(order_id)

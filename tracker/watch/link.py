@@ -7,10 +7,11 @@ URL, TLS files, username and password file, environment, ``--config``), with a c
 a client id of its own per process (``tracker-watch-HOST-PID``): the view is a guest, so it leaves
 no session behind on the broker, never takes the daemon's id, and publishes no health message.
 
-It subscribes at QoS 1 to what the daemon publishes (status, targets, alerts, health, errors) and
-to what the daemon reads that helps the view (bins, fills, orders), and hands every message to a
-callback in arrival order. The callback must be quick (the :class:`~tracker.watch.board.Board`
-does a few dictionary updates per message); drawing happens elsewhere, at its own pace.
+It subscribes to what the daemon publishes (status, targets, alerts, health, errors) and to what
+the daemon reads that helps the view (bins, orders; the fills of the order whose detail is open),
+with the QoS of :func:`subscriptions`, and hands every message to a callback in arrival order.
+The callback must be quick (the :class:`~tracker.watch.board.Board` does a few dictionary updates
+per message); drawing happens elsewhere, at its own pace.
 
 When the connection drops or cannot be made, :attr:`Link.status` says so (``reconnecting``, the
 attempt, the error, when the next try is) and the link waits a jittered, doubling delay
@@ -24,6 +25,7 @@ fatal: the view shows less, and :attr:`LinkStatus.refused` names the filters.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import os
 import re
 import socket
@@ -45,19 +47,26 @@ __all__ = ["Link", "LinkStatus", "subscriptions", "watch_client_id"]
 OPERATION_TIMEOUT = 10.0
 
 
-def subscriptions(root: str) -> tuple[str, ...]:
-    """The topic filters the view reads (every one read-only)."""
+def subscriptions(root: str) -> tuple[tuple[str, int], ...]:
+    """The topic filters the view reads (every one read-only), each with its QoS.
+
+    What a person must not miss (alerts, health, errors) comes at QoS 1. The bulk (a status per
+    fill, a target per order and bin, the market bins) comes at QoS 0: over one live connection it
+    arrives all the same, the next message of an order replaces the last, and the retained
+    statuses refresh everything after a reconnect; it spares the view one acknowledgement per
+    message, which at 1,000 orders is most of its network work. Fills are not read in bulk: the
+    detail screen follows the fills of its one order (:meth:`Link.follow`).
+    """
     topics = Topics(root)
     return (
-        topics.status(),
-        topics.targets(),
-        topics.alerts(),
-        topics.alerts(None),
-        topics.health(),
-        topics.errors,
-        topics.bins(),
-        topics.fills(),
-        topics.orders(),
+        (topics.alerts(), 1),
+        (topics.alerts(None), 1),
+        (topics.health(), 1),
+        (topics.errors, 1),
+        (topics.status(), 0),
+        (topics.targets(), 0),
+        (topics.bins(), 0),
+        (topics.orders(), 0),
     )
 
 
@@ -119,7 +128,8 @@ class Link:
         broker: Where and how to connect (from :func:`tracker.shell.config.load_settings`).
         root: The topic root.
         on_message: Called with ``(topic, payload, retained)`` for every message, in order.
-        filters: The topic filters; the view's own (:func:`subscriptions`) by default.
+        filters: The topic filters and their QoS; the view's own (:func:`subscriptions`) by
+            default.
         reconnect_min_seconds, reconnect_max_seconds: Bounds of the reconnect delay.
         client_id: The MQTT client id; :func:`watch_client_id` by default.
     """
@@ -130,7 +140,7 @@ class Link:
         root: str,
         on_message: Callable[[str, bytes, bool], None],
         *,
-        filters: tuple[str, ...] | None = None,
+        filters: tuple[tuple[str, int], ...] | None = None,
         reconnect_min_seconds: float = 0.2,
         reconnect_max_seconds: float = 10.0,
         client_id: str | None = None,
@@ -145,6 +155,7 @@ class Link:
         self.status = LinkStatus("connecting", broker.url)
         self.subscribed = asyncio.Event()
         self._client: aiomqtt.Client | None = None
+        self._followed: str | None = None
 
     async def run(self) -> None:
         """Connect, read, and reconnect after any loss, until cancelled."""
@@ -181,11 +192,13 @@ class Link:
         )
         async with client:
             self._client = client
-            granted = await client.subscribe([(topic, 1) for topic in self.filters])
+            granted = await client.subscribe(list(self.filters))
             codes = _granted_codes(granted)
             refused = tuple(
-                topic for topic, code in zip(self.filters, codes, strict=False) if code >= 0x80
+                topic for (topic, _), code in zip(self.filters, codes, strict=False) if code >= 0x80
             )
+            if self._followed is not None:
+                await client.subscribe(self._followed, qos=0)
             self.status = LinkStatus(
                 "connected",
                 self.broker.url,
@@ -202,6 +215,21 @@ class Link:
                 else:
                     data = b"" if payload is None else str(payload).encode("utf-8")
                 self._on_message(message.topic.value, data, bool(message.retain))
+
+    async def follow(self, topic: str | None) -> None:
+        """Read ``topic`` too (one at a time: the previous one is dropped); ``None``: none.
+
+        Kept across reconnects. A failure is left to the connection loop to notice.
+        """
+        previous, self._followed = self._followed, topic
+        client = self._client
+        if client is None or previous == topic:
+            return
+        with contextlib.suppress(aiomqtt.MqttError):
+            if previous is not None:
+                await client.unsubscribe(previous)
+            if topic is not None:
+                await client.subscribe(topic, qos=0)
 
     async def publish(self, topic: str, payload: bytes) -> None:
         """Publish one message at QoS 1 (not retained) and wait for the broker's acknowledgement.

@@ -56,7 +56,7 @@ async def take_snapshot(broker: BrokerSettings, root: str, *, timeout: float = 1
         broker,
         root,
         take,
-        filters=(topics.status(), topics.health()),
+        filters=((topics.status(), 1), (topics.health(), 1)),
         reconnect_max_seconds=1.0,
     )
     task = asyncio.create_task(link.run())
