@@ -259,13 +259,40 @@ def test_a_failure_at_the_end_of_any_event_undoes_all_of_it(
     assert reference == produced
 
 
-def test_handle_many_fails_as_handle_does(monkeypatch: pytest.MonkeyPatch) -> None:
+APPLY_REPLAN = planning.apply_replan
+
+
+class ApplyFailsOnce:
+    """Stands in for ``planning.apply_replan``: raises once, at the ``nth`` call."""
+
+    def __init__(self, nth: int) -> None:
+        self.calls = 0
+        self.nth = nth
+
+    def __call__(self, *args: Any) -> None:
+        self.calls += 1
+        if self.calls == self.nth:
+            raise RuntimeError("injected: a bug while applying a re-plan")
+        APPLY_REPLAN(*args)
+
+
+@pytest.mark.parametrize(
+    ("name", "make"),
+    [
+        ("build_problem", lambda: FailOnce(first_bin=6)),
+        ("apply_replan", lambda: ApplyFailsOnce(nth=100)),
+    ],
+    ids=["while-preparing-a-bin", "while-applying-a-solved-run"],
+)
+def test_handle_many_fails_as_handle_does(
+    monkeypatch: pytest.MonkeyPatch, name: str, make: Any
+) -> None:
     """A failure inside a run of bins sharing a solve gives the outputs one by one would."""
     events = decoded_day()
-    monkeypatch.setattr(planning, "build_problem", FailOnce(first_bin=6))
+    monkeypatch.setattr(planning, name, make())
     engine = Engine()
     one_by_one = [[encode(o) for o in engine.handle(e)] for e in events]
-    monkeypatch.setattr(planning, "build_problem", FailOnce(first_bin=6))
+    monkeypatch.setattr(planning, name, make())
     together = [[encode(o) for o in outs] for outs in Engine().handle_many(events)]
-    assert any(b'"internal_error"' in line for outs in together for line in outs)
-    assert one_by_one == together
+    failed = sum(b'"internal_error"' in line for outs in together for line in outs)
+    assert (one_by_one, 1) == (together, failed)
