@@ -234,14 +234,14 @@ def test_orders_with_problems_come_first(desk_day: Report) -> None:
 
 
 def test_every_order_has_its_section_charts_and_cost_table(golden: Report) -> None:
-    """Each order: a linked section, four charts (inline and as files), a cost table."""
+    """Each order: a linked section, five charts (inline and as files), a cost table."""
     html = golden.html.read_text(encoding="utf-8")
     for review in golden.orders:
         section = html.split(f'id="{anchor(review.order_id)}"', 1)[1].split("</section>", 1)[0]
         assert f'href="#{anchor(review.order_id)}"' in html
-        assert section.count('<figure class="chart"') == 4
+        assert section.count('<figure class="chart"') == 5
         assert '<table class="cost">' in section
-    assert len(golden.charts) == 4 * len(golden.orders)
+    assert len(golden.charts) == 5 * len(golden.orders)
 
 
 def test_progress_chart_holds_every_plan_version(golden: Report) -> None:
@@ -316,3 +316,24 @@ def test_tolerant_reading_of_outputs(tmp_path: Path) -> None:
     (folder / "status.jsonl").write_text("\n".join(status) + "\n", encoding="utf-8")
     report = build_report(folder, tmp_path / "out")
     assert (len(report.orders), report.day.skipped) == (4, 1)
+
+
+def test_a_journal_gives_the_same_review_as_its_recording(golden: Report, tmp_path: Path) -> None:
+    """The golden day written to a daemon journal: same orders, findings and cost totals."""
+    from tracker.edge.records import payload_bytes
+    from tracker.shell.journal import Journal
+
+    path = tmp_path / "journal.sqlite"
+    with Journal(path) as journal:
+        for line in GOLDEN_DAY.read_text(encoding="utf-8").splitlines():
+            item = json.loads(line)
+            journal.append(item["topic"], payload_bytes(item["payload"]), item["ts"])
+    report = build_report(path, tmp_path / "out")
+
+    def facts(r: Report) -> list[tuple[str, list[str], float | None]]:
+        return [
+            (o.order_id, [f.text for f in o.findings], o.attribution and o.attribution.total)
+            for o in r.orders
+        ]
+
+    assert (report.day.source, facts(report)) == ("journal", facts(golden))

@@ -117,7 +117,7 @@ def check(report: Report, work: Path) -> Path:
     shot, console, requests, dom = open_page(report.html, work)
     parser = Elements()
     parser.feed(dom)
-    expected = {anchor(r.order_id): {"svg": 4, "cost": 1} for r in report.orders}
+    expected = {anchor(r.order_id): {"svg": 5, "cost": 1} for r in report.orders}
     assert (console, requests) == ([], [])
     assert expected == parser.found
     import matplotlib.image

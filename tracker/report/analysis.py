@@ -722,6 +722,15 @@ def _findings(day: ReviewDay, review: OrderReview) -> list[Finding]:
                 f"the target in {len(capped)} bins: {_ranges(capped)}."
             )
         )
+    cap = review.max_participation
+    above = [r for r in review.bins if cap is not None and (r.participation or 0.0) > cap + 1e-9]
+    if above and cap is not None:
+        found.append(
+            Finding(
+                f"In {len(above)} bins the fills were more than {100 * cap:.0f} % of the bin's "
+                f"real volume (the cap applies to the forecast volume): {_ranges(above)}."
+            )
+        )
     blocked = [r for r in review.bins if r.limit_bound]
     if blocked:
         found.append(
@@ -741,8 +750,8 @@ def _findings(day: ReviewDay, review: OrderReview) -> list[Finding]:
     if review.errors:
         found.append(
             Finding(
-                f"{len(review.errors)} inbound messages naming this order were rejected "
-                "(see the errors).",
+                f"{len(review.errors)} inbound message{'s' if len(review.errors) > 1 else ''} "
+                "naming this order rejected (see the errors).",
                 problem=True,
             )
         )

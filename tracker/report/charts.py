@@ -122,6 +122,31 @@ def participation(review: OrderReview) -> str | None:
     return chart.render()
 
 
+def volume(review: OrderReview) -> str | None:
+    """Per bin: the market's volume against the forecast the plan used; None without bins."""
+    if not review.has_market:
+        return None
+    chart = _chart(review, f"{review.order_id}: market volume", "shares per bin", 220)
+    if chart is None:
+        return None
+    rows = review.bins
+    chart.include(0.0, *(r.volume for r in rows), *(r.forecast_volume for r in rows))
+    chart.bars(
+        [(r.start, r.end, float(r.volume or 0.0)) for r in rows if r.volume is not None],
+        gid="volume",
+        colour=MARKET,
+        label="market volume",
+    )
+    forecast = [
+        p
+        for r in rows
+        if r.forecast_volume is not None
+        for p in ((r.start, r.forecast_volume), (r.end, r.forecast_volume))
+    ]
+    chart.line(forecast, gid="forecast", colour=PLAN, width=1.5, label="forecast before the bin")
+    return chart.render()
+
+
 def prices(review: OrderReview) -> str | None:
     """Bin VWAP and range, the fills, the arrival price and the limit; None without bins."""
     if not review.has_market:
@@ -152,5 +177,6 @@ CHARTS = (
     ("progress", progress),
     ("bins", bins),
     ("participation", participation),
+    ("volume", volume),
     ("prices", prices),
 )
