@@ -288,10 +288,14 @@ def header_lines(plan: OrderPlan, order_id: str) -> list[str]:
     cap = (
         "no cap" if plan.max_participation is None else f"cap {100 * plan.max_participation:.1f} %"
     )
+    reached = plan.milestones()
     done = ", ".join(
-        f"{round(100 * fraction)} % by {'never (capped)' if when is None else f'{when:%H:%M}'}"
-        for fraction, when in plan.milestones().items()
+        f"{round(100 * fraction)} % {'never' if when is None else f'by {when:%H:%M}'}"
+        for fraction, when in reached.items()
     )
+    if None in reached.values():
+        planned = sum(b.quantity for b in plan.bins)
+        done += f" (the plan ends at {100 * planned / plan.quantity:.1f} % of the order)"
     width = max(1, int((plan.bins[-1].end - plan.bins[-1].start).total_seconds() // 60))
     lines = [
         f"{order_id}: {verb} {plan.quantity:,.0f} {plan.symbol} at arrival price "
