@@ -17,10 +17,10 @@ attribution; for an output folder those parts say "not available".
 The first section lists every order, problems first (a residual, a critical alert, a cost far
 above the plan's expected cost, rejected messages), linked to its section: plan against realized
 (every re-plan faint), target and filled per bin, participation against the cap, the market's
-volume against the forecast, fills against the bin VWAP, the alert timeline, the errors, the cost in parts (spread, impact, timing,
-opportunity) that add up to the shortfall against arrival, and a list of what happened. Times are
-the venue's local time (the zone of the symbol's profile; the default session is
-America/New_York).
+volume against the forecast, fills against the bin VWAP, the alert timeline, the errors, the
+cost in parts (spread, impact, timing, opportunity) that add up to the shortfall against
+arrival, and a list of what happened. Times are the venue's local time (the zone of the
+symbol's profile; the default session is America/New_York).
 """
 
 
