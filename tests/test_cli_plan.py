@@ -95,3 +95,37 @@ def test_forced_shortfall_writes_null_objective(
         out["cost"]["terminal_penalty"],
         out["shortfall"],
     )
+
+
+def test_solver_failure_is_one_line_and_exit_2(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A problem the solver cannot solve ends in one line naming it and exit code 2, no trace."""
+    import tracker.cli.plan as plan_module
+    from tracker.errors import SolveError
+
+    def failing(*args: object, **kwargs: object) -> object:
+        raise SolveError("the interior-point method did not converge in 200 iterations")
+
+    monkeypatch.setattr(plan_module, "solve", failing)
+    path = tmp_path / "problem.json"
+    path.write_text(
+        json.dumps(
+            {
+                "quantity": 1000,
+                "bins": 4,
+                "fixed_cost": 0.01,
+                "temporary_impact": 0.001,
+                "impact_exponent": 0.5,
+                "permanent_impact": 0.0,
+                "inventory_penalty": 1e-6,
+                "penalty_exponent": 1.5,
+                "terminal_penalty": "force",
+                "caps": None,
+            }
+        )
+    )
+    assert 2 == main(["plan", "--problem", str(path)])
+    err = capsys.readouterr().err
+    assert 1 == len(err.strip().splitlines())
+    assert "could not solve" in err

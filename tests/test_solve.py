@@ -244,3 +244,84 @@ def test_newton_solve_matches_scipy(diagonal: list[float], module: kernel.Kernel
     actual = b.copy()
     module.tridiagonal(d, e, actual)
     np.testing.assert_allclose(actual, expected, rtol=1e-13, atol=1e-13)
+
+
+def test_quantity_a_few_ulps_below_the_caps_is_traded_at_the_caps() -> None:
+    """Forced completion with no room left (capacity = quantity up to rounding) trades every cap.
+
+    0.55 x 400,000 is 219,999.99999999997 in binary floating point: eleven caps of 20,000 hold it
+    with 3e-11 shares to spare, an interior the interior-point method cannot start from.
+    """
+    quantity = float(np.linspace(0.05, 1.0, 20)[10] * 400_000)
+    problem = Problem(
+        quantity=quantity,
+        bins=11,
+        fixed_cost=0.01,
+        temporary_impact=2e-6,
+        impact_exponent=0.5,
+        inventory_penalty=1e-9,
+        penalty_exponent=1.5,
+        terminal_penalty="force",
+        caps=20_000,
+    )
+    schedule = solve(problem)
+    assert (OPTIMAL, "at_caps") == (schedule.status, schedule.method)
+    assert quantity == pytest.approx(float(schedule.trades.sum()), rel=1e-15)
+    np.testing.assert_allclose(schedule.trades, quantity / 11, rtol=1e-15)
+
+
+def test_explain_solves_the_readme_example() -> None:
+    """The README's example: explain() solves every (bin, inventory) problem it builds."""
+    from tracker import explain
+
+    problem = Problem(
+        quantity=400_000,
+        bins=78,
+        fixed_cost=0.01,
+        temporary_impact=2e-6,
+        impact_exponent=0.5,
+        inventory_penalty=1e-9,
+        penalty_exponent=1.5,
+        terminal_penalty="force",
+        caps=20_000,
+    )
+    policy = explain(problem)
+    assert (78, 20) == policy.trades.shape
+    assert np.isfinite(policy.trades).all()
+    # The grid's fractions x 400,000 meet the remaining capacity exactly at some bins: there the
+    # first trade is the cap (nothing else completes the order).
+    assert 20_000 == pytest.approx(float(policy.trades[67, 10]), rel=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("beta", "p", "caps", "terminal"),
+    [
+        (0.5, 1.5, 20_000, "force"),
+        (0.5, 2.0, 20_000, "force"),
+        (1.0, 1.5, 20_000, "force"),
+        (0.6, 3.0, 20_000, "force"),
+        (0.5, 1.5, 5_000, "force"),
+        (0.5, 1.5, 20_000, 1e-6),
+        (1.0, 2.0, None, "force"),
+    ],
+    ids=["sqrt-1.5", "sqrt-2", "linear-1.5", "power-3", "caps-short", "soft-end", "riccati"],
+)
+def test_explain_family_never_fails(
+    beta: float, p: float, caps: float | None, terminal: float | str
+) -> None:
+    """Every problem explain() builds (every bin, every grid inventory) is solved, with or
+    without caps that meet the inventory exactly, forced or not."""
+    from tracker import explain
+
+    problem = Problem(
+        quantity=400_000,
+        bins=78,
+        fixed_cost=0.01,
+        temporary_impact=2e-6,
+        impact_exponent=beta,
+        inventory_penalty=1e-9,
+        penalty_exponent=p,
+        terminal_penalty=terminal,
+        caps=caps,
+    )
+    assert np.isfinite(explain(problem).trades).all()

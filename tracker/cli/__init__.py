@@ -13,7 +13,7 @@ import importlib
 import sys
 from collections.abc import Sequence
 
-from tracker.errors import InputError
+from tracker.errors import InputError, SolveError
 
 #: Sub-command modules, in the order ``--help`` lists them.
 COMMANDS: tuple[str, ...] = (
@@ -58,5 +58,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         code: int = args.handler(args)
     except InputError as exc:
         print(f"tracker {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except SolveError as exc:  # a valid input we could not solve: said in one line, not a trace
+        print(f"tracker {args.command}: error: could not solve: {exc}", file=sys.stderr)
         return 2
     return code

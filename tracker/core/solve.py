@@ -74,6 +74,10 @@ COST_TERMS: Final = (
 #: Default stopping tolerance of the interior-point path (relative to the objective).
 TOLERANCE: Final = 1e-10
 
+#: When completion is forced and the caps exceed the quantity by no more than this fraction of it,
+#: the caps decide the schedule alone (see ``_closed_form``).
+AT_CAPS_TOLERANCE: Final = 1e-12
+
 _MAX_ITERATIONS: Final = 200
 
 
@@ -333,9 +337,17 @@ def _closed_form(problem: Problem) -> Schedule | None:
     tradeable = np.arange(problem.bins) if caps is None else np.flatnonzero(caps > 0.0)
     if tradeable.size == 0:
         return _finish(problem, np.zeros(problem.bins), "at_caps", 0)
-    if problem.forced and caps is not None and float(caps.sum()) <= quantity:
-        # Completion is required and the caps allow at most the quantity: trade every cap.
-        return _finish(problem, caps.copy(), "at_caps", 0)
+    if problem.forced and caps is not None:
+        capacity = float(caps.sum())
+        if capacity <= quantity:
+            # Completion is required and the caps allow at most the quantity: trade every cap.
+            return _finish(problem, caps.copy(), "at_caps", 0)
+        if capacity - quantity <= AT_CAPS_TOLERANCE * quantity:
+            # The caps leave no room to choose (the quantity is the capacity up to rounding, as
+            # when 0.55 x 400,000 comes out a few ulps below 220,000): the only schedule is
+            # every cap, scaled to the quantity. The interior-point method would find no
+            # interior to start from.
+            return _finish(problem, caps * (quantity / capacity), "at_caps", 0)
     if problem.forced and tradeable.size == 1:
         trades = np.zeros(problem.bins)
         trades[tradeable[0]] = quantity
