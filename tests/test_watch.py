@@ -166,18 +166,23 @@ def test_cost_so_far_is_the_shortfall_against_arrival(
 
 
 def test_participation_is_the_orders_fills_over_the_bins_volume() -> None:
-    """2,000 shares filled between two bin closes of 20,000 traded: 10 % (common practice)."""
-
-    def bin_payload(start: str, end: str) -> bytes:
-        message = {"type": "bin", "symbol": "ZEPH", "start": start, "end": end, "volume": 20_000}
-        return json.dumps(message).encode()
-
+    """2,000 shares filled in a bin of 20,000 traded: 10 % (common practice: share of volume)."""
+    volume = {"type": "bin", "symbol": "ZEPH", "start": "2026-03-10T15:25:00Z"}
+    volume |= {"end": "2026-03-10T15:30:00Z", "volume": 20_000}
+    # Made at the 15:25 close with 43,500 filled; the next at the 15:30 close with 45,500 filled.
     board = board_with(
-        ("status/ZEPH-B1", status(filled=45_175)),
-        ("bins/ZEPH", bin_payload("2026-03-10T15:20:00Z", "2026-03-10T15:25:00Z")),
-        ("status/ZEPH-B1", status(filled=46_000)),
-        ("status/ZEPH-B1", status(filled=47_175)),
-        ("bins/ZEPH", bin_payload("2026-03-10T15:25:00Z", "2026-03-10T15:30:00Z")),
+        ("status/ZEPH-B1", status()),
+        ("targets/ZEPH-B1", target()),
+        ("bins/ZEPH", json.dumps(volume).encode()),
+        (
+            "targets/ZEPH-B1",
+            target(
+                bin_start="2026-03-10T15:30:00Z",
+                bin_end="2026-03-10T15:35:00Z",
+                quantity=2_400,
+                cumulative_target=47_900,
+            ),
+        ),
     )
     assert 0.10 == pytest.approx(board.orders["ZEPH-B1"].participation)
 

@@ -358,7 +358,9 @@ class Watch:
                 )
                 return
         else:
-            live = [v for v in self.board.orders.values() if not v.finished]
+            live = [
+                v for v in self.board.orders.values() if v.state in ("pending", "working", "halted")
+            ]
             done = [v.order_id for v in live if v.state in wanted]
             if live and len(done) == len(live):
                 self._sent = None

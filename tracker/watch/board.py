@@ -17,8 +17,8 @@ Sources, all under ``{root}/`` (wire contract v1, see ``tracker/edge/wire.py``):
 * ``alerts/{order_id}`` and ``alerts`` (symbol-wide): raised and cleared alerts.
 * ``health/{instance}`` (retained; ``offline`` as the last will): which daemons are up.
 * ``bins/{symbol}`` (what the daemon reads; we only look): the bin length, whether market data
-  still arrives, and each order's share of the bin's volume (participation: what its status says
-  was filled between two bin closes, over the bin's volume).
+  still arrives, and the bin's volume: an order's participation is what it filled between two
+  bin closes (from two targets) over the volume of the bin between them.
 * ``fills/{order_id}``: the last fills of the order whose detail is open.
 * ``orders/{order_id}``: the participation cap (``max_participation``) when the view sees the order
   message; a later daemon that states the cap on its targets or status is read the same way.
@@ -60,6 +60,8 @@ TARGET_HISTORY = 400
 FILL_HISTORY = 200
 #: Alerts kept in the feed.
 ALERT_FEED = 500
+#: Bin volumes kept per symbol (to match a target's bin close with the bin that closed).
+VOLUMES_KEPT = 8
 #: A daemon whose heartbeat is this many intervals late is shown as silent.
 SILENT_INTERVALS = 3.0
 
@@ -240,7 +242,7 @@ class Board:
         self.version = 0  # bumped by every message that changed something
         self._daemon_ts: datetime | None = None
         self._daemon_seen = started
-        self._bin_filled: dict[str, int] = {}  # order id -> filled at its symbol's last bin
+        self._volumes: dict[str, dict[datetime, int]] = {}  # symbol -> bin end -> volume
 
     # -- intake ----------------------------------------------------------------------------------
 
@@ -341,12 +343,16 @@ class Board:
             plan_version=as_int(data, "plan_version"),
             max_quantity=as_int(data, "max_quantity"),
         )
+        previous = view.target
         view.target = point
         view.targets.append(point)
         cap = as_float(data, "max_participation")
         view.max_participation = cap if cap is not None else view.max_participation
         rate = as_float(data, "participation")
-        view.participation = rate if rate is not None else view.participation
+        if rate is not None:  # a daemon that states it
+            view.participation = rate
+        elif previous is not None:
+            self._participation(view, previous, point)
         if point.bin_start is not None and point.bin_end is not None:
             self._bin_length(point.bin_start, point.bin_end)
         self._daemon_time(point.ts, now)
@@ -412,15 +418,31 @@ class Board:
         if not retained:
             self.last_data = now
         volume = as_int(data, "volume")
-        for view in self.orders.values():
-            if view.symbol != symbol or view.filled is None:
-                continue
-            before = self._bin_filled.get(view.order_id)
-            self._bin_filled[view.order_id] = view.filled
-            if before is not None and volume is not None and volume > 0:
-                # Filled between two bin closes of the symbol, over the bin's volume: the fills
-                # of a bin reach the daemon during it, its bin message at its close.
-                view.participation = max(0, view.filled - before) / volume
+        if end is not None and volume is not None:
+            volumes = self._volumes.setdefault(symbol, {})
+            volumes[end] = volume
+            while len(volumes) > VOLUMES_KEPT:
+                del volumes[min(volumes)]
+
+    def _participation(self, view: OrderView, previous: TargetPoint, point: TargetPoint) -> None:
+        """The order's share of the bin that just closed, from two targets and the bin's volume.
+
+        A target's ``cumulative_target - quantity`` is what the order had filled when the daemon
+        made it, at a bin close; the difference between two consecutive closes is what it filled
+        in the bin between them. Judged on the daemon's own outputs, so it does not depend on
+        whether the view saw the market's bin before or after the daemon's fills.
+        """
+        if view.symbol is None or point.bin_start is None or point.bin_start == previous.bin_start:
+            return
+        values = (point.cumulative, point.quantity, previous.cumulative, previous.quantity)
+        if any(value is None for value in values):
+            return
+        volume = self._volumes.get(view.symbol, {}).get(point.bin_start)
+        if not volume or volume <= 0:
+            return
+        now_filled = point.cumulative - point.quantity  # type: ignore[operator]
+        then_filled = previous.cumulative - previous.quantity  # type: ignore[operator]
+        view.participation = max(0, now_filled - then_filled) / volume
 
     def _fill(self, order_id: str, data: dict[str, Any]) -> None:
         view = self.orders.get(order_id)
@@ -487,7 +509,13 @@ class Board:
         for name in sorted(self.instances):
             instance = self.instances[name]
             if not instance.online:
-                found.append(Banner("offline", f"daemon {name} is OFFLINE"))
+                found.append(
+                    Banner(
+                        "offline",
+                        f"daemon {name} is OFFLINE: what it published last stays below; it "
+                        "re-plans nothing until it is back",
+                    )
+                )
             elif (
                 instance.interval is not None
                 and now - instance.seen > SILENT_INTERVALS * instance.interval + 5.0

@@ -278,6 +278,18 @@ _COLUMNS: tuple[tuple[str, str, int], ...] = (
 ALERT_WIDTH = 22
 
 
+def _alert_cell(view: OrderView, board: Board, zone: tzinfo) -> Text:
+    """The last alert; but when a critical one is what ranks the order first, that one."""
+    critical = view.critical_open()
+    if critical:
+        return Text(" ".join(critical).replace("_", " "), style=_SEVERITY_STYLE["critical"])
+    symbol_wide = [] if view.finished else board.symbol_critical(view.symbol)
+    if symbol_wide:
+        words = " ".join(symbol_wide).replace("_", " ")
+        return Text(f"{words} ({view.symbol})", style=_SEVERITY_STYLE["critical"])
+    return last_alert(view.last_alert, zone)
+
+
 def _cells(view: OrderView, board: Board, selected: bool) -> list[Text | str]:
     rank = attention(view, board)
     filled = (
@@ -342,7 +354,7 @@ def _orders(board: Board, state: ViewState, zone: tzinfo, room: int, width: int)
         selected = view.order_id == state.selected
         table.add_row(
             *[row[i] for i in keep],
-            last_alert(view.last_alert, zone),
+            _alert_cell(view, board, zone),
             style="reverse" if selected else ("on dark_red" if rank == 0 else None),
         )
     if not listed:
@@ -396,8 +408,8 @@ def _health(board: Board, now: float, zone: tzinfo) -> list[Text]:
 
 def _footer(state: ViewState) -> Text:
     if state.prompt is not None:
-        return Text(f" {state.prompt}", style="bold black on yellow")
-    line = Text()
+        return Text(f" {state.prompt}", style="bold black on yellow", no_wrap=True)
+    line = Text(no_wrap=True, overflow="ellipsis")
     if state.notice:
         line.append(f" {state.notice} ", style=state.notice_style or "bold")
         line.append("  ")
