@@ -337,3 +337,11 @@ def test_a_journal_gives_the_same_review_as_its_recording(golden: Report, tmp_pa
         ]
 
     assert (report.day.source, facts(report)) == ("journal", facts(golden))
+
+
+def test_the_observed_replay_writes_the_golden_files(tmp_path: Path) -> None:
+    """--keep-replay: the replay under the report's observer is byte for byte the golden one."""
+    assert 0 == main(["report", str(GOLDEN_DAY), "--out", str(tmp_path), "--keep-replay"])
+    names = ("targets.jsonl", "alerts.jsonl", "status.jsonl", "errors.jsonl", "summary.json")
+    written = [(tmp_path / "replay" / name).read_bytes() for name in names]
+    assert [(GOLDEN_OUTPUTS / name).read_bytes() for name in names] == written

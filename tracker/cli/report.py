@@ -10,9 +10,9 @@ Write the end-of-day review of a day: DIR/report.html (one self-contained file: 
 inline, no script, nothing fetched when it is opened) and the charts as DIR/charts/*.svg.
 
 INPUT is a replay output folder (`tracker replay DAY --out FOLDER`), a JSON Lines recording or a
-daemon journal. A recording or journal is replayed first (its outputs go to DIR/replay/), which
-adds what an output folder lacks: the market bins, the fills, every plan version and the cost
-attribution; for an output folder those parts say "not available".
+daemon journal. A recording or journal is replayed first (--keep-replay also writes the replay's
+files to DIR/replay/), which adds what an output folder lacks: the market bins, the fills, every
+plan version and the cost attribution; for an output folder those parts say "not available".
 
 The first section lists every order, problems first (a residual, a critical alert, a cost far
 above the plan's expected cost, rejected messages), linked to its section: plan against realized
@@ -54,6 +54,12 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "`tracker replay`",
     )
     parser.add_argument("--root", help="MQTT topic root of the recording (default: tracker)")
+    parser.add_argument(
+        "--keep-replay",
+        action="store_true",
+        help="for a recording or journal, also write the replay's output files (as `tracker "
+        "replay` does) to DIR/replay/",
+    )
     parser.set_defaults(handler=run)
 
 
@@ -68,7 +74,12 @@ def run(args: argparse.Namespace) -> int:
     root = validate_root(args.root or config_root or DEFAULT_ROOT, field="--root")
     profiles = load_profiles(Path(args.profiles)) if args.profiles else {}
     report = build_report(
-        Path(args.input), Path(args.out), profiles=profiles, config=config, root=root
+        Path(args.input),
+        Path(args.out),
+        profiles=profiles,
+        config=config,
+        root=root,
+        keep_replay=args.keep_replay,
     )
     flagged = [r for r in report.orders if r.problems]
     print(

@@ -10,11 +10,11 @@ A review starts from one of two things:
   counted. The folder holds no market bins, no fills and no full plans, so the parts of the report
   that need them say "not available".
 * a recording (JSON Lines) or a daemon's journal: it is replayed first
-  (:func:`tracker.shell.replay.replay`, the same run ``tracker replay`` makes, its outputs written
-  to ``DIR/replay/``), with an observer around the engine that keeps what the engine accepted
-  (orders, amends, cancels, halts, fills, market bins) and the path of every plan version. The
-  forecast volume of each bin is recomputed with the engine's own forecast function
-  (:func:`tracker.core.forecast.forecast`) from the bins seen before it.
+  (:func:`tracker.shell.replay.replay`, the same run ``tracker replay`` makes; its output files
+  are written to ``DIR/replay/`` on request), with an observer around the engine that keeps
+  what the engine accepted (orders, amends, cancels, halts, fills, market bins) and the path of
+  every plan version. The forecast volume of each bin is recomputed with the engine's own
+  forecast function (:func:`tracker.core.forecast.forecast`) from the bins seen before it.
 
 The plan paths are read from the engine's per-order state after each step (the wire carries only
 the next bin's target). That state is private to the engine: :func:`_plan_of` reads it defensively
@@ -266,26 +266,31 @@ class Observer:
         return self.handle_many([event])[0]
 
     def handle_many(self, events: Sequence[Any]) -> list[list[Outbound]]:
-        """Apply events in order, in the engine's own batches, observing each run."""
+        """Apply events in order, in runs, observing each run.
+
+        A run is the bins of one bin close (one per symbol, as the engine batches them) or
+        consecutive fills (a fill re-plans nothing, though it may start an order that was due:
+        once); anything else runs alone. So no order gets two new plans within a run.
+        """
         results: list[list[Outbound]] = []
         run: list[Any] = []
+        kind = ""
         symbols: set[str] = set()
         for event in events:
-            joins = (
-                isinstance(event, BinMessage)
-                and run
-                and event.symbol not in symbols
-                and event.ts == run[0].ts
-            )
-            if not joins and run:
+            if isinstance(event, BinMessage):
+                joins = kind == "bins" and event.symbol not in symbols and event.ts == run[0].ts
+                now = "bins"
+            elif isinstance(event, FillMessage):
+                joins, now = kind == "fills", "fills"
+            else:
+                joins, now = False, "other"
+            if run and not joins:
                 results += self._run(run)
                 run, symbols = [], set()
             run.append(event)
+            kind = now
             if isinstance(event, BinMessage):
                 symbols.add(event.symbol)
-            else:
-                results += self._run(run)
-                run, symbols = [], set()
         if run:
             results += self._run(run)
         return results
@@ -430,15 +435,18 @@ def read_recording(
     profiles: Mapping[str, Profile] | None = None,
     config: Any = None,
     root: str | None = None,
+    keep_replay: bool = False,
 ) -> ReviewDay:
-    """Replay a recording or journal (outputs to ``out_dir / "replay"``) and observe it.
+    """Replay a recording or journal and observe it.
 
     Args:
         path: A JSON Lines recording or a daemon journal.
-        out_dir: The report folder; the replay's files go to its ``replay`` sub-folder.
+        out_dir: The report folder.
         profiles: Liquidity profiles by symbol (as ``tracker replay --profiles``).
         config: Engine settings (as ``tracker replay --config``).
         root: The recording's MQTT topic root.
+        keep_replay: Also write the replay's output files to ``out_dir / "replay"`` (what
+            ``tracker replay`` writes).
 
     Raises:
         InputError: The input cannot be read or the folder written.
@@ -452,7 +460,8 @@ def read_recording(
     engine = Engine(config=config, profiles=given, root=root or DEFAULT_ROOT)
     observer = Observer(engine)
     result = replay(records, observer, root or DEFAULT_ROOT)
-    write_outputs(result, out_dir / "replay")  # the desk gets the replay's files too
+    if keep_replay:
+        write_outputs(result, out_dir / "replay")
     day = ReviewDay(
         source="journal" if is_journal(path) else "recording",
         input=path,

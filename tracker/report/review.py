@@ -63,6 +63,7 @@ def load(
     profiles: Mapping[str, Profile] | None = None,
     config: Any = None,
     root: str | None = None,
+    keep_replay: bool = False,
 ) -> ReviewDay:
     """Read INPUT: a replay output folder, or a recording/journal to replay first.
 
@@ -77,7 +78,9 @@ def load(
             "journal",
             field="INPUT",
         )
-    return read_recording(path, out_dir, profiles=profiles, config=config, root=root)
+    return read_recording(
+        path, out_dir, profiles=profiles, config=config, root=root, keep_replay=keep_replay
+    )
 
 
 def build_report(
@@ -87,15 +90,17 @@ def build_report(
     profiles: Mapping[str, Profile] | None = None,
     config: Any = None,
     root: str | None = None,
+    keep_replay: bool = False,
 ) -> Report:
     """Write ``out_dir/report.html`` and ``out_dir/charts/*.svg`` for the day in ``path``.
 
     Args:
         path: A replay output folder, a JSON Lines recording or a daemon journal.
-        out_dir: The report folder (created; a recording's replay goes to ``out_dir/replay``).
+        out_dir: The report folder (created).
         profiles: Liquidity profiles by symbol (their sessions set the venue's timezone).
         config: Engine settings for the replay of a recording.
         root: MQTT topic root of the recording.
+        keep_replay: For a recording, also write the replay's files to ``out_dir/replay``.
 
     Returns:
         The paths written and the reviews.
@@ -108,7 +113,7 @@ def build_report(
         (out_dir / "charts").mkdir(exist_ok=True)
     except OSError as exc:
         raise InputError(f"cannot write to {out_dir}: {exc.strerror}", field="--out") from exc
-    day = load(path, out_dir, profiles=profiles, config=config, root=root)
+    day = load(path, out_dir, profiles=profiles, config=config, root=root, keep_replay=keep_replay)
     reviews = review_day(day)
     written: list[Path] = []
     sections: list[str] = []
