@@ -5,7 +5,7 @@ from __future__ import annotations
 import asyncio
 import json
 from collections.abc import Iterator
-from datetime import datetime
+from datetime import datetime, timedelta
 from pathlib import Path
 
 import aiomqtt
@@ -24,8 +24,10 @@ from tests.brokers import (
     publish_all,
     wait_until,
 )
+from tracker.core.formats import utc_text
 from tracker.shell.config import BrokerSettings, Settings
 from tracker.shell.daemon import Daemon
+from tracker.shell.journal import read_journal
 
 pytestmark = pytest.mark.broker
 
@@ -313,3 +315,57 @@ def test_journal_deleted_while_running_stops_and_loses_nothing(
     failure = asyncio.run(scenario())
     assert failure is not None and "deleted or replaced" in str(failure)
     assert [_fill_message(root, 2)] == journaled(second_journal, root)
+
+
+def test_no_ticks_are_journaled_while_nothing_waits_on_time(
+    tmp_path: Path, mosquitto: PrivateMosquitto
+) -> None:
+    """With no order, only the start tick is journaled; an order's start brings the ticks back."""
+    root = "quiet"
+    start = datetime.fromisoformat(day_start())
+    settings = Settings(
+        journal=tmp_path / "journal.sqlite",
+        broker=BrokerSettings(port=mosquitto.port),
+        root=root,
+        instance="quiet",
+        clock_start=start,
+        clock_speed=60.0,  # a simulated minute per second
+        tick_seconds=1.0,
+        heartbeat_seconds=1.0,
+    )
+    order = {
+        "type": "order",
+        "action": "new",
+        "order_id": "ZEPH-Q1",
+        "symbol": "ZEPH",
+        "side": "buy",
+        "quantity": 1_000,
+        "start": utc_text(start + timedelta(minutes=3)),
+        "end": utc_text(start + timedelta(hours=2)),
+        "ts": utc_text(start),
+    }
+
+    def ticks(path: Path) -> int:
+        return sum(1 for record in read_journal(path) if record.topic == f"{root}/tick")
+
+    async def scenario() -> tuple[int, int, str | None]:
+        async with Daemon(settings) as daemon:
+            task = asyncio.create_task(daemon.run())
+            await asyncio.wait_for(daemon.bus.connected.wait(), 30)
+            await asyncio.sleep(2.5)  # two and a half simulated minutes, nothing to wait for
+            quiet = ticks(settings.journal)
+            message = (f"{root}/orders/ZEPH-Q1", json.dumps(order).encode())
+            await publish_all(mosquitto.port, [message], client_id="quiet-pub")
+            await async_wait_until(
+                lambda: daemon.engine.state_of("ZEPH-Q1") is not None, 30, "the order"
+            )
+            await asyncio.sleep(4.0)  # its start (3 simulated minutes in) passes meanwhile
+            state = daemon.engine.state_of("ZEPH-Q1")
+            daemon.stop()
+            await asyncio.wait_for(task, 60)
+            return quiet, ticks(settings.journal), None if state is None else state.value
+
+    quiet, later, state = asyncio.run(scenario())
+    assert 1 == quiet
+    assert later > 1
+    assert "working" == state

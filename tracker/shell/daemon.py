@@ -28,7 +28,9 @@ engine before it connects; outputs of records after the journal's ``published_th
 
 Time: the engine learns that time passes from :class:`tracker.edge.wire.Tick` events, which only
 this shell makes: one when the daemon starts (so a journal always holds ticks and a replay never
-invents any) and one every ``tick_seconds`` of the daemon's clock. Ticks are journaled like
+invents any) and then one every ``tick_seconds`` of the daemon's clock while something waits on
+time (:meth:`Engine.next_deadline <tracker.core.engine.Engine.next_deadline>` has passed: an order
+to start or expire, a bin overdue); a quiet night journals none. Ticks are journaled like
 messages. The clock is the wall clock in UTC, or a simulated one (``clock_start`` and
 ``clock_speed``, for the demo); either way the receive times it stamps never go backwards.
 
@@ -440,7 +442,20 @@ class Daemon:
             await asyncio.sleep(interval)
             if self.inbox.full():
                 continue  # time still passes: the next tick says so; no need to wait in line
+            if not self._tick_due():
+                continue  # nothing waits on time: no tick, and nothing journaled for it
             self.inbox.put_nowait(_TICK)
+
+    def _tick_due(self) -> bool:
+        """Whether time alone would change something now (an order starts or expires, a bin is
+        overdue). Outside sessions and with nothing working the journal then holds no ticks, so
+        a restart has that much less to replay."""
+        assert self._clock is not None
+        next_deadline = getattr(self.engine, "next_deadline", None)
+        if next_deadline is None:
+            return True  # an engine that cannot say: tick as before
+        deadline = next_deadline()
+        return deadline is not None and self._clock() >= deadline
 
     async def _journal_stage(self) -> None:
         """Stage 1: group what waits in the inbox, journal it, acknowledge it, pass it on.

@@ -241,6 +241,21 @@ class Engine:
         order = self._state.orders.get(order_id)
         return order.filled if order else 0
 
+    def next_deadline(self) -> datetime | None:
+        """The earliest event time at which the passage of time alone changes something.
+
+        An order starts or expires, or a watched symbol's next bin becomes overdue. Before it, a
+        :class:`~tracker.core.messages.Tick` changes nothing, so a shell need not inject one (the
+        live daemon journals ticks only from then on). ``None``: nothing waits on time.
+        """
+        state = self._state
+        candidates = [
+            *([state.starts[0][0]] if state.starts else []),
+            *([state.ends[0][0] + state.grace] if state.ends else []),
+            *([state.stale_due] if state.stale_due is not None else []),
+        ]
+        return min(candidates) if candidates else None
+
     # ---------------------------------------------------------------- one event
 
     def _prepare(self, event: Inbound, step: Step) -> list[Outbound] | None:
