@@ -1,5 +1,6 @@
 """The README's promises that a machine can check."""
 
+from datetime import date
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -43,3 +44,25 @@ def test_readme_carries_the_cautions() -> None:
         "regulation",
     ):
         assert phrase in text
+
+
+def test_readme_example_order_is_a_whole_session_near_the_demo_price() -> None:
+    """The README's example order decodes, spans exactly the session's 78 bins in New York time
+    (09:30-16:00, daylight saving time included: common practice for US equities) and names an
+    arrival price within 5 % of ZEPH's first bin on that day of the invented recording shipped
+    beside it."""
+    import json
+
+    from tracker.core.session import Session
+    from tracker.edge.wire import decode
+
+    text = (ROOT / "README.md").read_text()
+    block = text.split("with an `order.json` such as", 1)[1].split("```json", 1)[1].split("```")[0]
+    order = decode("tracker/orders/ZEPH-B1", json.loads(block))
+    first, end, fraction = Session().bin_span(order.start, order.end)  # type: ignore[attr-defined]
+    assert (0, 78, 1.0) == (first, end, fraction)
+    day = ROOT / "replay_data" / "day-2026-03-10-seed7.jsonl"
+    lines = [json.loads(line) for line in day.read_text().splitlines() if line.strip()]
+    first_bin = next(line["payload"] for line in lines if line["topic"].endswith("/bins/ZEPH"))
+    assert order.start.date() == date.fromisoformat(first_bin["start"][:10])  # type: ignore[attr-defined]
+    assert abs(order.arrival_price / first_bin["open"] - 1) < 0.05  # type: ignore[attr-defined]
