@@ -187,6 +187,7 @@ class OrderReview:
     market_curve: list[Point] = field(default_factory=list)
     market_curve_source: str = ""
     fills: list[Fill] = field(default_factory=list)
+    fill_rows: list[int] = field(default_factory=list)
     alerts: list[dict[str, Any]] = field(default_factory=list)
     errors: list[dict[str, Any]] = field(default_factory=list)
     events: list[OrderEvent] = field(default_factory=list)
@@ -409,7 +410,6 @@ def _bins(
     status: list[dict[str, Any]],
     first_status: dict[str, Any] | None,
 ) -> None:
-    session = day.session(review.symbol)
     spans = _order_day_bins(day, review, targets, status)
     by_start: dict[datetime, dict[str, Any]] = {}
     for target in targets:
@@ -459,24 +459,33 @@ def _bins(
         if bar is not None:
             previous_close = bar.close
         rows.append(row)
+    review.bins = rows
     if day.fills is not None:
-        _fills_into(rows, review.fills, session)
+        _fills_into(review)
     else:
         _status_fills_into(rows, status)
-    review.bins = rows
 
 
-def _fills_into(rows: list[BinRow], fills: list[Fill], session: Any) -> None:
-    if not rows:
+def _fills_into(review: OrderReview) -> None:
+    """Each fill into the row of its bin (by its time); filled shares and price per row.
+
+    ``review.fill_rows`` keeps each fill's row (-1: outside every row's bin). A fill before the
+    first row or after the last counts in that row's filled shares.
+    """
+    rows = review.bins
+    if not rows or not review.fills:
+        review.fill_rows = [-1] * len(review.fills)
         return
+    edges = np.array([rows[0].start.timestamp(), *(row.end.timestamp() for row in rows)])
+    starts = np.array([row.start.timestamp() for row in rows])
+    times = np.array([fill.ts.timestamp() for fill in review.fills])
+    slots = np.searchsorted(edges, times, side="right") - 1
+    inside = (slots >= 0) & (slots < len(rows))
+    inside &= times >= starts[np.clip(slots, 0, len(rows) - 1)]  # rows may leave gaps
+    review.fill_rows = np.where(inside, slots, -1).tolist()
+    counted = np.clip(slots, 0, len(rows) - 1).tolist()
     notional = [0.0] * len(rows)
-    first_index = rows[0].index
-    for fill in fills:
-        index = session.bin_index(fill.ts)
-        if index is None:
-            position = session.bin_offset(fill.ts)
-            index = rows[0].index if position < 0 else rows[-1].index
-        offset = min(max(index - first_index, 0), len(rows) - 1)
+    for fill, offset in zip(review.fills, counted, strict=True):
         rows[offset].filled += fill.quantity
         notional[offset] += fill.quantity * fill.price
     for row, value in zip(rows, notional, strict=True):
@@ -566,7 +575,7 @@ def _paths(day: ReviewDay, review: OrderReview, status: list[dict[str, Any]]) ->
     review.edges = (*(start for start, _ in regular), regular[-1][1])
     for path in (day.plans or {}).get(review.order_id, []):
         room = len(regular) - path.first_bin  # bins of the day from the plan's first
-        if path.first_bin < 0 or room <= 0 or not path.cumulative:
+        if path.first_bin < 0 or room <= 0 or len(path.cumulative) == 0:
             continue
         values = np.empty(min(len(path.cumulative), room) + 1)
         values[0] = 0.0
@@ -605,25 +614,20 @@ def _attribution(
         return None
     p0 = review.arrival_price
     sign = 1.0 if review.side == "buy" else -1.0
-    session = day.session(review.symbol)
     market = (day.market or {}).get(review.symbol, {})
-    regular: dict[int, tuple[datetime, datetime]] = {}
-    if review.bins:
-        for index, span in enumerate(session.bins(review.bins[0].start.date())):
-            regular[index] = span
+    rows = review.bins
     spread = impact = timing = 0.0
     unpriced = 0
-    for fill in review.fills:
-        slot = session.bin_index(fill.ts)
-        bar = market.get(regular[slot][0]) if slot is not None and slot in regular else None
-        if bar is None or bar.vwap is None:
+    for fill, slot in zip(review.fills, review.fill_rows, strict=True):
+        row = rows[slot] if slot >= 0 else None
+        if row is None or row.vwap is None or row.spread is None:
             unpriced += 1
             timing += sign * fill.quantity * (fill.price - p0)
             continue
-        half = fill.quantity * bar.spread / 2.0
+        half = fill.quantity * row.spread / 2.0
         spread += half
-        impact += sign * fill.quantity * (fill.price - bar.vwap) - half
-        timing += sign * fill.quantity * (bar.vwap - p0)
+        impact += sign * fill.quantity * (fill.price - row.vwap) - half
+        timing += sign * fill.quantity * (row.vwap - p0)
     finish = _finish_time(review, status)
     end_price = p0
     for bar in sorted(market.values(), key=lambda b: b.end):

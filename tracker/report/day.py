@@ -31,6 +31,8 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from tracker.core.forecast import ObservedBin, forecast
 from tracker.core.messages import (
     BinMessage,
@@ -90,7 +92,7 @@ class PlanPath:
     made_at: datetime
     first_bin: int
     filled_at: float
-    cumulative: tuple[float, ...]
+    cumulative: Any  # float array: shares expected done by the end of each bin from first_bin
 
 
 @dataclass(frozen=True, slots=True)
@@ -239,7 +241,7 @@ def _path(plan: Any, made_at: datetime) -> PlanPath | None:
             made_at=made_at,
             first_bin=int(plan.first_bin),
             filled_at=float(plan.filled_at),
-            cumulative=tuple(float(x) for x in plan.cumulative),
+            cumulative=np.array(plan.cumulative, dtype=np.float64),  # a copy: plans are reused
         )
     except (AttributeError, TypeError, ValueError):
         return None

@@ -172,14 +172,15 @@ def _pct(value: float | None) -> str:
     return NOT_AVAILABLE if value is None else f"{100 * value:.1f} %"
 
 
+_PLAIN = re.compile(r"[-0-9.,% ]*")
+
+
 def _cell(text: str, left: bool = False) -> str:
-    classes = []
-    if left:
-        classes.append("l")
     if text == NOT_AVAILABLE:
-        classes.append("na")
-    attribute = f' class="{" ".join(classes)}"' if classes else ""
-    return f"<td{attribute}>{escape(text)}</td>"
+        return f'<td class="{"l na" if left else "na"}">{NOT_AVAILABLE}</td>'
+    if not left and _PLAIN.fullmatch(text):  # a number: nothing to escape
+        return f"<td>{text}</td>"
+    return f"<td{' class=l' if left else ''}>{escape(text)}</td>"
 
 
 def _local(day: ReviewDay, symbol: str, value: Any) -> str:

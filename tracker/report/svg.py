@@ -243,8 +243,13 @@ class Chart:
         label: str | None = None,
     ) -> None:
         """A dot per point."""
+        span = (self.end - self.start).total_seconds() or 1.0
+        origin = self.start.timestamp()
+        per_second = (self.width - self.left - self.right) / span
         circles = "".join(
-            f'<circle cx="{self._x(m):.1f}" cy="{self._y(v):.1f}" r="{radius}"/>' for m, v in points
+            f'<circle cx="{self.left + (m.timestamp() - origin) * per_second:.1f}" '
+            f'cy="{self._y(v):.1f}" r="{radius}"/>'
+            for m, v in points
         )
         self.parts.append(
             f'<g id="{escape(gid)}" class="series" fill="{colour}" fill-opacity="0.7">{circles}</g>'
