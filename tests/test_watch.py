@@ -126,7 +126,8 @@ def test_a_target_with_the_coming_fields_is_read() -> None:
     board = board_with(("status/ZEPH-B1", status()), ("targets/ZEPH-B1", payload))
     view = board.orders["ZEPH-B1"]
     assert (2_500, 0.15) == (view.target.quantity if view.target else None, view.max_participation)
-    assert "8.0 % (cap 15 %)" == participation(view)
+    assert (0.08, "plan") == (view.target_rate, view.target_reason)
+    assert "(cap 15 %)" == participation(view)  # the planned rate is not what was done
 
 
 @pytest.mark.parametrize(

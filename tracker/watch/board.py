@@ -136,6 +136,8 @@ class OrderView:
     ts: datetime | None = None
     max_participation: float | None = None
     participation: float | None = None
+    target_rate: float | None = None
+    target_reason: str | None = None
     target: TargetPoint | None = None
     last_alert: AlertEntry | None = None
     open_alerts: dict[str, str] = field(default_factory=dict)
@@ -348,10 +350,10 @@ class Board:
         view.targets.append(point)
         cap = as_float(data, "max_participation")
         view.max_participation = cap if cap is not None else view.max_participation
-        rate = as_float(data, "participation")
-        if rate is not None:  # a daemon that states it
-            view.participation = rate
-        elif previous is not None:
+        # A target's own "participation" is the rate it plans for the bin, not what was done.
+        view.target_rate = as_float(data, "participation")
+        view.target_reason = as_text(data, "reason")
+        if previous is not None:
             self._participation(view, previous, point)
         if point.bin_start is not None and point.bin_end is not None:
             self._bin_length(point.bin_start, point.bin_end)

@@ -313,7 +313,9 @@ def _cells(view: OrderView, board: Board, selected: bool) -> list[Text | str]:
     ]
 
 
-def _orders(board: Board, state: ViewState, zone: tzinfo, room: int, width: int) -> Table:
+def _orders(board: Board, state: ViewState, zone: tzinfo, room: int, width: int) -> Group:
+    """The order rows that fit, as lines laid out here (a rich Table of 60 rows costs several
+    times as much to lay out, twice a second, for the same picture)."""
     listed = rows(board, state.sort, state.keep)
     ids = [view.order_id for view in listed]
     if state.selected not in ids:
@@ -322,45 +324,63 @@ def _orders(board: Board, state: ViewState, zone: tzinfo, room: int, width: int)
     first = max(0, min(index - room // 2, len(listed) - room))
     shown = listed[first : first + room]
     cells = [_cells(view, board, view.order_id == state.selected) for view in shown]
-    # Natural width of each column (its longest header line or cell, plus one space).
+    # Natural width of each column (its longest header line or cell, plus two spaces).
     natural = [
-        1 + max([len(line) for line in header.split("\n")] + [len(str(row[i])) for row in cells])
+        2 + max([len(line) for line in header.split("\n")] + [len(str(row[i])) for row in cells])
         for i, (header, _, _) in enumerate(_COLUMNS)
     ]
-    natural[6] = 9 if natural[6] > 1 else 0  # the bar
+    natural[6] = 10 if natural[6] > 2 else 0  # the bar
     keep = list(range(len(_COLUMNS)))
     for drop in sorted((-rank, i) for i, (_, _, rank) in enumerate(_COLUMNS) if rank):
         if sum(natural[i] for i in keep) + ALERT_WIDTH <= width:
             break
         keep.remove(drop[1])
-    table = Table(
-        box=box.SIMPLE_HEAD,
-        expand=True,
-        pad_edge=False,
-        padding=(0, 1, 0, 0),
-        caption=(
-            f"{first + 1}-{first + len(shown)} of {len(listed)}"
-            if len(shown) < len(listed)
-            else None
-        ),
-        caption_justify="right",
-    )
-    for i in keep:
-        header, justify, _ = _COLUMNS[i]
-        table.add_column(header, justify=justify, no_wrap=True)  # type: ignore[arg-type]
-    table.add_column("last alert", no_wrap=True, overflow="ellipsis", ratio=1)
+    alert_width = max(1, width - 1 - sum(natural[i] for i in keep))
+
+    def line(parts: list[tuple[Text | str, int, str]], style: str | None = None) -> Text:
+        out = Text(" ", no_wrap=True, overflow="crop")
+        for content, cell_width, justify in parts:
+            cell = content.copy() if isinstance(content, Text) else Text(content)
+            cell.truncate(cell_width, overflow="ellipsis")
+            cell.align(justify, cell_width)  # type: ignore[arg-type]
+            out.append_text(cell)
+        out.truncate(width, pad=True)
+        if style:
+            out.stylize(style)
+        return out
+
+    headers = [(_COLUMNS[i][0].split("\n"), natural[i], _COLUMNS[i][1]) for i in keep]
+    lines = []
+    for level in (0, 1):
+        parts: list[tuple[Text | str, int, str]] = []
+        for words, cell_width, justify in headers:
+            text = words[level] if len(words) == 2 else ("" if level == 0 else words[0])
+            parts.append((f"{text}  " if justify == "right" else text, cell_width, justify))
+        parts.append(("" if level == 0 else "last alert", alert_width, "left"))
+        lines.append(line(parts, "bold"))
+    lines.append(Text(" " + "─" * (width - 2), style="dim", no_wrap=True))
     for view, row in zip(shown, cells, strict=True):
         rank = attention(view, board)
         selected = view.order_id == state.selected
-        table.add_row(
-            *[row[i] for i in keep],
-            _alert_cell(view, board, zone),
-            style="reverse" if selected else ("on dark_red" if rank == 0 else None),
+        cells_out: list[tuple[Text | str, int, str]] = []
+        for i in keep:
+            cell, justify = row[i], _COLUMNS[i][1]
+            piece = cell.copy() if isinstance(cell, Text) else Text(cell)
+            if justify == "right":
+                piece.append("  ")
+            cells_out.append((piece, natural[i], justify))
+        cells_out.append((_alert_cell(view, board, zone), alert_width, "left"))
+        lines.append(
+            line(cells_out, "reverse" if selected else ("on dark_red" if rank == 0 else None))
         )
     if not listed:
         message = "no order matches the filter" if state.keep.describe() else "no order seen yet"
-        table.add_row("", Text(message, style="dim"), *[""] * (len(keep) - 1))
-    return table
+        lines.append(Text(f"   {message}", style="dim"))
+    if len(shown) < len(listed):
+        caption = f"{first + 1}-{first + len(shown)} of {len(listed)}"
+        lines.append(Text(caption.rjust(width - 1), style="dim"))
+    lines.append(Text(""))
+    return Group(*lines)
 
 
 def _feed(board: Board, zone: tzinfo, lines: int) -> Table:
@@ -442,6 +462,25 @@ def _help() -> Table:
     return table
 
 
+def _bins_words(gap: float | None) -> str:
+    """The gap to plan in bins of planned trading, in words (no sign to misread)."""
+    if gap is None:
+        return ""
+    if abs(gap) < 0.05:
+        return "on plan"
+    return f"{'behind' if gap > 0 else 'ahead'} {abs(gap):.1f} bins of planned trading"
+
+
+def _target_words(view: OrderView) -> str:
+    """What a daemon that states it says of the target: its planned rate and its reason."""
+    words = []
+    if view.target_rate is not None:
+        words.append(f"planned {view.target_rate * 100:.1f} % of volume")
+    if view.target_reason:
+        words.append(view.target_reason.replace("_", " "))
+    return f" ({', '.join(words)})" if words else ""
+
+
 def _detail(board: Board, view: OrderView, zone: tzinfo, width: int, height: int) -> Group:
     head = Table(box=None, show_header=False, padding=(0, 2), expand=False)
     for _ in range(4):
@@ -456,11 +495,8 @@ def _detail(board: Board, view: OrderView, zone: tzinfo, width: int, height: int
         ("remaining", shares(view.remaining)),
         ("baseline plan filled", shares(view.planned_filled)),
         ("against plan", against_plan(view).plain),
-        (
-            "bins behind",
-            "" if view.deviation_bins is None else f"{view.deviation_bins:.1f} bins of plan",
-        ),
-        ("this bin", this_bin(view)),
+        ("in bins of plan", _bins_words(view.deviation_bins)),
+        ("this bin", "" if view.finished else this_bin(view) + _target_words(view)),
         ("participation", participation(view)),
         ("cap", cap),
         ("average price", "" if view.average_price is None else f"{view.average_price:.4f}"),
@@ -468,7 +504,9 @@ def _detail(board: Board, view: OrderView, zone: tzinfo, width: int, height: int
         ("cost so far", f"{bps(view.realized_bps)} bps" if view.realized_bps is not None else ""),
         (
             "cost to go",
-            f"{bps(view.expected_cost_bps)} bps"
+            ""
+            if view.expected_cost_bps is None
+            else f"{bps(view.expected_cost_bps)} bps"
             + ("" if view.expected_cost is None else f" ({view.expected_cost:,.0f} in currency)"),
         ),
         ("status time", clock(view.ts, zone)),
