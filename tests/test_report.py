@@ -345,3 +345,16 @@ def test_the_observed_replay_writes_the_golden_files(tmp_path: Path) -> None:
     names = ("targets.jsonl", "alerts.jsonl", "status.jsonl", "errors.jsonl", "summary.json")
     written = [(tmp_path / "replay" / name).read_bytes() for name in names]
     assert [(GOLDEN_OUTPUTS / name).read_bytes() for name in names] == written
+
+
+def test_no_scientific_notation_in_what_the_report_writes(golden: Report) -> None:
+    """Findings, cost tables, facts and axis labels are plain numbers (1,234.5, never 1.2e+03).
+
+    The engine's own alert messages are quoted as they are and left out of this check.
+    """
+    html = golden.html.read_text(encoding="utf-8")
+    mine = [f.text for r in golden.orders for f in r.findings]
+    tables = re.findall(r'<table class="(?:cost|bins)">.*?</table>', html, flags=re.S)
+    labels = re.findall(r"<text[^>]*>([^<]*)</text>", html)
+    found = [t for t in (*mine, *tables, *labels) if re.search(r"\d[eE][+-]?\d", t)]
+    assert found == []
