@@ -223,15 +223,9 @@ def read_outputs(folder: Path, profiles: Mapping[str, Profile] | None = None) ->
 
 
 def _plan_of(engine: Any, order_id: str) -> list[Any]:
-    """The engine's current and baseline plan objects of an order (private state, read-only)."""
-    orders = getattr(engine, "_orders", None)
-    if orders is None:
-        state = getattr(engine, "state", None) or getattr(engine, "_state", None)
-        orders = getattr(state, "orders", None)
-    order = orders.get(order_id) if isinstance(orders, Mapping) else None
-    if order is None:
-        return []
-    return [p for p in (getattr(order, "plan", None), getattr(order, "baseline", None)) if p]
+    """The engine's latest and baseline plans of an order (:meth:`Engine.plans`, read-only)."""
+    plans = getattr(engine, "plans", None)
+    return list(plans(order_id)) if plans is not None else []
 
 
 def _path(plan: Any, made_at: datetime) -> PlanPath | None:

@@ -53,7 +53,7 @@ The alert codes, severities, thresholds and hysteresis are in :mod:`tracker.core
 """
 
 from tracker.core.engine.config import EngineConfig
-from tracker.core.engine.machine import Engine
+from tracker.core.engine.machine import Engine, PlanView
 from tracker.core.engine.planning import ASSUMED_SPREAD_BPS
 
-__all__ = ["ASSUMED_SPREAD_BPS", "Engine", "EngineConfig"]
+__all__ = ["ASSUMED_SPREAD_BPS", "Engine", "EngineConfig", "PlanView"]

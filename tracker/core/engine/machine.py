@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -36,10 +36,32 @@ from tracker.core.messages import (
     Tick,
     payload_text,
 )
+from tracker.core.problem import FloatArray
 from tracker.core.profiles import Profile
 from tracker.core.solve import Schedule
 from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.errors import InputError
+
+
+@dataclass(frozen=True, slots=True)
+class PlanView:
+    """A plan as :meth:`Engine.plans` shows it: where it starts, what it expects, how it ended.
+
+    Attributes:
+        version: The order's plan version.
+        first_bin: Session bin of the plan's first trade.
+        filled_at: Shares filled when the plan was made.
+        cumulative: Shares the plan trades by the end of each bin from ``first_bin`` (read-only).
+        status: The solver's status (``optimal`` or ``capped_shortfall``).
+        expected_cost: Expected spread and impact cost of the plan, currency.
+    """
+
+    version: int
+    first_bin: int
+    filled_at: int
+    cumulative: FloatArray
+    status: str
+    expected_cost: float
 
 
 class Engine:
@@ -241,6 +263,32 @@ class Engine:
         order = self._state.orders.get(order_id)
         return order.filled if order else 0
 
+    def plans(self, order_id: str) -> list[PlanView]:
+        """The order's latest plan and its baseline (one entry when they are the same plan).
+
+        Read-only copies, for reviews and views; an unknown or unplanned order has none.
+        """
+        order = self._state.orders.get(order_id)
+        if order is None:
+            return []
+        seen: list[PlanView] = []
+        for plan in (order.plan, order.baseline):
+            if plan is None or any(view.version == plan.version for view in seen):
+                continue
+            cumulative = plan.cumulative.copy()
+            cumulative.setflags(write=False)
+            seen.append(
+                PlanView(
+                    version=plan.version,
+                    first_bin=plan.first_bin,
+                    filled_at=plan.filled_at,
+                    cumulative=cumulative,
+                    status=plan.status,
+                    expected_cost=plan.expected_cost,
+                )
+            )
+        return seen
+
     def next_deadline(self) -> datetime | None:
         """The earliest event time at which the passage of time alone changes something.
 
@@ -346,4 +394,4 @@ class Engine:
         return produced
 
 
-__all__ = ["Engine"]
+__all__ = ["Engine", "PlanView"]
