@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from datetime import date
 
 import numpy as np
@@ -94,10 +95,11 @@ def test_no_observation_is_the_profile() -> None:
 
 
 def test_scale_is_shrunk_toward_one_early() -> None:
-    """Double volume in the first bin gives log s = w log 2 with w = f / (f + 0.05)."""
+    """With a normal prior, double volume in the first bin gives log s = w log 2 with
+    w = f / (f + 0.05) (the normal-normal posterior mean)."""
     profile = default_profile("ZEPH")
     first = float(profile.expected_volume[0])
-    today = forecast(profile, {0: ObservedBin(2 * first)})
+    today = forecast(profile, {0: ObservedBin(2 * first)}, prior_df=math.inf)
     fraction = float(profile.volume_share[0])
     expected = 2.0 ** (fraction / (fraction + 0.05))
     assert expected == pytest.approx(today.volume_scale)

@@ -2,13 +2,28 @@
 
 Theory of operation
 -------------------
-:func:`forecast` updates a profile with the bins observed so far today. The day's volume scale
-is the ratio r of cumulated observed to cumulated expected volume, shrunk toward 1 on the log
-scale: ``log s = w log r`` with ``w = f / (f + f0)``, where f is the fraction of the day's
-expected volume already seen and f0 (``prior_fraction``, default 0.05) the fraction at which
-observation and prior weigh the same. This is the posterior mean of a normal prior on the log
-scale whose observation noise falls like 1/f. Spread and volatility ratios use the last
-``recent_bins`` observed bins the same way with ``w = m / (m + m0)``. All three are bounded.
+:func:`forecast` updates a profile with the bins observed so far today.
+
+The day's volume scale s comes from the ratio r of cumulated observed to cumulated expected
+volume. Two things keep it honest:
+
+* A transient shock (a midday collapse, a spike on news) is kept out of it. With at least
+  :data:`SHOCK_MIN_BINS` bins seen, a bin whose log ratio to the profile lies further than
+  :data:`SHOCK_MADS` robust standard deviations (1.4826 x the median absolute deviation, at least
+  :data:`SHOCK_FLOOR` in log terms) from the median bin is a shock: it keeps its observed volume
+  but does not count toward r or toward the evidence f. A whole day off its profile moves every
+  bin alike and so has no such outliers.
+* r is shrunk toward 1 on the log scale as the posterior mean of a Student-t prior (scale
+  ``prior_sd``, ``prior_df`` degrees of freedom) given ``log r`` observed with variance
+  ``prior_sd^2 f0 / f``, where f is the fraction of the day's expected volume seen (shocks
+  excluded) and f0 (``prior_fraction``, default 0.05) the fraction at which the observation and
+  the prior weigh the same. Near the profile this is the normal-prior weight ``w = f / (f + f0)``
+  (``log s = w log r``); a day clearly off its profile sits in the heavy tail, where the prior
+  pulls less, so the scale moves faster to it (the Student-t prior's property; day volumes of a
+  stock are heavy-tailed -- common practice). ``prior_df = inf`` gives the normal prior exactly.
+
+Spread and volatility ratios use the last ``recent_bins`` observed bins with the normal-prior
+weight ``w = m / (m + m0)``. All three are bounded.
 
 Everything here is pure: no files, no clock.
 """
@@ -36,6 +51,22 @@ PARKINSON = 4.0 * math.log(2.0)
 VOLUME_SCALE_BOUNDS = (0.25, 4.0)
 SPREAD_RATIO_BOUNDS = (0.5, 4.0)
 VOLATILITY_RATIO_BOUNDS = (0.5, 4.0)
+
+#: The prior of the log day-volume scale: a Student-t with this scale and these degrees of
+#: freedom (a liquid stock's day volume has a log standard deviation of about 0.2 with heavy
+#: tails: common practice, from memory).
+PRIOR_SD = 0.2
+PRIOR_DF = 4.0
+
+#: Transient shocks: with at least this many bins seen, a bin further than SHOCK_MADS robust
+#: standard deviations (and at least SHOCK_FLOOR in log terms, a factor of 2) from the median bin
+#: is a shock and stays out of the day's scale.
+SHOCK_MIN_BINS = 6
+SHOCK_MADS = 3.5
+SHOCK_FLOOR = math.log(2.0)
+
+#: Points of the grid on which the posterior mean of the log scale is integrated.
+_GRID = 401
 
 
 @dataclass(frozen=True, slots=True)
@@ -101,6 +132,41 @@ def _shrunk_ratio(log_ratio: float, weight: float, bounds: tuple[float, float]) 
     return float(np.clip(math.exp(weight * log_ratio), *bounds))
 
 
+def shrunk_log_scale(log_ratio: float, variance: float, prior_sd: float, prior_df: float) -> float:
+    """Posterior mean of a log scale mu given ``log_ratio ~ N(mu, variance)`` and a Student-t
+    prior on mu (scale ``prior_sd``, ``prior_df`` degrees of freedom; ``inf``: normal).
+
+    The normal prior has the closed form ``w log_ratio`` with ``w = prior_sd^2 / (prior_sd^2 +
+    variance)``; the Student-t one is integrated on a grid spanning 0 and ``log_ratio`` +- 8
+    standard deviations, where all of the posterior's mass lies.
+    """
+    tau2 = prior_sd * prior_sd
+    if math.isinf(prior_df):
+        return tau2 / (tau2 + variance) * log_ratio
+    sd = math.sqrt(variance)
+    low = min(0.0, log_ratio) - 8.0 * sd
+    high = max(0.0, log_ratio) + 8.0 * sd
+    mu = np.linspace(low, high, _GRID)
+    log_post = (
+        -0.5 * (prior_df + 1.0) * np.log1p(mu * mu / (tau2 * prior_df))
+        - 0.5 * (log_ratio - mu) ** 2 / variance
+    )
+    weight = np.exp(log_post - log_post.max())
+    return float(np.dot(mu, weight) / weight.sum())
+
+
+def shocks(log_ratios: FloatArray) -> npt.NDArray[np.bool_]:
+    """Which bins are transient shocks, from their log ratios to the profile (module docstring).
+
+    Returns all False with fewer than :data:`SHOCK_MIN_BINS` bins.
+    """
+    if log_ratios.size < SHOCK_MIN_BINS:
+        return np.zeros(log_ratios.size, dtype=bool)
+    centre = float(np.median(log_ratios))
+    spread = 1.4826 * float(np.median(np.abs(log_ratios - centre)))
+    return np.abs(log_ratios - centre) > max(SHOCK_MADS * spread, SHOCK_FLOOR)
+
+
 def forecast(
     profile: Profile,
     observed: Mapping[int, ObservedBin],
@@ -108,6 +174,8 @@ def forecast(
     prior_fraction: float = 0.05,
     recent_bins: int = 12,
     prior_bins: float = 6.0,
+    prior_sd: float = PRIOR_SD,
+    prior_df: float = PRIOR_DF,
 ) -> Forecast:
     """Forecast volume, spread and volatility for the rest of the day (pure).
 
@@ -119,6 +187,8 @@ def forecast(
         recent_bins: How many of the latest observed bins set the spread and volatility ratios.
         prior_bins: m0 of the spread/volatility shrinkage: with m recent bins the weight is
             m / (m + m0).
+        prior_sd: Scale of the Student-t prior of the log day-volume scale.
+        prior_df: Its degrees of freedom (``math.inf``: a normal prior, ``w = f / (f + f0)``).
 
     Returns:
         A :class:`Forecast` over all bins.
@@ -150,13 +220,17 @@ def forecast(
     indexes = [int(i) for i in indexes]
     seen = np.array(indexes, dtype=np.intp)  # typed: may be empty before the first bin
     observed_volume = np.array([observed[i].volume for i in indexes])
-    fraction = float(profile.volume_share[seen].sum())
+    expected_volume = profile.expected_volume[seen]
+    log_ratios = np.log(np.maximum(observed_volume, 1.0) / np.maximum(expected_volume, 1.0))
+    steady = ~shocks(log_ratios)
+    fraction = float(profile.volume_share[seen][steady].sum())
     expected = fraction * profile.average_daily_volume
     scale = 1.0
     if expected > 0:
-        weight = fraction / (fraction + prior_fraction)
-        ratio = max(float(observed_volume.sum()) / expected, 1e-12)
-        scale = _shrunk_ratio(math.log(ratio), weight, VOLUME_SCALE_BOUNDS)
+        ratio = max(float(observed_volume[steady].sum()) / expected, 1e-12)
+        noise = prior_sd * prior_sd * prior_fraction / fraction
+        log_scale = shrunk_log_scale(math.log(ratio), noise, prior_sd, prior_df)
+        scale = float(np.clip(math.exp(log_scale), *VOLUME_SCALE_BOUNDS))
 
     recent = indexes[-recent_bins:]
     seen_spread = expected_spread = 0.0

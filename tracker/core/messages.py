@@ -159,6 +159,8 @@ class TargetMessage:
     cumulative_target: int
     remaining: int
     max_quantity: int | None
+    participation: float | None = None
+    max_participation: float | None = None
     plan_version: int
     ts: datetime
 

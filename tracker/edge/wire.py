@@ -325,6 +325,12 @@ class TargetPayload(_Outbound):
     ``quantity`` is the shares for the bin ``[bin_start, bin_end)``; ``cumulative_target`` the
     shares the order should have filled by ``bin_end``; ``remaining`` the shares still to fill;
     ``max_quantity`` the participation cap for the bin (null when uncapped).
+
+    ``participation`` is the rate of the bin's real volume that ``quantity`` stands for
+    (``quantity`` / the bin's forecast volume) and ``max_participation`` the cap as a rate (null
+    when uncapped): a router that sees the market trade more or less than forecast works
+    ``participation`` x the real volume, never more than ``max_participation`` x the real volume
+    nor ``remaining``. ``quantity`` and ``max_quantity`` are the same at the forecast volume.
     """
 
     type: Literal["target"] = "target"
@@ -337,6 +343,8 @@ class TargetPayload(_Outbound):
     cumulative_target: int
     remaining: int
     max_quantity: int | None
+    participation: float | None = None
+    max_participation: float | None = None
     plan_version: int
     ts: OutTime
 

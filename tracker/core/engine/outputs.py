@@ -68,8 +68,12 @@ def target(
     quantity: int,
     max_quantity: int | None,
     ts: datetime,
+    *,
+    participation: float | None = None,
+    max_participation: float | None = None,
 ) -> TargetMessage:
-    """The target of bin ``index``: ``quantity`` shares, at most ``max_quantity`` (the cap)."""
+    """The target of bin ``index``: ``quantity`` shares, at most ``max_quantity`` (the cap);
+    ``participation`` and ``max_participation`` are the same as rates of the bin's volume."""
     bin_start, bin_end = bin_times(state, order, index)
     return TargetMessage(
         order_id=order.order_id,
@@ -81,6 +85,8 @@ def target(
         cumulative_target=min(order.filled, order.quantity) + quantity,
         remaining=order.remaining,
         max_quantity=max_quantity,
+        participation=participation,
+        max_participation=max_participation,
         plan_version=order.plan_version,
         ts=ts,
     )

@@ -7,6 +7,17 @@ events in one :func:`~tracker.core.solve.solve_batch` call (a problem gets the s
 bit, alone or in any batch), and :func:`apply_replan` puts each schedule in place and says what
 changed: the next bin's target, the status and the alerts.
 
+Targets a router can scale: each target carries, besides its shares at the forecast volume, the
+``participation`` rate they stand for (shares / the bin's forecast volume) and the cap as a rate
+(``max_participation``), so that a router applies them to the volume that really trades. In the
+order's last bin, and when the plan cannot complete under the caps (``capped_shortfall``), the
+rate is the cap: everything the cap of the real volume allows.
+
+Plans that expect to fall short: before an order is re-planned at a bin close, the bin's target is
+judged against what filled (:mod:`tracker.core.engine.learning`); with the order's fill ratio
+``r`` the problem caps each bin's fills at ``r x cap x forecast volume`` and the target asks for
+the planned fills over ``r`` (at most the cap).
+
 When the last price is beyond an order's limit, the next bin's target is zero and the plan is
 re-solved over the bins after it. A re-plan that cannot be made (the solver fails, or a problem
 cannot be built) leaves the previous plan and target in place and raises ``replan_failed``.
@@ -20,7 +31,7 @@ from datetime import datetime
 import numpy as np
 
 from tracker.core import alerts as rules
-from tracker.core.engine import outputs
+from tracker.core.engine import learning, outputs
 from tracker.core.engine.state import EngineState, OrderState, Plan, SymbolState
 from tracker.core.engine.step import ReplanJob, Step
 from tracker.core.formulation import build_problem
@@ -89,7 +100,41 @@ def zero_target(state: EngineState, step: Step, order: OrderState, ts: datetime)
     """A target of nothing for the bin now ahead (a halt, a cancel, the order done)."""
     sym = state.symbols[order.symbol]
     first, _ = horizon(step, order, sym, state.now(ts))
-    return outputs.target(state, order, first, 0, None, ts)
+    step.undo.order(order)
+    order.worked = None  # nothing to work: the bin teaches nothing about fills
+    return outputs.target(
+        state,
+        order,
+        first,
+        0,
+        None,
+        ts,
+        participation=0.0,
+        max_participation=order.max_participation,
+    )
+
+
+def learn_fills(step: Step, order: OrderState, sym: SymbolState) -> None:
+    """Count the bin that just closed toward the order's fill ratio, if it had a target for it
+    (:mod:`tracker.core.engine.learning`); the target is then used up."""
+    worked = order.worked
+    index = sym.last_index
+    if worked is None or index is None or sym.day != order.day or worked.index != index:
+        return
+    observed = sym.observed.get(index)
+    step.undo.order(order)
+    order.worked = None
+    if observed is None:
+        return
+    step.undo.symbol(sym)
+    order.fill_ratio, sym.fill_ratio = learning.learn(
+        order.fill_ratio, sym.fill_ratio, worked, observed.volume, order.filled
+    )
+
+
+def fill_ratio(order: OrderState, sym: SymbolState) -> float:
+    """The order's fill ratio (shrunk toward its symbol's; :mod:`tracker.core.engine.learning`)."""
+    return learning.fill_ratio(order.fill_ratio, sym.fill_ratio)
 
 
 def plan_jobs(state: EngineState, step: Step) -> list[ReplanJob]:
@@ -103,6 +148,8 @@ def plan_jobs(state: EngineState, step: Step) -> list[ReplanJob]:
         if sym.day is None or sym.day < order.day:
             step.undo.symbol(sym)
             sym.start_day(order.day)
+        learn_fills(step, order, sym)
+        ratio = fill_ratio(order, sym)
         now = state.now(step.ts)
         if sym.stale_at is None:  # watch the feed from when an order works, in session
             step.undo.symbol(sym)
@@ -120,7 +167,9 @@ def plan_jobs(state: EngineState, step: Step) -> list[ReplanJob]:
                     end_bin=order.end_bin,
                     forecast=sym.forecast,
                     preferences=order.prefs,
-                    max_participation=order.max_participation,
+                    max_participation=(
+                        None if order.max_participation is None else order.max_participation * ratio
+                    ),
                     price=price(order, sym),
                     first_fraction=fraction if plan_from == first else 1.0,
                     reference_quantity=float(order.quantity),
@@ -185,25 +234,61 @@ def _plan(job: ReplanJob, schedule: Schedule | None, plan_price: float) -> Plan:
 
 
 def _next_target(
-    state: EngineState, job: ReplanJob, schedule: Schedule | None, sym: SymbolState, ts: datetime
+    state: EngineState,
+    step: Step,
+    job: ReplanJob,
+    schedule: Schedule | None,
+    sym: SymbolState,
+    ts: datetime,
 ) -> TargetMessage | None:
-    """The target of the bin ahead under the new plan (None: no bin of the order is left)."""
+    """The target of the bin ahead under the new plan (None: no bin of the order is left).
+
+    Shares at the forecast volume and the same as a rate of it (``participation``); the rate is
+    the cap in the order's last bin and when the plan cannot complete (module docstring).
+    """
     order, first = job.order, job.first
     if first >= sym.profile.session.n_bins or first >= order.end_bin:
         return None
+    volume = max(float(sym.forecast.volume[first]), 1.0)  # as build_problem has it
+    if job.fraction != 1.0:
+        volume = max(volume * job.fraction, 1.0)
+    rate = order.max_participation
+    cap = rate * volume if rate is not None else None
+    at_cap = False
     if job.blocked or schedule is None or job.problem is None:
-        quantity = 0
-        volume = max(float(sym.forecast.volume[first]) * job.fraction, 1.0)
-        cap = order.max_participation * volume if order.max_participation is not None else None
+        wanted = 0.0
+    elif rate is not None and (schedule.status == CAPPED_SHORTFALL or first == order.end_bin - 1):
+        wanted, at_cap = math.inf, True
     else:
-        caps = job.problem.cap_array
-        cap = float(caps[0]) if math.isfinite(caps[0]) else None
-        quantity = round(float(schedule.trades[0]))
+        wanted = float(schedule.trades[0]) / fill_ratio(order, sym)
     max_quantity = None if cap is None else math.floor(cap + 1e-9)
-    quantity = max(0, min(quantity, order.remaining))
+    quantity = min(wanted, float(order.remaining))
     if max_quantity is not None:
-        quantity = min(quantity, max_quantity)
-    return outputs.target(state, order, first, quantity, max_quantity, ts)
+        quantity = min(quantity, float(max_quantity))
+    quantity = max(0, round(quantity))
+    participation = rate if at_cap else quantity / volume
+    step.undo.order(order)
+    previous = order.worked
+    order.worked = learning.WorkedBin(
+        index=first,
+        quantity=quantity,
+        participation=participation,
+        max_participation=rate,
+        remaining=order.remaining,
+        filled_at=(
+            previous.filled_at if previous is not None and previous.index == first else order.filled
+        ),
+    )
+    return outputs.target(
+        state,
+        order,
+        first,
+        quantity,
+        max_quantity,
+        ts,
+        participation=participation,
+        max_participation=rate,
+    )
 
 
 def apply_replan(state: EngineState, step: Step, job: ReplanJob, schedule: Schedule | None) -> None:
@@ -222,7 +307,7 @@ def apply_replan(state: EngineState, step: Step, job: ReplanJob, schedule: Sched
     order.volume_scale = float(sym.forecast.volume_scale)
     if job.reason in ("start", "amend") or order.baseline is None:
         order.baseline = plan
-    step.emit(_next_target(state, job, schedule, sym, ts))
+    step.emit(_next_target(state, step, job, schedule, sym, ts))
     deviation = order.deviation(sym.closed_for(order))
     step.emit(outputs.status(state, order, ts, deviation))
     _plan_alerts(state, step, job, previous, plan, deviation[1:])
@@ -271,7 +356,9 @@ __all__ = [
     "ASSUMED_SPREAD_BPS",
     "apply_replan",
     "beyond_limit",
+    "fill_ratio",
     "horizon",
+    "learn_fills",
     "plan_jobs",
     "price",
     "solve_problems",

@@ -17,6 +17,7 @@ import numpy.typing as npt
 
 from tracker.core.alerts import AlertBook
 from tracker.core.engine.config import EngineConfig
+from tracker.core.engine.learning import NO_EVIDENCE, FillRatio, WorkedBin
 from tracker.core.forecast import Forecast, ObservedBin, forecast
 from tracker.core.formulation import Preferences
 from tracker.core.lifecycle import Lifecycle
@@ -107,6 +108,8 @@ class OrderState:
     vwap_volume: float = 0.0
     vwap_notional: float = 0.0
     volume_scale: float | None = None
+    fill_ratio: FillRatio = NO_EVIDENCE  # how its targets fill (tracker.core.engine.learning)
+    worked: WorkedBin | None = None  # the target of the bin ahead, as published
 
     @property
     def remaining(self) -> int:
@@ -154,6 +157,7 @@ class SymbolState:
     stale_at: datetime | None = None  # stale if no bin arrives by then (None: not watched)
     orders: dict[str, None] = field(default_factory=dict)  # every order id, ordered set
     unchecked: list[tuple[str, FillMessage]] = field(default_factory=list)
+    fill_ratio: FillRatio = NO_EVIDENCE  # its orders' targets pooled (learning's prior)
 
     @property
     def bin_seconds(self) -> float:

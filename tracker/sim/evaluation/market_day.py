@@ -95,6 +95,8 @@ class MarketDay:
         fill_draws: Per bin a uniform number in [0, 1) for the router's fill fraction.
         profile: The profile the planner uses on this day.
         order: The day's parent order.
+        day_scale: The day's true volume scale on the profile outside any scenario window (the
+            day's draw times the scenario's ``day_volume``); nan for a recorded day.
     """
 
     index: int
@@ -113,6 +115,7 @@ class MarketDay:
     fill_draws: FloatArray
     profile: Profile
     order: DayOrder
+    day_scale: float = math.nan
 
     @property
     def arrival_price(self) -> float:
@@ -191,6 +194,7 @@ def simulated_day(
     volume_factor, spread_factor = _window_factors(session, scenario)
     sigma = profile.volatility * scenario.volatility
     price = market.price
+    day_scale = scenario.day_volume
     if scenario.exact:
         volume = np.round(profile.expected_volume * volume_factor)
         spread = profile.spread * spread_factor
@@ -206,6 +210,7 @@ def simulated_day(
         for j in range(1, n):
             log_noise[j] = phi * log_noise[j - 1] + shocks[j]
         scale = math.exp(market.day_volume_sigma * day_t)
+        day_scale = scale * scenario.day_volume
         volume = np.round(
             profile.expected_volume * scale * np.exp(log_noise - 0.5 * s * s) * volume_factor
         )
@@ -247,6 +252,7 @@ def simulated_day(
         fill_draws=fill_draws,
         profile=profile,
         order=draw_order(config, index, seed, profile.average_daily_volume),
+        day_scale=day_scale,
     )
 
 

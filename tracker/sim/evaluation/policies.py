@@ -9,7 +9,9 @@ hears what filled (:meth:`Policy.after`). Four policies:
   wire messages (the order, a tick at its start, each fill, each closed bin) built as payload
   dicts and passed through :func:`tracker.edge.wire.decode`; its outputs are read only through
   :func:`tracker.edge.wire.to_json_object` and :func:`tracker.edge.wire.topic_of`, as a router
-  would read them off the bus. The router works each target the engine publishes for a bin.
+  would read them off the bus. The router works each target the engine publishes for a bin: when
+  the target carries a ``participation`` rate, that rate of the bin's real volume (at most
+  ``max_participation`` of it), as a router that sees the market would; else its ``quantity``.
 * ``opening-plan`` -- the plan made at the start with the same formulation and solver
   (:func:`tracker.core.formulation.build_problem`, :func:`tracker.core.solve.solve`), never
   re-solved; each bin it asks for the planned cumulative (in whole shares) minus what has filled,
@@ -231,7 +233,7 @@ class EnginePolicy:
         self._execution = execution
         self._engine = Engine(profiles={day.symbol: day.profile}, root=ROOT)
         self._bin_of = {utc_text(start): n for n, (start, _) in enumerate(day.bins)}
-        self._targets: dict[int, int] = {}
+        self._targets: dict[int, tuple[int, float | None, float | None]] = {}
         self._expected: float | None = None
         self._order_id = f"EVAL-{day.index:05d}"
         self._fills = 0
@@ -264,7 +266,14 @@ class EnginePolicy:
             self._send("tick", {"type": "tick", "ts": utc_text(start)})
 
     def target(self, n: int) -> int:
-        return self._targets.get(n, 0)
+        quantity, rate, cap = self._targets.get(n, (0, None, None))
+        if rate is None:
+            return quantity
+        volume = float(self._day.volume[n])
+        wanted = round(rate * volume)  # the rate is written to 6 decimals: to the nearest share
+        if cap is not None:
+            wanted = min(wanted, math.floor(cap * volume + 1e-9))
+        return max(wanted, 0)
 
     def after(self, n: int, shares: int, price: float) -> None:
         if shares > 0:
@@ -330,7 +339,12 @@ class EnginePolicy:
             if where == "targets":
                 index = self._bin_of.get(data["bin_start"]) if data["bin_start"] else None
                 if index is not None:
-                    self._targets[index] = int(data["quantity"])
+                    rate, cap = data.get("participation"), data.get("max_participation")
+                    self._targets[index] = (
+                        int(data["quantity"]),
+                        None if rate is None else float(rate),
+                        None if cap is None else float(cap),
+                    )
             elif where == "status":
                 cost = data["expected_cost"]
                 if self._expected is None and cost is not None and data["plan_version"] == 1:

@@ -118,7 +118,30 @@ def tables(results: dict[str, Any]) -> list[Any]:
             )
         for table in (costs, deltas, model):
             table.add_section()
-    return [costs, deltas, model]
+    scale = _table(
+        "The forecast of the day's volume scale: log(forecast / true scale), mean ± se "
+        "(mean absolute)",
+        ("scenario", *_checkpoints(results)),
+    )
+    for scenario in results["scenarios"]:
+        errors = scenario.get("forecast_scale_error", {})
+        if errors:
+            scale.add_row(
+                scenario["name"], *(_scale_cell(errors.get(at)) for at in _checkpoints(results))
+            )
+    return [costs, deltas, model, scale] if scale.row_count else [costs, deltas, model]
+
+
+def _checkpoints(results: dict[str, Any]) -> list[str]:
+    """The forecast checkpoints the results have, in time order."""
+    labels = {at for s in results["scenarios"] for at in s.get("forecast_scale_error", {})}
+    return sorted(labels)
+
+
+def _scale_cell(error: dict[str, Any] | None) -> str:
+    if error is None:
+        return "-"
+    return f"{_pm(error['mean'], error['se'], 3)} ({error['mean_abs']:.3f})"
 
 
 def markdown(results: dict[str, Any]) -> str:
@@ -154,6 +177,17 @@ def markdown(results: dict[str, Any]) -> str:
                 f"{_pm(realized['mean'], realized['se'])} | "
                 f"{check['implied_timing_sd_bps']:.1f} / {check['realized_timing_sd_bps']:.1f} |"
             )
+    checkpoints = _checkpoints(results)
+    if checkpoints:
+        lines += [
+            "",
+            "| scenario | " + " | ".join(f"scale error at {at}" for at in checkpoints) + " |",
+            "|---|" + "---:|" * len(checkpoints),
+        ]
+        for scenario in results["scenarios"]:
+            errors = scenario.get("forecast_scale_error", {})
+            cells = " | ".join(_scale_cell(errors.get(at)) for at in checkpoints)
+            lines.append(f"| {scenario['name']} | {cells} |")
     return "\n".join(lines) + "\n"
 
 

@@ -29,6 +29,7 @@ from tracker.sim.evaluation.execution import (
     Execution,
     implied_timing_variance,
 )
+from tracker.sim.evaluation.forecast_check import scale_errors
 from tracker.sim.evaluation.market_day import MarketDay, RecordedDays, history_days, simulated_day
 from tracker.sim.evaluation.policies import BASELINE, BUILDERS, POLICIES, OpeningPlan
 from tracker.sim.evaluation.statistics import paired, sd, se, summarize
@@ -74,6 +75,7 @@ class ScenarioRun:
 
     scenario: Scenario
     samples: dict[str, Samples]
+    forecast_errors: dict[str, list[float]] = field(default_factory=dict)
 
 
 @dataclass
@@ -167,6 +169,7 @@ def evaluate(
     notes: list[str] = []
     for scenario in config.scenarios:
         samples = {name: Samples() for name in names}
+        errors: dict[str, list[float]] = {}
         if recorded is None:
             source: Iterable[MarketDay] = (
                 simulated_day(config, scenario, i, seed, profile) for i in range(days)
@@ -178,9 +181,11 @@ def evaluate(
         for day in source:
             for name, result in run_day(day, scenario, config, names).items():
                 samples[name].days.append(result)
+            for label, error in scale_errors(day).items():
+                errors.setdefault(label, []).append(error)
             if progress is not None:
                 progress(1)
-        runs.append(ScenarioRun(scenario, samples))
+        runs.append(ScenarioRun(scenario, samples, errors))
     if recorded is not None:
         replayed = len(next(iter(runs[0].samples.values())).days) if runs else 0
         notes.append(
@@ -269,6 +274,9 @@ def results_of(evaluation: Evaluation) -> dict[str, Any]:
     paired difference against the opening plan at each penalty (mean, se, 95 % t interval), and
     the model check: the plan's expected spread + impact against the realized (ratio of means and
     the per-day ratio's mean and sd), the timing sd the plan implies against the realized one.
+    Per scenario also the forecast's error on the day's volume scale at each checkpoint
+    (:mod:`.forecast_check`): mean, its standard error and the mean absolute value of
+    ``log(forecast / true scale)``.
     """
     config = evaluation.config
     penalty = config.costs.penalty_bps
@@ -282,6 +290,15 @@ def results_of(evaluation: Evaluation) -> dict[str, Any]:
                 "policies": {
                     name: policy_results(samples, baseline if name != BASELINE else None, penalty)
                     for name, samples in run.samples.items()
+                },
+                "forecast_scale_error": {
+                    label: {
+                        "days": len(values),
+                        "mean": float(np.mean(values)),
+                        "se": se(np.asarray(values)),
+                        "mean_abs": float(np.mean(np.abs(values))),
+                    }
+                    for label, values in run.forecast_errors.items()
                 },
             }
         )
