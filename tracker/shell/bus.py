@@ -62,6 +62,7 @@ __all__ = [
     "Outbox",
     "Outgoing",
     "backoff_delays",
+    "client_arguments",
     "probe_health",
     "topic_matches",
 ]
@@ -94,6 +95,38 @@ def topic_matches(topic: str, pattern: str) -> bool:
         if level != "+" and level != topic_levels[index]:
             return False
     return len(topic_levels) == len(levels)
+
+
+def client_arguments(broker: BrokerSettings) -> dict[str, Any]:
+    """Where and as whom an ``aiomqtt.Client`` connects: address, credentials, TLS, keep-alive.
+
+    One place for every client of the package (the daemon's :class:`Bus`, ``tracker watch``), so
+    each honours the same settings (``mqtts://``, CA, client certificate, password file).
+
+    Args:
+        broker: Settings from :func:`tracker.shell.config.load_settings`.
+
+    Returns:
+        Keyword arguments of ``aiomqtt.Client``: ``hostname``, ``port``, ``username``,
+        ``password``, ``keepalive``, ``tls_params``. The caller adds its identity and session.
+    """
+    tls_params = None
+    if broker.tls:
+        tls_params = aiomqtt.TLSParameters(
+            ca_certs=str(broker.ca) if broker.ca else None,
+            certfile=str(broker.cert) if broker.cert else None,
+            keyfile=str(broker.key) if broker.key else None,
+            cert_reqs=ssl.CERT_REQUIRED,
+            tls_version=ssl.PROTOCOL_TLS_CLIENT,
+        )
+    return {
+        "hostname": broker.host,
+        "port": broker.port,
+        "username": broker.username,
+        "password": broker.password.reveal() if broker.password else None,
+        "keepalive": broker.keepalive,
+        "tls_params": tls_params,
+    }
 
 
 def backoff_delays(
@@ -306,29 +339,14 @@ class Bus:
     # -- the connection loop ---------------------------------------------------------------------
 
     def _client(self, *, clean_session: bool = False, will: bool = True) -> aiomqtt.Client:
-        broker = self.broker
-        tls_params = None
-        if broker.tls:
-            tls_params = aiomqtt.TLSParameters(
-                ca_certs=str(broker.ca) if broker.ca else None,
-                certfile=str(broker.cert) if broker.cert else None,
-                keyfile=str(broker.key) if broker.key else None,
-                cert_reqs=ssl.CERT_REQUIRED,
-                tls_version=ssl.PROTOCOL_TLS_CLIENT,
-            )
         client = aiomqtt.Client(
-            broker.host,
-            broker.port,
+            **client_arguments(self.broker),
             identifier=self.client_id,
             clean_session=clean_session,
-            username=broker.username,
-            password=broker.password.reveal() if broker.password else None,
             will=aiomqtt.Will(self.health_topic, self._offline(), qos=1, retain=True)
             if will
             else None,
-            keepalive=broker.keepalive,
             timeout=OPERATION_TIMEOUT,
-            tls_params=tls_params,
             max_inflight_messages=MAX_IN_FLIGHT,
         )
         # Acknowledge only after the journal commit (see the module docstring). Must be set before

@@ -29,7 +29,6 @@ import contextlib
 import os
 import re
 import socket
-import ssl
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
@@ -38,7 +37,7 @@ from typing import Any
 import aiomqtt
 
 from tracker.core.topics import Topics
-from tracker.shell.bus import backoff_delays
+from tracker.shell.bus import backoff_delays, client_arguments
 from tracker.shell.config import BrokerSettings
 
 __all__ = ["Link", "LinkStatus", "subscriptions", "watch_client_id"]
@@ -74,28 +73,6 @@ def watch_client_id() -> str:
     """A client id of this process alone: ``tracker-watch-HOST-PID`` (at most 64 characters)."""
     host = re.sub(r"[^A-Za-z0-9._-]", "-", socket.gethostname())[:32] or "host"
     return f"tracker-watch-{host}-{os.getpid()}"
-
-
-def _client_arguments(broker: BrokerSettings) -> dict[str, Any]:
-    """Address, credentials, TLS and keep-alive, exactly as :class:`tracker.shell.bus.Bus` sets
-    them (same settings, same meaning)."""
-    tls_params = None
-    if broker.tls:
-        tls_params = aiomqtt.TLSParameters(
-            ca_certs=str(broker.ca) if broker.ca else None,
-            certfile=str(broker.cert) if broker.cert else None,
-            keyfile=str(broker.key) if broker.key else None,
-            cert_reqs=ssl.CERT_REQUIRED,
-            tls_version=ssl.PROTOCOL_TLS_CLIENT,
-        )
-    return {
-        "hostname": broker.host,
-        "port": broker.port,
-        "username": broker.username,
-        "password": broker.password.reveal() if broker.password else None,
-        "keepalive": broker.keepalive,
-        "tls_params": tls_params,
-    }
 
 
 @dataclass(frozen=True, slots=True)
@@ -185,7 +162,7 @@ class Link:
 
     async def _connection(self) -> None:
         client = aiomqtt.Client(
-            **_client_arguments(self.broker),
+            **client_arguments(self.broker),
             identifier=self.client_id,
             clean_session=True,
             timeout=OPERATION_TIMEOUT,
