@@ -296,3 +296,74 @@ def test_once_json_equals_the_retained_statuses(
     snapshot = json.loads(done.stdout)
     assert [expected[key] for key in sorted(expected)] == snapshot["statuses"]
     assert "online" == snapshot["health"]["t1"]["status"]
+
+
+def test_once_connects_with_tls_and_a_password_as_run_does(tmp_path: Path) -> None:
+    """mqtts:// with --ca, --username and --password-file: the settings tracker run reads."""
+    if shutil.which("openssl") is None or shutil.which("mosquitto_passwd") is None:
+        pytest.skip("openssl and mosquitto_passwd are needed")
+    from tests.test_daemon_broker import _certificates
+
+    ca, cert, key = _certificates(tmp_path / "pki")
+    passwords = tmp_path / "passwords"
+    subprocess.run(
+        ["mosquitto_passwd", "-c", "-b", str(passwords), "desk", "Wh1sper-x9"], check=True
+    )
+    secret = tmp_path / "secret"
+    secret.write_text("Wh1sper-x9\n")
+    options = (f"cafile {ca}", f"certfile {cert}", f"keyfile {key}")
+    with PrivateMosquitto(
+        tmp_path / "tls", listener_options=options, password_file=passwords
+    ) as broker:
+        status = {"type": "status", "order_id": "ZEPH-B1", "state": "working", "filled": 5}
+        subprocess.run(
+            [
+                "mosquitto_pub",
+                "-h",
+                "127.0.0.1",
+                "-p",
+                str(broker.port),
+                "--cafile",
+                str(ca),
+                "-u",
+                "desk",
+                "-P",
+                "Wh1sper-x9",
+                "-r",
+                "-q",
+                "1",
+                "-t",
+                f"{ROOT}/status/ZEPH-B1",
+                "-m",
+                json.dumps(status),
+            ],
+            check=True,
+        )
+        done = subprocess.run(
+            [
+                sys.executable,
+                "-m",
+                "tracker",
+                "watch",
+                "--broker",
+                f"mqtts://127.0.0.1:{broker.port}",
+                "--root",
+                ROOT,
+                "--ca",
+                str(ca),
+                "--username",
+                "desk",
+                "--password-file",
+                str(secret),
+                "--once",
+                "--format",
+                "json",
+            ],
+            capture_output=True,
+            text=True,
+            check=False,
+            cwd=REPO,
+        )
+    assert 0 == done.returncode, done.stderr
+    assert [status] == json.loads(done.stdout)["statuses"]
+    assert "Wh1sper-x9" not in done.stdout + done.stderr
