@@ -127,6 +127,8 @@ def test_a_target_with_the_coming_fields_is_read() -> None:
     view = board.orders["ZEPH-B1"]
     assert (2_500, 0.15) == (view.target.quantity if view.target else None, view.max_participation)
     assert (0.08, "plan") == (view.target_rate, view.target_reason)
+    alone = board_with(("targets/ZEPH-B1", payload)).orders["ZEPH-B1"]
+    assert "working" == alone.state  # before any status, the target's state is shown
     assert "(cap 15 %)" == participation(view)  # the planned rate is not what was done
 
 

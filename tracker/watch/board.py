@@ -351,6 +351,8 @@ class Board:
         cap = as_float(data, "max_participation")
         view.max_participation = cap if cap is not None else view.max_participation
         # A target's own "participation" is the rate it plans for the bin, not what was done.
+        if view.status is None:  # a daemon that states the order's state on its targets
+            view.state = as_text(data, "state") or view.state
         view.target_rate = as_float(data, "participation")
         view.target_reason = as_text(data, "reason")
         if previous is not None:
