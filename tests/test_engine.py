@@ -28,6 +28,7 @@ from tracker.testing import (
     cancel,
     control,
     fill,
+    fill_correction,
     order,
     tick,
 )
@@ -189,8 +190,12 @@ def test_amend_below_filled_is_refused(recorder: Recorder) -> None:
     started(recorder)
     recorder.feed(fill("A", "f1", 2_000, 20.0, ts=at(1)))
     outputs = recorder.feed(amend("A", quantity=1_500, ts=at(2)))
-    assert 1 == len(outputs)
-    assert "send at least 2,000" in outputs[0].reason  # type: ignore[union-attr]
+    assert ["AckMessage", "ErrorMessage"] == [type(o).__name__ for o in outputs]
+    assert "send at least 2,000" in outputs[1].reason  # type: ignore[union-attr]
+    assert ("rejected", outputs[1].reason) == (  # type: ignore[union-attr]
+        outputs[0].result,  # type: ignore[union-attr]
+        outputs[0].reason,  # type: ignore[union-attr]
+    )
 
 
 def test_expiry_with_residual_alerts(recorder: Recorder) -> None:
@@ -231,13 +236,11 @@ def test_conflicting_duplicate_fill_is_rejected(recorder: Recorder) -> None:
     assert 500 == recorder.engine.filled("A")  # type: ignore[attr-defined]
 
 
-def test_fill_for_unknown_order_is_one_error(recorder: Recorder) -> None:
-    """A fill for an unknown order gives exactly one error record (and an alert)."""
+def test_fill_for_unknown_order_is_parked_not_rejected(recorder: Recorder) -> None:
+    """A fill for an order not seen yet is parked (one info alert), not an error."""
     outputs = recorder.feed(fill("NOPE", "f1", 500, 20.0, ts=at(1)))
-    errors = [o for o in outputs if isinstance(o, ErrorMessage)]
-    assert 1 == len(errors)
-    assert "NOPE" == errors[0].order_id
-    assert ["fill_unknown_order"] == [a.code for a in recorder.alerts()]
+    assert [] == [o for o in outputs if isinstance(o, ErrorMessage)]
+    assert [("fill_parked", "NOPE")] == [(a.code, a.order_id) for a in recorder.alerts()]
 
 
 def test_fill_of_wrong_side_is_rejected(recorder: Recorder) -> None:
@@ -603,11 +606,13 @@ def test_engine_replan_on_plan_reproduces_remaining_plan() -> None:
 
 def test_engine_error_keeps_the_fields_sent(recorder: Recorder) -> None:
     """An error raised by the engine carries the message's fields as sent (no added nulls)."""
-    outputs = recorder.feed(fill("NOPE", "f1", 500, 20.0, ts=at(1)))
+    started(recorder)
+    recorder.feed(fill("A", "f1", 500, 20.0, ts=at(1)))
+    outputs = recorder.feed(fill("A", "f1", 600, 20.0, ts=at(2)))
     error = next(o for o in outputs if isinstance(o, ErrorMessage))
     expected = (
-        '{"type":"fill","fill_id":"f1","order_id":"NOPE","quantity":500,"price":20.0,'
-        '"ts":"2026-03-02T14:31:00Z"}'
+        '{"type":"fill","fill_id":"f1","order_id":"A","quantity":600,"price":20.0,'
+        '"ts":"2026-03-02T14:32:00Z"}'
     )
     assert expected == error.payload
 
@@ -681,7 +686,7 @@ def test_reject_names_the_order_of_the_topic() -> None:
 def test_custom_root_names_the_topic_of_engine_errors() -> None:
     """The engine's own errors use the root it was given."""
     engine = Engine(root="desk7")
-    error = engine.handle(fill("NOPE", "f1", 1, 20.0, ts=at(1)))[0]
+    error = engine.handle(fill_correction("NOPE", "f1", ts=at(1)))[0]
     assert isinstance(error, ErrorMessage)
     assert "desk7/fills/NOPE" == error.topic
 

@@ -25,6 +25,7 @@ from tracker.edge.intake import Intake
 from tracker.edge.recordings import read_jsonl
 from tracker.edge.records import Record
 from tracker.edge.wire import (
+    AckMessage,
     AlertMessage,
     ErrorMessage,
     Inbound,
@@ -37,7 +38,7 @@ from tracker.edge.wire import (
 )
 
 DAY = Path(__file__).resolve().parent.parent / "replay_data" / "day-2026-03-10-seed7.jsonl"
-KINDS = ("targets", "alerts", "status", "errors")
+KINDS = ("targets", "alerts", "status", "errors", "acks")
 
 
 class FailOnce:
@@ -106,8 +107,13 @@ def live(records: list[Record]) -> list[list[Outbound]]:
 
 def by_kind(produced: list[Outbound]) -> dict[str, list[bytes]]:
     """Outputs encoded, in order, per output file of a replay."""
-    kinds = {TargetMessage: "targets", AlertMessage: "alerts", StatusMessage: "status"}
-    files: dict[str, list[bytes]] = {"targets": [], "alerts": [], "status": [], "errors": []}
+    kinds = {
+        TargetMessage: "targets",
+        AlertMessage: "alerts",
+        StatusMessage: "status",
+        AckMessage: "acks",
+    }
+    files: dict[str, list[bytes]] = {kind: [] for kind in KINDS}
     for out in produced:
         files[kinds.get(type(out), "errors")].append(encode(out))
     return files

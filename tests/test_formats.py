@@ -44,11 +44,13 @@ def test_rounded_fewer_digits() -> None:
 
 
 def test_topics_under_root() -> None:
-    """Every topic is under the root; symbol alerts sit on the bare alerts topic."""
+    """Every topic is under the root; symbol and engine alerts sit two levels below alerts."""
     topics = Topics("desk")
     assert ("desk/orders/+", "desk/fills/+", "desk/bins/+", "desk/control") == topics.inbound
     assert "desk/targets/A-1" == topics.targets("A-1")
-    assert "desk/alerts" == topics.alerts(None)
+    assert "desk/alerts/engine/all" == topics.alerts(None)
+    assert "desk/alerts/symbol/ZEPH" == topics.symbol_alerts("ZEPH")
+    assert "desk/acks/A-1" == topics.acks("A-1")
     assert "desk/health/i1" == topics.health("i1")
     assert DEFAULT_ROOT == Topics().root
 

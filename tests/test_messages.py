@@ -52,6 +52,7 @@ def test_json_object_writes_type_first_times_in_utc_and_rounded_floats() -> None
     )
     expected = {
         "type": "alert",
+        "version": "1.1",
         "order_id": "A",
         "symbol": None,
         "code": "behind_plan",

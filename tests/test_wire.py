@@ -11,6 +11,7 @@ import pytest
 from tracker.core.formats import rounded
 from tracker.edge.wire import (
     MAX_ERROR_PAYLOAD,
+    AckMessage,
     AlertMessage,
     AlertPayload,
     BinMessage,
@@ -28,6 +29,7 @@ from tracker.edge.wire import (
     WireError,
     decode,
     decode_output,
+    decode_reading,
     encode,
     payload_text,
     to_json_object,
@@ -131,7 +133,19 @@ INVALID = [
     ("tracker/fills/ZEPH-1", with_(FILL, ts="2026-03-02T14:35:00"), "must carry a UTC offset"),
     ("tracker/fills/ZEPH-1", with_(FILL, ts="yesterday"), "ts: must be an ISO 8601 time"),
     ("tracker/fills/ZEPH-1", with_(FILL, fill_id=...), "fill_id: is required"),
-    ("tracker/fills/ZEPH-1", with_(FILL, venue="HLX"), "venue: is not a field"),
+    (
+        "tracker/fills/ZEPH-1",
+        json.dumps(
+            {
+                "type": "fill_correction",
+                "action": "correct",
+                "fill_id": "F1",
+                "order_id": "ZEPH-1",
+                "ts": TS,
+            }
+        ),
+        "a correction needs the new quantity, the new price or both",
+    ),
     ("tracker/fills/ZEPH-2", json.dumps(FILL), "payload says 'ZEPH-1' but the topic says"),
     ("tracker/fills/ZEPH-1", with_(FILL, order_id="ZEPH 1"), "order_id: must be 1 to 64"),
     ("tracker/fills/ZEPH-1", with_(FILL, side="short"), "side: must be 'buy' or 'sell'"),
@@ -147,9 +161,12 @@ INVALID = [
         "an amend must change at least one of",
     ),
     (
-        "tracker/orders/ZEPH-1",
-        with_(ORDER, action="cancel", start=...),
-        "a cancel carries only order_id",
+        "tracker/fills/ZEPH-1",
+        json.dumps(
+            {"type": "fill_correction", "action": "undo", "fill_id": "F1", "order_id": "ZEPH-1"}
+            | {"ts": TS}
+        ),
+        "action: must be 'bust' or 'correct'",
     ),
     ("tracker/bins/ZEPH", with_(BIN, high=20.0), "high (20.0) must be at least low"),
     ("tracker/bins/ZEPH", with_(BIN, close=21.0), "close (21.0) must lie between"),
@@ -184,7 +201,7 @@ INVALID = [
         "naive-time",
         "bad-time",
         "missing-fill-id",
-        "unknown-field",
+        "correction-without-values",
         "topic-id-mismatch",
         "bad-id-characters",
         "bad-side",
@@ -195,7 +212,7 @@ INVALID = [
         "negative-limit",
         "unknown-urgency",
         "empty-amend",
-        "cancel-with-fields",
+        "unknown-correction-action",
         "high-below-low",
         "close-outside-range",
         "negative-volume",
@@ -215,6 +232,22 @@ def test_invalid_message_raises_wire_error_with_reason(
         decode(topic, payload)
     assert expected in info.value.reason
     assert topic == info.value.topic
+
+
+def test_unknown_fields_are_accepted_named_and_kept_by_a_fill() -> None:
+    """Tolerant reading: fields beyond the contract cost nothing; a fill keeps them."""
+    payload = with_(FILL, venue="HLX", exec_id="E-7", liquidity="added")
+    message, unknown = decode_reading("tracker/fills/ZEPH-1", payload)
+    assert isinstance(message, FillMessage)
+    expected = (("exec_id", "liquidity", "venue"), {"exec_id": "E-7", "liquidity": "added"})
+    assert expected == (unknown, {k: message.extra[k] for k in ("exec_id", "liquidity")})
+
+
+def test_cancel_that_echoes_the_order_decodes() -> None:
+    """A cancel repeating the order's fields (symbol, side, quantity, start, end) is a cancel."""
+    message = decode("tracker/orders/ZEPH-1", with_(ORDER, action="cancel"))
+    assert isinstance(message, OrderMessage)
+    assert ("cancel", "ZEPH-1") == (message.action, message.order_id)
 
 
 def test_custom_root_is_honoured() -> None:
@@ -242,7 +275,7 @@ def test_encode_is_deterministic_and_rounded() -> None:
         ts=ts,
     )
     expected = (
-        b'{"type":"alert","order_id":"A","symbol":null,"code":"behind_plan","severity":"warning",'
+        b'{"type":"alert","version":"1.1","order_id":"A","symbol":null,"code":"behind_plan","severity":"warning",'
         b'"state":"raised","message":"m","details":{"a":0.0,"z":1.234568},'
         b'"ts":"2026-03-02T14:35:00Z"}'
     )
@@ -291,15 +324,20 @@ def test_topics_of_outbound_messages() -> None:
     symbol_alert = AlertMessage(
         order_id=None, symbol="ZEPH", code="c", severity="info", message="m", ts=ts
     )
+    engine_alert = AlertMessage(order_id=None, code="c", severity="info", message="m", ts=ts)
     error = ErrorMessage(reason="r", topic="t", payload="p", ts=ts)
+    ack = AckMessage(order_id="A", action="new", result="accepted", ts=ts)
     expected = [
         "r/targets/A",
         "r/status/A",
         "r/alerts/A",
-        "r/alerts",
+        "r/alerts/symbol/ZEPH",
+        "r/alerts/engine/all",
         "r/errors",
+        "r/acks/A",
     ]
-    actual = [topic_of(m, "r") for m in (target, status, order_alert, symbol_alert, error)]
+    messages = (target, status, order_alert, symbol_alert, engine_alert, error, ack)
+    actual = [topic_of(m, "r") for m in messages]
     assert expected == actual
 
 
