@@ -21,8 +21,10 @@ from scipy import stats
 from tracker.cli import main
 from tracker.errors import InputError
 from tracker.sim.evaluation.config import EvaluationConfig, Scenario, load_config, parse_config
+from tracker.sim.evaluation.execution import Execution
+from tracker.sim.evaluation.forecast_check import scale_errors
 from tracker.sim.evaluation.market_day import history_days, read_recorded, simulated_day
-from tracker.sim.evaluation.policies import OpeningPlan
+from tracker.sim.evaluation.policies import EnginePolicy, OpeningPlan
 from tracker.sim.evaluation.runner import evaluate, results_of, run_day
 from tracker.sim.evaluation.statistics import cvar, paired, sd, se, summarize
 from tracker.sim.market import simulate_history
@@ -440,3 +442,40 @@ def test_write_scenarios_copies_the_shipped_file(tmp_path: Path) -> None:
     path = tmp_path / "mine.toml"
     assert 0 == main(["evaluate", "--write-scenarios", str(path)])
     assert load_config(path).scenarios == load_config().scenarios
+
+
+def test_the_forecast_check_finds_no_error_on_an_exact_day() -> None:
+    """On a day exactly as forecast the forecast's day scale is the true one (1) at every
+    checkpoint: log(forecast / true) is 0 to rounding of the volumes to whole shares."""
+    config = exact_config()
+    day = simulated_day(config, config.scenarios[0], 0, 4, config.market.profile(config.session))
+    errors = scale_errors(day)
+    assert ["10:30", "13:00"] == sorted(errors)
+    assert max(abs(value) for value in errors.values()) < 1e-4
+
+
+def test_the_forecast_check_measures_against_the_day_s_true_scale() -> None:
+    """On a half-volume day the true scale is half the day's draw, so a forecast that had
+    learnt nothing (the profile, scale 1) would show log(1 / scale); the check shows the
+    forecast's own error, far smaller by noon."""
+    config = load_config()
+    scenario = config.scenario("half-volume")
+    day = simulated_day(config, scenario, 3, 1, config.market.profile(config.session))
+    errors = scale_errors(day)
+    assert abs(errors["13:00"]) < 0.5 * abs(math.log(1.0 / day.day_scale))
+
+
+def test_the_router_works_the_target_s_rate_of_the_real_volume() -> None:
+    """When the engine's target carries a participation rate the replan policy's router works
+    that rate of the bin's real volume, at most the cap of it (a router seeing the market)."""
+    config = load_config()
+    scenario = config.scenario("half-volume")
+    day = simulated_day(config, scenario, 0, 1, config.market.profile(config.session))
+    plan = OpeningPlan(day)
+    policy = EnginePolicy(plan, Execution(day, scenario, config.costs))
+    n = day.order.first
+    quantity, rate, cap = policy._targets[n]
+    assert rate is not None and cap == day.order.max_participation
+    volume = float(day.volume[n])
+    assert min(round(rate * volume), math.floor(cap * volume)) == policy.target(n)
+    assert policy.target(n) < quantity  # half the volume: fewer shares than forecast

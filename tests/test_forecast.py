@@ -8,7 +8,7 @@ from datetime import date
 import numpy as np
 import pytest
 
-from tracker.core.forecast import VOLUME_SCALE_BOUNDS, ObservedBin, forecast
+from tracker.core.forecast import VOLUME_SCALE_BOUNDS, ObservedBin, forecast, shrunk_log_scale
 from tracker.core.profiles import Profile, default_profile
 from tracker.core.session import Session
 from tracker.errors import InputError
@@ -160,3 +160,41 @@ def test_observed_index_outside_session_is_rejected() -> None:
     """An observed bin index outside the session raises InputError."""
     with pytest.raises(InputError):
         forecast(default_profile("ZEPH"), {78: ObservedBin(1.0)})
+
+
+def test_a_midday_collapse_stays_out_of_the_day_scale() -> None:
+    """An hour at a fifth of the profile's volume (12 bins) does not move the day's scale: it is
+    the scale of the same day without those bins (a transient shock, not a smaller day)."""
+    profile = true_profile("ZEPH")
+    noise = np.exp(np.random.default_rng(8).standard_normal(42) * 0.1)
+    steady = {i: ObservedBin(1.1 * float(profile.expected_volume[i]) * noise[i]) for i in range(42)}
+    collapsed = dict(steady)
+    for i in range(30, 42):
+        collapsed[i] = ObservedBin(0.2 * steady[i].volume)
+    without = {i: steady[i] for i in range(30)}
+    assert forecast(profile, without).volume_scale == forecast(profile, collapsed).volume_scale
+
+
+def test_a_day_off_its_profile_is_followed_faster_than_with_a_normal_prior() -> None:
+    """Half the volume all morning: the Student-t prior's scale is nearer the observed half
+    than the normal prior's (a heavy-tailed prior pulls less on large deviations; from memory)."""
+    profile = true_profile("ZEPH")
+    half = {i: ObservedBin(0.5 * float(v)) for i, v in enumerate(profile.expected_volume[:12])}
+    heavy = forecast(profile, half).volume_scale
+    normal = forecast(profile, half, prior_df=math.inf).volume_scale
+    assert 0.5 < heavy < normal
+
+
+def test_the_student_t_posterior_mean_matches_scipy_quadrature() -> None:
+    """The posterior mean of the log scale under a Student-t prior and a normal observation
+    equals SciPy's numerical integral of mu x prior x likelihood over the prior x likelihood."""
+    from scipy import integrate, stats
+
+    y, variance, tau, df = -0.6, 0.01, 0.2, 4.0
+
+    def density(mu: float) -> float:
+        return float(stats.t.pdf(mu / tau, df) * stats.norm.pdf(y, mu, math.sqrt(variance)))
+
+    top = integrate.quad(lambda mu: mu * density(mu), -3, 3, points=[y, 0.0])[0]
+    bottom = integrate.quad(density, -3, 3, points=[y, 0.0])[0]
+    assert top / bottom == pytest.approx(shrunk_log_scale(y, variance, tau, df), abs=1e-4)

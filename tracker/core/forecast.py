@@ -11,7 +11,9 @@ volume. Two things keep it honest:
   :data:`SHOCK_MIN_BINS` bins seen, a bin whose log ratio to the profile lies further than
   :data:`SHOCK_MADS` robust standard deviations (1.4826 x the median absolute deviation, at least
   :data:`SHOCK_FLOOR` in log terms) from the median bin is a shock: it keeps its observed volume
-  but does not count toward r or toward the evidence f. A whole day off its profile moves every
+  but does not count toward r or toward the evidence f. The median and the spread are taken
+  again without the shocks found (:data:`SHOCK_PASSES`), since an hour-long shock inflates the
+  first spread enough to hide itself. A whole day off its profile moves every
   bin alike and so has no such outliers.
 * r is shrunk toward 1 on the log scale as the posterior mean of a Student-t prior (scale
   ``prior_sd``, ``prior_df`` degrees of freedom) given ``log r`` observed with variance
@@ -62,8 +64,11 @@ PRIOR_DF = 4.0
 #: standard deviations (and at least SHOCK_FLOOR in log terms, a factor of 2) from the median bin
 #: is a shock and stays out of the day's scale.
 SHOCK_MIN_BINS = 6
-SHOCK_MADS = 3.5
+SHOCK_MADS = 2.5
 SHOCK_FLOOR = math.log(2.0)
+#: The median and its spread are taken again without the shocks found, up to this many times
+#: (a long shock inflates the first spread and hides itself).
+SHOCK_PASSES = 3
 
 #: Points of the grid on which the posterior mean of the log scale is integrated.
 _GRID = 401
@@ -160,11 +165,18 @@ def shocks(log_ratios: FloatArray) -> npt.NDArray[np.bool_]:
 
     Returns all False with fewer than :data:`SHOCK_MIN_BINS` bins.
     """
+    outside = np.zeros(log_ratios.size, dtype=bool)
     if log_ratios.size < SHOCK_MIN_BINS:
-        return np.zeros(log_ratios.size, dtype=bool)
-    centre = float(np.median(log_ratios))
-    spread = 1.4826 * float(np.median(np.abs(log_ratios - centre)))
-    return np.abs(log_ratios - centre) > max(SHOCK_MADS * spread, SHOCK_FLOOR)
+        return outside
+    for _ in range(SHOCK_PASSES):
+        kept = log_ratios[~outside]
+        centre = float(np.median(kept))
+        spread = 1.4826 * float(np.median(np.abs(kept - centre)))
+        now = np.abs(log_ratios - centre) > max(SHOCK_MADS * spread, SHOCK_FLOOR)
+        if (now == outside).all():
+            break
+        outside = now
+    return outside
 
 
 def forecast(

@@ -1,0 +1,137 @@
+"""Targets a router can scale, and the fill ratio the engine learns from its targets.
+
+Symbols, prices and volumes are invented test values (a made-up venue, Harbour Lane Exchange,
+HLX), on the default session (09:30-16:00 America/New_York, 5-minute bins: common practice);
+on 2026-03-02 the open is 14:30 UTC.
+"""
+
+from __future__ import annotations
+
+import math
+from datetime import UTC, datetime, timedelta
+
+import pytest
+
+from tracker.core.engine import Engine
+from tracker.core.engine.learning import PRIOR_BINS, FillRatio, WorkedBin, fill_ratio, learn
+from tracker.core.forecast import forecast
+from tracker.core.profiles import default_profile
+from tracker.edge.wire import TargetMessage
+from tracker.testing import Recorder, bin_message, fill, order, tick
+
+OPEN = datetime(2026, 3, 2, 14, 30, tzinfo=UTC)
+BIN = timedelta(minutes=5)
+
+
+def _at(minutes: float) -> str:
+    return (OPEN + timedelta(minutes=minutes)).isoformat().replace("+00:00", "Z")
+
+
+def _started(quantity: int, max_participation: float = 0.2) -> Recorder:
+    """A recorder whose engine has a buy order over the whole day, started at the open."""
+    recorder = Recorder(Engine())
+    recorder.feed(
+        order(
+            "A",
+            "ZEPH",
+            "buy",
+            quantity,
+            _at(0),
+            _at(390),
+            ts=_at(-30),
+            max_participation=max_participation,
+        )
+    )
+    recorder.feed(tick(_at(0)))
+    return recorder
+
+
+def _targets(recorder: Recorder) -> list[TargetMessage]:
+    return [m for m in recorder.outputs if isinstance(m, TargetMessage)]
+
+
+def test_a_target_states_its_shares_as_a_rate_of_the_forecast_volume() -> None:
+    """participation is quantity / the bin's forecast volume and max_participation the cap, so
+    a router that applies the rate to the forecast volume gets the target's shares back."""
+    target = _targets(_started(50_000))[-1]
+    volume = float(forecast(default_profile("ZEPH"), {}).volume[0])
+    assert target.participation == pytest.approx(target.quantity / volume)
+    assert 0.2 == target.max_participation
+    assert target.quantity == round(target.participation * volume)
+
+
+def test_a_plan_that_cannot_complete_targets_the_cap() -> None:
+    """When the caps cannot carry the order (capped_shortfall), the target is the cap: rate and
+    shares (the most the participation limit allows, common practice)."""
+    target = _targets(_started(5_000_000))[-1]
+    assert (target.max_participation, target.max_quantity) == (
+        target.participation,
+        target.quantity,
+    )
+
+
+def test_the_order_s_last_bin_targets_the_cap() -> None:
+    """In the order's last bin the rate is the cap: everything left, as far as real volume
+    allows."""
+    recorder = Recorder(Engine())
+    recorder.feed(
+        order("A", "ZEPH", "buy", 2_000, _at(380), _at(390), ts=_at(370), max_participation=0.2)
+    )
+    for index in range(77):
+        start = OPEN + index * BIN
+        recorder.feed(bin_message("ZEPH", start, start + BIN, volume=12_000, price=20.0))
+    last = _targets(recorder)[-1]
+    assert (0.2, 2_000) == (last.participation, last.quantity)
+
+
+def test_the_fill_ratio_is_shrunk_toward_the_prior_by_bins_of_evidence() -> None:
+    """With m bins filled at 0.8 of their targets and the prior 1, the estimate is
+    w 0.8 + (1 - w) with w = m / (m + m0) (the posterior mean of a normal prior worth m0 bins;
+    from memory)."""
+    evidence = FillRatio()
+    for _ in range(4):
+        evidence = evidence.add(800.0, 1_000.0)
+    weight = 4 / (4 + PRIOR_BINS)
+    assert weight * 0.8 + (1 - weight) == pytest.approx(evidence.estimate(1.0))
+
+
+def test_an_order_without_evidence_takes_its_symbol_s_ratio() -> None:
+    """An order with no bins yet is sized with its symbol's pooled ratio (itself shrunk)."""
+    symbol = FillRatio(filled=7_000.0, targeted=10_000.0, bins=12)
+    expected = 12 / (12 + PRIOR_BINS) * 0.7 + (1 - 12 / (12 + PRIOR_BINS))
+    assert expected == pytest.approx(fill_ratio(FillRatio(), symbol))
+
+
+def test_a_bin_is_judged_on_its_real_volume() -> None:
+    """A target of 10 % with a 20 % cap in a bin that traded 30,000 shares asked for 3,000;
+    3,000 filled in it is a full fill."""
+    worked = WorkedBin(
+        index=5,
+        quantity=2_000,
+        participation=0.1,
+        max_participation=0.2,
+        remaining=50_000,
+        filled_at=1_000,
+    )
+    order_ratio, _ = learn(FillRatio(), FillRatio(), worked, 30_000.0, 4_000)
+    assert (3_000.0, 3_000.0, 1) == (order_ratio.filled, order_ratio.targeted, order_ratio.bins)
+
+
+def test_targets_grow_when_fills_fall_short() -> None:
+    """An order whose targets fill at 70 % asks for more than the same order filled in full at
+    the same point of the plan (planned fills over the fill ratio)."""
+    rates = []
+    for share in (1.0, 0.7):
+        recorder = _started(60_000)
+        for index in range(12):
+            target = _targets(recorder)[-1]
+            start = OPEN + index * BIN
+            done = math.floor(share * target.quantity)
+            if done:
+                when = (start + BIN - timedelta(seconds=1)).isoformat().replace("+00:00", "Z")
+                recorder.feed(fill("A", f"F{index}", done, 20.0, ts=when))
+            volume = round(target.quantity / target.participation) if target.participation else 0
+            recorder.feed(bin_message("ZEPH", start, start + BIN, volume=volume, price=20.0))
+        last = _targets(recorder)[-1]
+        rates.append(last.quantity / last.remaining)
+    assert rates[1] > rates[0] * 1.1
