@@ -160,7 +160,7 @@ def last_alert(entry: AlertEntry | None, zone: tzinfo) -> Text:
         return Text("")
     words = entry.code.replace("_", " ")  # its time is in the alerts feed
     if entry.state == "cleared":
-        return Text(f"{words} (cleared)", style="dim")
+        return Text(f"cleared: {words}", style="dim")  # "cleared" first: not read as raised
     return Text(words, style=_SEVERITY_STYLE.get(entry.severity, ""))
 
 
@@ -216,10 +216,13 @@ def _title(board: Board, state: ViewState, link: LinkStatus, wall: datetime, zon
     title.append(link.state, style="green" if link.state == "connected" else "bold red")
     zone_name = getattr(zone, "key", str(zone))
     title.append(f"  {wall.astimezone(zone):%H:%M:%S} {zone_name}")
-    live = [v for v in board.orders.values() if v.state is not None and not v.finished]
-    title.append(
-        f"  {len(board.orders)} order{'' if len(board.orders) == 1 else 's'}, {len(live)} live"
-    )
+    known = [v for v in board.orders.values() if v.state is not None]
+    live = [v for v in known if not v.finished]
+    plural = "" if len(known) == 1 else "s"
+    title.append(f"  {len(known)} order{plural}, {len(live)} live")
+    unknown = len(board.orders) - len(known)
+    if unknown:
+        title.append(f", {unknown} id{'' if unknown == 1 else 's'} with alerts only", style="bold")
     title.append(f"  sorted {SORT_WORDS[state.sort]}")
     described = state.keep.describe()
     if described:
@@ -450,6 +453,9 @@ def _help() -> Table:
     table.add_column("what it does")
     for key, what in KEYS:
         table.add_row(key, what)
+    table.add_row("", "")
+    table.add_row("!!", "marks a raised critical alert on the order or its symbol")
+    table.add_row("!", "marks an order behind plan, or halted or expired with shares left")
     table.add_row("", "")
     table.add_row(
         "",
