@@ -278,7 +278,7 @@ _COLUMNS: tuple[tuple[str, str, int], ...] = (
     ("cost to go\nbps", "right", 2),
     ("cost so far\nbps", "right", 6),
 )
-ALERT_WIDTH = 22
+ALERT_WIDTH = 18
 
 
 def _alert_cell(view: OrderView, board: Board, zone: tzinfo) -> Text:
