@@ -353,7 +353,7 @@ async def publish_all(port: int, messages: list[tuple[str, bytes]], *, client_id
 class Collector:
     """Subscribes to a root's output topics and keeps every message, in arrival order."""
 
-    KINDS = ("targets", "alerts", "status", "errors")
+    KINDS = ("targets", "alerts", "status", "errors", "acks")
 
     def __init__(self, port: int, root: str, *, client_id: str) -> None:
         self.port = port
@@ -390,10 +390,11 @@ class Collector:
         )
 
     def outputs(self) -> dict[str, list[bytes]]:
-        """Live (not retained) outputs by topic, in arrival order."""
+        """Live (not retained) outputs by topic, in arrival order (without the empty payloads
+        that clear an ended order's retained target)."""
         by_topic: dict[str, list[bytes]] = {}
         for topic, payload, retained in self.messages:
-            if retained or "/health/" in topic:
+            if retained or "/health/" in topic or not payload:
                 continue
             by_topic.setdefault(topic, []).append(payload)
         return by_topic
@@ -415,7 +416,7 @@ def replay_by_topic(journal: Path, root: str) -> tuple[dict[str, list[bytes]], d
 
     result = replay(read_journal(journal), Engine(root=root), root)
     by_topic: dict[str, list[bytes]] = {}
-    for message in [*result.targets, *result.alerts, *result.status, *result.errors]:
+    for message in [*result.targets, *result.alerts, *result.status, *result.errors, *result.acks]:
         by_topic.setdefault(topic_of(message, root), []).append(encode(message))
     # replay groups by kind; within one topic the order is the engine's order either way
     return by_topic, result.summary

@@ -24,10 +24,12 @@ from datetime import datetime
 from typing import Any, Protocol, TypeVar
 
 from tracker.core.messages import (
+    AckMessage,
     AlertMessage,
     BinMessage,
     ControlMessage,
     ErrorMessage,
+    FillCorrectionMessage,
     FillMessage,
     Inbound,
     OrderMessage,
@@ -108,6 +110,10 @@ class MemoryPublisher:
         self.retained.clear()
 
 
+#: Target states after which an order gets no more targets.
+_FINAL = frozenset({"done", "cancelled", "expired"})
+
+
 @dataclass
 class Recorder:
     """Feeds an engine and keeps every output, by kind; optionally publishes them.
@@ -115,7 +121,8 @@ class Recorder:
     Args:
         engine: The engine under test.
         root: Topic root.
-        publisher: If given, every output is also published there (status retained).
+        publisher: If given, every output is also published there as the daemon publishes it
+            (status and targets retained; an order's last target clears its retained one).
     """
 
     engine: EngineLike
@@ -145,9 +152,12 @@ class Recorder:
         self.outputs.extend(produced)
         if self.publisher is not None:
             for out in produced:
-                self.publisher.publish_now(
-                    topic_of(out, self.root), encode(out), retain=isinstance(out, StatusMessage)
-                )
+                topic = topic_of(out, self.root)
+                final = isinstance(out, TargetMessage) and out.state in _FINAL
+                retain = isinstance(out, StatusMessage | TargetMessage) and not final
+                self.publisher.publish_now(topic, encode(out), retain=retain)
+                if final:  # an order's last target: published once, its retained one cleared
+                    self.publisher.publish_now(topic, b"", retain=True)
 
     def targets(self, order_id: str | None = None) -> list[TargetMessage]:
         """Targets, optionally for one order."""
@@ -179,6 +189,12 @@ class Recorder:
         """Error records."""
         return [o for o in self.outputs if isinstance(o, ErrorMessage)]
 
+    def acks(self, order_id: str | None = None) -> list[AckMessage]:
+        """Replies to order messages, optionally for one order."""
+        return [
+            o for o in self.outputs if isinstance(o, AckMessage) and order_id in (None, o.order_id)
+        ]
+
     def clear(self) -> None:
         """Forget the outputs kept so far."""
         self.outputs.clear()
@@ -189,7 +205,9 @@ class Recorder:
 # --------------------------------------------------------------------------------------------
 
 _TOPICS = Topics()
-_M = TypeVar("_M", OrderMessage, FillMessage, BinMessage, ControlMessage, Tick)
+_M = TypeVar(
+    "_M", OrderMessage, FillMessage, FillCorrectionMessage, BinMessage, ControlMessage, Tick
+)
 
 
 def _decoded(topic: str, data: Mapping[str, Any], kind: type[_M]) -> _M:
@@ -232,10 +250,33 @@ def amend(order_id: str, *, ts: str, **changes: Any) -> OrderMessage:
     return _decoded(_TOPICS.orders(order_id), data, OrderMessage)
 
 
-def cancel(order_id: str, *, ts: str) -> OrderMessage:
-    """A ``cancel`` order message."""
-    data = {"type": "order", "action": "cancel", "order_id": order_id, "ts": ts}
+def cancel(order_id: str, *, ts: str, **echoed: Any) -> OrderMessage:
+    """A ``cancel`` order message (``echoed``: order fields a router repeats in it)."""
+    data = {"type": "order", "action": "cancel", "order_id": order_id, "ts": ts, **echoed}
     return _decoded(_TOPICS.orders(order_id), data, OrderMessage)
+
+
+def fill_correction(
+    order_id: str,
+    fill_id: str,
+    *,
+    ts: str,
+    quantity: int | None = None,
+    price: float | None = None,
+) -> FillCorrectionMessage:
+    """A bust of fill ``fill_id`` (no quantity, no price) or its correction (either or both)."""
+    data: dict[str, Any] = {
+        "type": "fill_correction",
+        "action": "bust" if quantity is None and price is None else "correct",
+        "fill_id": fill_id,
+        "order_id": order_id,
+        "ts": ts,
+    }
+    if quantity is not None:
+        data["quantity"] = quantity
+    if price is not None:
+        data["price"] = price
+    return _decoded(_TOPICS.fills(order_id), data, FillCorrectionMessage)
 
 
 def fill(
@@ -309,6 +350,7 @@ __all__ = [
     "cancel",
     "control",
     "fill",
+    "fill_correction",
     "order",
     "tick",
 ]

@@ -331,6 +331,8 @@ async def _drive(
                 heard[0] = _time.monotonic()
                 payload = message.payload
                 assert isinstance(payload, bytes | bytearray)
+                if not payload:
+                    continue  # a retained target cleared (the order has ended)
                 if topic.startswith(topics.targets("")):
                     scenario.on_output(decode_output(bytes(payload)))
                     woken.set()
@@ -413,6 +415,7 @@ def _replay(journal: Path, out: Path, root: str) -> tuple[dict[str, list[bytes]]
         ("alert", result.alerts),
         ("status", result.status),
         ("error", result.errors),
+        ("ack", result.acks),
     ):
         if messages:
             replayed[kind] = [encode(m) for m in messages]

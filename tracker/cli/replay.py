@@ -3,16 +3,15 @@
 from __future__ import annotations
 
 import argparse
+import functools
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import Any
 
 from tracker.core.topics import DEFAULT_ROOT
-
-if TYPE_CHECKING:
-    pass
+from tracker.errors import InputError
 
 DESCRIPTION = """\
 Replay a recorded day through the engine, deterministically, and write its outputs.
@@ -24,9 +23,18 @@ line) and summary.json (per order: quantity, filled, average price, arrival pric
 shortfall and slippage to the interval VWAP in basis points, alert counts by code, final state).
 Two runs on the same input write byte-identical files.
 
+DIR also receives acks.jsonl (the one reply to each order message).
+
 Every malformed or invalid line becomes one record in errors.jsonl with its 1-based line number
 and a reason; the replay goes on. An exact copy of an accepted message (a redelivery) is skipped.
-When the input holds no tick lines, ticks are derived from the lines' times every --tick-seconds.
+A line whose time goes backwards is applied at the latest time seen, with an info record
+(--sort sorts the recording by time first). When the input holds no tick lines, ticks are derived
+from the lines' times every --tick-seconds.
+
+A journal describes itself (the daemon's root, engine settings and profiles, and any change of
+them during the day): replayed with no other flag, it reproduces what the daemon published,
+message for message. --root, --config or --profiles that disagree with the journal are refused,
+unless --what-if asks to replay with them instead (the summary then says so under "what_if").
 """
 
 
@@ -71,6 +79,19 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         f"(seconds, default: {DEFAULT_TICK_SECONDS:g})",
     )
     parser.add_argument(
+        "--sort",
+        action="store_true",
+        help="sort the recording by its lines' ts before replaying it (a recording merged from "
+        "several capture points); without it, a line whose time goes backwards is applied at "
+        "the latest time seen",
+    )
+    parser.add_argument(
+        "--what-if",
+        action="store_true",
+        help="replay a journal with --root/--config/--profiles that differ from the ones it "
+        "records (labelled as a what-if in summary.json) instead of refusing them",
+    )
+    parser.add_argument(
         "--progress",
         action=argparse.BooleanOptionalAction,
         default=None,
@@ -84,13 +105,46 @@ def run(args: argparse.Namespace) -> int:
     from tracker.core.engine import Engine
     from tracker.shell.config import validate_root
     from tracker.shell.files import load_engine_config, load_profiles
-    from tracker.shell.replay import read_input, replay, write_outputs
+    from tracker.shell.journal import read_setup
+    from tracker.shell.replay import is_journal, read_input, replay, write_outputs
+    from tracker.shell.setup import Setup, apply, differences, engine_of, timeline
 
     config, config_root = load_engine_config(Path(args.config)) if args.config else (None, None)
     root = validate_root(args.root or config_root or DEFAULT_ROOT, field="--root")
     profiles = load_profiles(Path(args.profiles)) if args.profiles else {}
-    records = list(read_input(Path(args.input)))
-    engine = Engine(config=config, profiles=profiles, root=root)
+    path = Path(args.input)
+    described = timeline(read_setup(path)) if is_journal(path) else []
+    records = list(read_input(path))
+    changes: list[tuple[int, Callable[[], None]]] = []
+    what_if: dict[str, Any] | None = None
+    if described:
+        recorded = described[0][1]
+        flags = Setup(
+            root=root if (args.root or config_root) else recorded.root,
+            config=config if config is not None else recorded.config,
+            profiles=profiles if args.profiles else recorded.profiles,
+        )
+        # Flags are judged against the setup the journal started with.
+        said = differences(recorded, flags)
+        if said and not args.what_if:
+            raise InputError(
+                f"{path} records the setup its daemon ran with; these flags disagree with it: "
+                f"{'; '.join(said)}. Leave them out to reproduce what was published, or add "
+                "--what-if to replay with them",
+                field="--what-if",
+            )
+        if said:
+            what_if = {"differs_from_journal": said}
+            engine = engine_of(flags)
+            root = flags.root
+        else:
+            engine = engine_of(recorded)
+            root = recorded.root
+            changes = [
+                (after, functools.partial(apply, engine, later)) for after, later in described[1:]
+            ]
+    else:
+        engine = Engine(config=config, profiles=profiles, root=root)
     show = stderr_is_terminal() if args.progress is None else bool(args.progress)
     with _progress_bar(len(records), show) as advance:
         result = replay(
@@ -98,8 +152,12 @@ def run(args: argparse.Namespace) -> int:
             engine,
             root,
             tick_seconds=args.tick_seconds,
+            sort=args.sort,
+            changes=changes,
             progress=advance,
         )
+    if what_if is not None:
+        result.summary["what_if"] = what_if
     write_outputs(result, Path(args.out))
     counts = result.summary.get("replay", {})
     print(

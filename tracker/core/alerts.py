@@ -53,6 +53,15 @@ default_profile            info                  no liquidity profile for a symb
                                                  default is used (symbol scope)
 internal_error             critical              handling a message failed inside the engine (a
                                                  bug); the message was not applied
+fill_parked                info                  a fill for an order not seen yet waits for it
+fill_unassigned            critical              a parked fill's order never came: its shares are
+                                                 unassigned
+fill_busted                warning               a fill was busted: inventory, price and plan
+                                                 recomputed without it
+fill_corrected             warning               a fill was corrected: inventory, price and plan
+                                                 recomputed
+cancel_mismatch            critical              a cancel named another symbol or side than its
+                                                 order; the order was cancelled all the same
 =========================  ====================  ===================================================
 """
 
@@ -88,6 +97,11 @@ ORDER_RESUMED = "order_resumed"
 DEFAULT_PROFILE = "default_profile"
 REPLAN_FAILED = "replan_failed"
 INTERNAL_ERROR = "internal_error"
+FILL_PARKED = "fill_parked"
+FILL_UNASSIGNED = "fill_unassigned"
+FILL_BUSTED = "fill_busted"
+FILL_CORRECTED = "fill_corrected"
+CANCEL_MISMATCH = "cancel_mismatch"
 
 
 @dataclass(frozen=True, slots=True)
@@ -157,6 +171,19 @@ CODES: Mapping[str, Code] = {
     INTERNAL_ERROR: Code(
         "critical",
         "handling a message failed inside the engine (a bug); the message was not applied",
+    ),
+    FILL_PARKED: Code("info", "a fill for an order not seen yet waits for it"),
+    FILL_UNASSIGNED: Code(
+        "critical", "a parked fill's order never came: its shares are unassigned"
+    ),
+    FILL_BUSTED: Code(
+        "warning", "a fill was busted: inventory, price and plan recomputed without it"
+    ),
+    FILL_CORRECTED: Code("warning", "a fill was corrected: inventory, price and plan recomputed"),
+    CANCEL_MISMATCH: Code(
+        "critical",
+        "a cancel named another symbol or side than its order; the order was cancelled all "
+        "the same",
     ),
 }
 
@@ -601,13 +628,18 @@ def fill_price_outside(*, price: float, low: float, high: float, config: AlertCo
 __all__ = [
     "AHEAD_OF_PLAN",
     "BEHIND_PLAN",
+    "CANCEL_MISMATCH",
     "CODES",
     "COMPLETION_INFEASIBLE",
     "DEFAULT_PROFILE",
     "FILL_AFTER_CLOSE",
+    "FILL_BUSTED",
+    "FILL_CORRECTED",
     "FILL_DUPLICATE_CONFLICT",
     "FILL_OVERFILL",
+    "FILL_PARKED",
     "FILL_PRICE_OUTSIDE",
+    "FILL_UNASSIGNED",
     "FILL_UNKNOWN_ORDER",
     "FILL_WRONG_SIDE",
     "INTERNAL_ERROR",

@@ -37,6 +37,9 @@ Command = Literal["halt", "resume"]
 #: Raw payloads kept in error records are truncated to this many characters.
 MAX_ERROR_PAYLOAD = 2_000
 
+#: Version of the wire contract the messages follow; every outbound message carries it.
+CONTRACT_VERSION = "1.1"
+
 #: The fields an order ``amend`` can change.
 AMENDABLE_FIELDS = ("quantity", "end", "limit_price", "max_participation", "urgency", "preferences")
 
@@ -101,6 +104,33 @@ class FillMessage:
     price: float
     side: Side | None = None
     ts: datetime
+    extra: Mapping[str, Any] = field(default_factory=dict)  # fields beyond the contract (facts)
+
+    def same_execution(self, other: FillMessage) -> bool:
+        """Whether ``other`` reports the same execution: same id, order, shares, price and side
+        (its ``ts`` and extra fields may differ: a gateway re-sending it restamps them)."""
+        return (
+            self.fill_id == other.fill_id
+            and self.order_id == other.order_id
+            and self.quantity == other.quantity
+            and self.price == other.price
+            and (self.side is None or other.side is None or self.side == other.side)
+        )
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class FillCorrectionMessage:
+    """A bust (``action`` ``"bust"``: the fill ``fill_id`` did not happen) or a correction
+    (``"correct"``: it happened with this ``quantity`` and/or ``price``) of an earlier fill."""
+
+    type: ClassVar[str] = "fill_correction"
+    action: Literal["bust", "correct"]
+    fill_id: str
+    order_id: str
+    quantity: int | None = None
+    price: float | None = None
+    reason: str | None = None
+    ts: datetime
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -162,6 +192,9 @@ class TargetMessage:
     participation: float | None = None
     max_participation: float | None = None
     plan_version: int
+    state: str = "working"
+    reason: str = "on_plan"
+    next_bins: tuple[Mapping[str, Any], ...] = ()
     ts: datetime
 
 
@@ -205,6 +238,8 @@ class StatusMessage:
     expected_cost: float | None
     expected_cost_bps: float | None
     plan_version: int
+    max_participation: float | None = None
+    cap_source: str | None = None
     ts: datetime
 
 
@@ -219,18 +254,37 @@ class ErrorMessage:
     ts: datetime | None
     line: int | None = None
     order_id: str | None = None
+    severity: Literal["info", "error"] = "error"
 
 
-Inbound = OrderMessage | FillMessage | BinMessage | ControlMessage | Tick
-Outbound = TargetMessage | AlertMessage | StatusMessage | ErrorMessage
+@dataclass(frozen=True, slots=True, kw_only=True)
+class AckMessage:
+    """The one reply to an order message (new, amend, cancel): accepted or rejected, and why.
+
+    ``message_ts`` is the order message's own ``ts`` (with ``order_id`` and ``action``, what a
+    router matches the reply by); ``reason`` is null when accepted without remark.
+    """
+
+    type: ClassVar[str] = "ack"
+    order_id: str
+    action: str | None
+    result: Literal["accepted", "rejected"]
+    reason: str | None = None
+    message_ts: datetime | None = None
+    ts: datetime | None
+
+
+Inbound = OrderMessage | FillMessage | FillCorrectionMessage | BinMessage | ControlMessage | Tick
+Outbound = TargetMessage | AlertMessage | StatusMessage | ErrorMessage | AckMessage
 Message = Inbound | Outbound
 
 # Per class, the names of the fields written on the wire, in order (computed once).
 _WIRE_FIELDS: dict[type, tuple[str, ...]] = {
-    cls: tuple(item.name for item in fields(cls) if item.name != "fields_set")
+    cls: tuple(item.name for item in fields(cls) if item.name not in ("fields_set", "extra"))
     for cls in (
         OrderMessage,
         FillMessage,
+        FillCorrectionMessage,
         BinMessage,
         ControlMessage,
         Tick,
@@ -238,8 +292,12 @@ _WIRE_FIELDS: dict[type, tuple[str, ...]] = {
         AlertMessage,
         StatusMessage,
         ErrorMessage,
+        AckMessage,
     )
 }
+
+#: The outbound classes: their JSON objects carry the contract version after ``type``.
+_OUTBOUND = (TargetMessage, AlertMessage, StatusMessage, ErrorMessage, AckMessage)
 
 
 def wire_fields(message: Message) -> tuple[str, ...]:
@@ -258,7 +316,8 @@ def _plain(value: Any) -> Any:
 def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:
     """The JSON object of a message as the wire carries it.
 
-    ``type`` first, then every field in declaration order; times as ISO 8601 UTC text with a
+    ``type`` first (then, for an outbound message, ``version``: :data:`CONTRACT_VERSION`),
+    then every field in declaration order; times as ISO 8601 UTC text with a
     ``Z``, floats rounded to :data:`~tracker.core.formats.FLOAT_DECIMALS` decimals (non-finite:
     ``None``), nested mapping keys sorted.
 
@@ -270,6 +329,8 @@ def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:
     """
     names = _WIRE_FIELDS[type(message)]
     result: dict[str, Any] = {"type": message.type}
+    if isinstance(message, _OUTBOUND):
+        result["version"] = CONTRACT_VERSION
     for name in names:
         value = getattr(message, name)
         if only_set:
@@ -298,11 +359,14 @@ def payload_text(payload: bytes | str | Mapping[str, Any]) -> str:
 
 __all__ = [
     "AMENDABLE_FIELDS",
+    "CONTRACT_VERSION",
     "MAX_ERROR_PAYLOAD",
+    "AckMessage",
     "AlertMessage",
     "BinMessage",
     "ControlMessage",
     "ErrorMessage",
+    "FillCorrectionMessage",
     "FillMessage",
     "Inbound",
     "Message",

@@ -60,8 +60,20 @@ class Topics:
         return f"{self.root}/status/{order_id}"
 
     def alerts(self, order_id: str | None = "+") -> str:
-        """Alerts of one order; ``None``: alerts that concern a whole symbol."""
-        return f"{self.root}/alerts" if order_id is None else f"{self.root}/alerts/{order_id}"
+        """Alerts of one order; ``None``: the engine's own alerts (no order, no symbol)."""
+        return self.symbol_alerts(None) if order_id is None else f"{self.root}/alerts/{order_id}"
+
+    def symbol_alerts(self, symbol: str | None = "+") -> str:
+        """Alerts about a whole symbol (``{root}/alerts/symbol/{symbol}``); ``None``: the engine's
+        own alerts (``{root}/alerts/engine/all``). Two levels below ``alerts``, so they never
+        meet an order's alerts, and ``{root}/alerts/#`` catches all of them."""
+        if symbol is None:
+            return f"{self.root}/alerts/engine/all"
+        return f"{self.root}/alerts/symbol/{symbol}"
+
+    def acks(self, order_id: str = "+") -> str:
+        """The reply to each order message of one order (accepted or rejected, and why)."""
+        return f"{self.root}/acks/{order_id}"
 
     @property
     def errors(self) -> str:

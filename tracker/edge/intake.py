@@ -9,8 +9,9 @@ each accepted message to :meth:`Engine.handle`. Every line (blank lines aside: t
 ends in exactly one of three ways:
 
 * **accepted** -- it decoded, it is in time order, and the engine took it; its outputs are kept.
-* **redelivered** -- it is an exact copy (same topic, same decoded message) of a line accepted
-  earlier, as an MQTT broker re-sends a QoS 1 message whose acknowledgement was lost. It changes
+* **redelivered** -- it is a copy (same topic, same decoded message; for a fill, the same id,
+  shares, price and side whatever its ``ts``) of a line accepted earlier, as an MQTT broker
+  re-sends a QoS 1 message whose acknowledgement was lost, or a gateway a fill. It changes
   nothing and is not an error; it is counted in the summary. (Ticks are exempt: the shell makes
   them, and a repeated tick is simply handed to the engine, where it changes nothing.)
 * **rejected** -- exactly one :class:`~tracker.core.messages.ErrorMessage` with ``line`` set to
@@ -20,13 +21,22 @@ ends in exactly one of three ways:
      that is not ISO 8601 with an offset;
   2. message level: :func:`tracker.edge.wire.decode` (bad JSON in a raw payload, missing field,
      wrong type, negative or NaN quantity, unknown type, wrong topic for the payload);
-  3. time order: a line whose recorded ``ts`` is earlier than that of a line before it (the
-     recording is out of order). A line recorded without ``ts`` is left to the engine's own
-     per-stream rules (bins per symbol, order messages per order; a late fill is legitimate). A
-     journal is checked the same way: the live daemon fed each record through this same class as
-     it journaled it (its receive times never go backwards), so a replay decides as it did;
-  4. the engine's own verdict (a fill for an unknown order, ...): every ErrorMessage the engine
+  3. the engine's own verdict (a bin off the session's grid, ...): every ErrorMessage the engine
      returns while handling a line gets that line's number.
+
+  A refused *order* message also gets its one :class:`~tracker.core.messages.AckMessage`
+  (rejected, with the reason) when its topic names the order.
+
+Remarks (``info`` error records; the line is accepted all the same):
+
+* a field the contract does not name (tolerant reading: the message is applied; a fill keeps the
+  field): reported once per field name and topic kind, not per message;
+* time going backwards: a line whose recorded ``ts`` is earlier than that of a line before it (a
+  recording merged from two capture points) is applied with its time clamped to the latest seen,
+  and a remark says so. Nothing is dropped for it (sort the recording first with ``tracker
+  replay --sort`` to apply it in time order instead). A line recorded without ``ts`` is left to
+  the engine's own per-stream rules (bins per symbol, order messages per order; a late fill is
+  legitimate).
 
   The line's *time*, for derived ticks, is its recorded ``ts`` (when the shell received it), else
   the message's own ``ts``; time never moves backwards.
@@ -60,6 +70,7 @@ gives the same outputs, and :func:`write_outputs` writes them byte for byte the 
 
 from __future__ import annotations
 
+import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import replace
@@ -68,6 +79,7 @@ from typing import Any, Protocol
 
 from tracker.core.formats import utc_text
 from tracker.core.messages import (
+    AckMessage,
     ErrorMessage,
     FillMessage,
     Inbound,
@@ -80,7 +92,7 @@ from tracker.core.messages import (
 from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.edge.recordings import BadLine, parse_ts, parse_ts_or_none
 from tracker.edge.records import Record
-from tracker.edge.wire import WireError, decode
+from tracker.edge.wire import WireError, decode_reading
 from tracker.errors import InputError
 
 #: Interval of derived ticks, in seconds (the live daemon's default tick interval).
@@ -113,8 +125,9 @@ class Intake:
         derive_ticks: Inject ticks derived from the lines' times (see the module docstring). Turn
             off when the recording holds its own ticks.
         tick_seconds: Interval of derived ticks.
-        check_time: Reject a line whose recorded ``ts`` is earlier than an earlier line's (keep it
-            on wherever the live daemon keeps it on, so that replays decide as live did).
+        check_time: Remark on a line whose recorded ``ts`` is earlier than an earlier line's (its
+            time is clamped to the latest seen either way; keep it on wherever the live daemon
+            keeps it on, so that replays say what live said).
     """
 
     def __init__(
@@ -139,6 +152,7 @@ class Intake:
         self._recorded: datetime | None = None
         self._next_tick: datetime | None = None  # the first derived tick after _last
         self._seen: set[Identity] = set()
+        self._unknown: set[tuple[str, str]] = set()  # (topic kind, field) already remarked on
         self.lines = 0
         self.accepted = 0
         self.redelivered = 0
@@ -175,7 +189,7 @@ class Intake:
                 rejected = False
                 for out in produced:
                     if isinstance(out, ErrorMessage):
-                        rejected = True
+                        rejected = rejected or out.severity == "error"
                         out = replace(out, line=line)
                     results[index].append(out)
                 if not is_line:
@@ -192,31 +206,35 @@ class Intake:
         for index, record in enumerate(records):
             self.lines += 1
             staged = self._stage(record)
-            if isinstance(staged, ErrorMessage):
-                results[index].append(staged)
+            if isinstance(staged, list):
+                results[index].extend(staged)
                 continue
-            message, key, recorded = staged
+            message, key, recorded, unknown = staged
             if key is not None and key in pending_keys:
                 flush()  # whether it is a redelivery depends on the first copy's fate
             if key is not None and key in self._seen:
                 self.redelivered += 1
                 continue
-            if not self._in_order(recorded):
-                assert isinstance(record, Record)  # a BadLine never gets past _stage
-                assert recorded is not None and self._recorded is not None
-                results[index].append(
-                    self._reject(
-                        record.line,
-                        record.topic,
-                        payload_text(record.payload),
-                        f"time goes backwards: this line's ts {utc_text(recorded)} is earlier "
-                        f"than {utc_text(self._recorded)} of a line before it; a recording must "
-                        "be in the order the messages were received -- sort the lines by 'ts' or "
-                        "fix this line's ts",
-                        recorded,
+            assert isinstance(record, Record)  # a BadLine never gets past _stage
+            kind = Topics(self.root).split_inbound(record.topic)
+            where = kind[0] if kind is not None else record.topic
+            for name in unknown:
+                if (where, name) not in self._unknown:
+                    results[index].append(self._remark_unknown(record, name, recorded))
+            if recorded is not None and self._recorded is not None and recorded < self._recorded:
+                if self.check_time:
+                    results[index].append(
+                        self._remark(
+                            record,
+                            f"time goes backwards: this line's ts {utc_text(recorded)} is "
+                            f"earlier than {utc_text(self._recorded)} of a line before it; it was "
+                            "applied at the latest time seen (nothing is dropped for it). Sort "
+                            "the recording by 'ts' (tracker replay --sort) to apply it in time "
+                            "order",
+                            self._recorded,
+                        )
                     )
-                )
-                continue
+                recorded = self._recorded  # clamped: time never moves back
             when = recorded if recorded is not None else _message_time(message)
             if recorded is not None:
                 self._recorded = recorded
@@ -236,8 +254,9 @@ class Intake:
 
     def _stage(
         self, record: Record | BadLine
-    ) -> ErrorMessage | tuple[Inbound, Identity | None, datetime | None]:
-        """The line's own checks: its error, or the decoded message, its identity and time."""
+    ) -> list[Outbound] | tuple[Inbound, Identity | None, datetime | None, tuple[str, ...]]:
+        """The line's own checks: its error (and ack), or the decoded message, its identity, its
+        time and the fields it carried beyond the contract."""
         if isinstance(record, BadLine):
             when = parse_ts_or_none(record.ts)
             return self._reject(record.line, record.topic, record.raw, record.reason, when)
@@ -255,7 +274,7 @@ class Intake:
                     None,
                 )
         try:
-            message = decode(record.topic, record.payload, root=self.root)
+            message, unknown = decode_reading(record.topic, record.payload, root=self.root)
         except WireError as exc:
             return self._reject(
                 record.line, record.topic, payload_text(record.payload), exc.reason, recorded
@@ -263,15 +282,23 @@ class Intake:
         # Ticks are made by the shell, never redelivered by a broker; two equal ones are harmless
         # to the engine and are not remembered (a long-running daemon makes one a second).
         key = None if isinstance(message, Tick) else _identity(record.topic, message)
-        return message, key, recorded
+        return message, key, recorded, unknown
 
-    def _in_order(self, recorded: datetime | None) -> bool:
-        """False when the line's recorded time is earlier than an earlier line's."""
-        return not (
-            self.check_time
-            and recorded is not None
-            and self._recorded is not None
-            and recorded < self._recorded
+    def _remark(self, record: Record, reason: str, when: datetime | None) -> ErrorMessage:
+        """An ``info`` error record about an accepted line."""
+        error = self.engine.reject(record.topic, payload_text(record.payload), reason, when)
+        return replace(error, line=record.line, severity="info")
+
+    def _remark_unknown(self, record: Record, name: str, when: datetime | None) -> ErrorMessage:
+        """The one remark about a field the contract does not name, per topic kind (or not)."""
+        kind = Topics(self.root).split_inbound(record.topic)
+        where = kind[0] if kind is not None else record.topic
+        self._unknown.add((where, name))
+        return self._remark(
+            record,
+            f"{name}: not a field of wire contract v1.1 for {where} messages; the message was "
+            "accepted and the field kept as sent (reported once per field and topic kind)",
+            when or self._last,
         )
 
     def _ticks_until(self, when: datetime) -> list[Tick]:
@@ -285,11 +312,23 @@ class Intake:
 
     def _reject(
         self, line: int, topic: str, raw: str, reason: str, recorded: datetime | None
-    ) -> ErrorMessage:
+    ) -> list[Outbound]:
+        """The error record of a refused line; for an order message, its rejected ack first."""
         self.rejected += 1
         ts = recorded or self._last
-        error = self.engine.reject(topic, raw, reason, ts)
-        return replace(error, line=line)
+        error = replace(self.engine.reject(topic, raw, reason, ts), line=line)
+        kind = Topics(self.root).split_inbound(topic)
+        if kind is None or kind[0] != "orders" or error.order_id is None:
+            return [error]
+        ack = AckMessage(
+            order_id=error.order_id,
+            action=_action_of(raw),
+            result="rejected",
+            reason=reason,
+            message_ts=None,
+            ts=ts,
+        )
+        return [ack, error]
 
     def counts(self) -> dict[str, int]:
         """How many lines were read, accepted, redelivered and rejected; how many ticks derived."""
@@ -326,7 +365,7 @@ def _identity(topic: str, message: Inbound) -> Identity:
     (mappings as their sorted items; an order also by the fields it carried, so an amend that
     removes the limit is not a copy of one that leaves it). A test holds the key to the text.
     """
-    if type(message) is FillMessage:
+    if type(message) is FillMessage:  # the execution, not its stamp (ts) or extra fields
         return (
             topic,
             message.fill_id,
@@ -334,7 +373,6 @@ def _identity(topic: str, message: Inbound) -> Identity:
             message.quantity,
             message.price,
             message.side,
-            message.ts,
         )
     values: list[object] = [topic, message.type]
     for name in wire_fields(message):
@@ -343,3 +381,13 @@ def _identity(topic: str, message: Inbound) -> Identity:
     if isinstance(message, OrderMessage):
         values.append(tuple(sorted(message.fields_set)))
     return tuple(values)
+
+
+def _action_of(raw: str) -> str | None:
+    """The ``action`` of a raw order payload that did not decode, when it can still be read."""
+    try:
+        data = json.loads(raw)
+    except ValueError:
+        return None
+    action = data.get("action") if isinstance(data, dict) else None
+    return action if isinstance(action, str) and len(action) <= 16 else None

@@ -1,4 +1,4 @@
-"""Wire contract v1: the JSON messages tracker reads and writes over MQTT (and in replay files).
+"""Wire contract v1.1: the JSON messages tracker reads and writes over MQTT (and in replay files).
 
 Theory of operation: every payload crosses the boundary exactly once, in :func:`decode`, which
 parses the JSON, checks that the topic fits the payload (kind and id) and validates every field
@@ -16,15 +16,20 @@ used here, at the edge, and nowhere in the core.
 
 Topics (``root`` defaults to ``tracker``; :class:`tracker.core.topics.Topics` names them)::
 
-    inbound   {root}/orders/{order_id}  {root}/fills/{order_id}  {root}/bins/{symbol}
-              {root}/control            {root}/tick   (injected by the shells, never by users)
-    outbound  {root}/targets/{order_id} {root}/alerts/{order_id} {root}/status/{order_id}
-              {root}/alerts  (alerts about a symbol or the engine, not one order)
-              {root}/errors
+    inbound   {root}/orders/{order_id}  {root}/fills/{order_id} (fills, busts, corrections)
+              {root}/bins/{symbol}      {root}/control
+              {root}/tick   (injected by the shells, never by users)
+    outbound  {root}/targets/{order_id} (retained)   {root}/status/{order_id} (retained)
+              {root}/acks/{order_id}    {root}/alerts/{order_id}
+              {root}/alerts/symbol/{symbol}  {root}/alerts/engine/all  {root}/errors
 
-Quantities are whole shares, always positive on the wire: the side lives in the order. Inbound
-messages accept exactly the v1 fields: an unknown field is rejected by name (a typo such as
-``limit_prise`` must not silently drop a limit).
+Quantities are whole shares, always positive on the wire: the side lives in the order.
+
+Tolerant reading, strict writing (contract v1.1): an inbound message may carry fields the contract
+does not name; they cost it nothing (:func:`decode_reading` says which, so the intake can report
+each name once; a fill keeps them as facts). A message is refused only when it cannot be applied
+safely -- a required field missing or invalid -- and the reason names the field. Every outbound
+message carries ``"version": "1.1"`` and exactly the fields of its model here.
 """
 
 from __future__ import annotations
@@ -52,11 +57,14 @@ from pydantic import (
 from tracker.core.formats import FLOAT_DECIMALS, utc_text
 from tracker.core.messages import (
     AMENDABLE_FIELDS,
+    CONTRACT_VERSION,
     MAX_ERROR_PAYLOAD,
+    AckMessage,
     AlertMessage,
     BinMessage,
     ControlMessage,
     ErrorMessage,
+    FillCorrectionMessage,
     FillMessage,
     Inbound,
     Message,
@@ -73,8 +81,8 @@ from tracker.core.messages import (
 from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.errors import InputError
 
-#: Version of the wire contract these models implement.
-WIRE_VERSION = 1
+#: Version of the wire contract these models implement (every outbound message carries it).
+WIRE_VERSION = CONTRACT_VERSION
 
 _ID_PATTERN = re.compile(r"[A-Za-z0-9._-]{1,64}")
 _ID_RULE = "1 to 64 characters of A-Z, a-z, 0-9, '.', '_' or '-'"
@@ -184,11 +192,16 @@ Participation = Annotated[float, BeforeValidator(_finite_number), AfterValidator
 
 
 class _Inbound(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    # Tolerant reading: fields the contract does not name are kept aside (``model_extra``).
+    model_config = ConfigDict(frozen=True, extra="allow")
+
+    version: str | None = None  # the contract version the sender follows (informative)
 
 
 class _Outbound(BaseModel):
     model_config = ConfigDict(frozen=True, extra="forbid")
+
+    version: Literal["1.1"] = CONTRACT_VERSION  # type: ignore[assignment]
 
 
 # --------------------------------------------------------------------------------------------
@@ -204,8 +217,10 @@ class OrderPayload(_Inbound):
 
     ``new`` needs symbol, side, quantity, start and end. ``amend`` carries only what changes
     (quantity, end, limit_price, max_participation, urgency, preferences); ``"limit_price": null``
-    in an amend removes the limit. ``cancel`` needs only the order id. Symbol and side, when an
-    amend or cancel carries them, must match the order.
+    in an amend removes the limit. ``cancel`` needs only the order id and is honoured whatever
+    else it carries: echoed order fields are ignored (a symbol or side that contradicts the order
+    still cancels it, with a critical alert). Symbol, side and start, when an amend carries them,
+    must match the order.
     """
 
     type: Literal["order"] = "order"
@@ -235,16 +250,12 @@ class OrderPayload(_Inbound):
             changes = [name for name in _AMENDABLE if name in self.model_fields_set]
             if not changes:
                 raise ValueError(f"an amend must change at least one of {', '.join(_AMENDABLE)}")
-            if self.start is not None:
-                raise ValueError("start cannot be amended; cancel and send a new order")
-        if self.action == "cancel":
-            extra = [name for name in _AMENDABLE if getattr(self, name) is not None]
-            if extra:
-                raise ValueError(
-                    f"a cancel carries only order_id (and optionally symbol, side); "
-                    f"remove: {', '.join(extra)}"
-                )
-        if self.start is not None and self.end is not None and self.end <= self.start:
+        if (
+            self.action != "cancel"  # a cancel's echoed times are not checked: it always wins
+            and self.start is not None
+            and self.end is not None
+            and self.end <= self.start
+        ):
             raise ValueError(f"end must be after start; got start {self.start}, end {self.end}")
         return self
 
@@ -259,6 +270,32 @@ class FillPayload(_Inbound):
     price: Price
     side: Side | None = None
     ts: Time
+
+
+class FillCorrectionPayload(_Inbound):
+    """A bust or a correction of an earlier fill, on the fills topic of its order.
+
+    ``{"type": "fill_correction", "action": "bust", "fill_id", "order_id", "ts"}`` says the fill
+    ``fill_id`` did not happen; ``{"type": "fill_correction", "action": "correct", "fill_id",
+    "order_id", "quantity"?, "price"?, "ts"}`` says it happened with this quantity and/or price
+    (at least one). ``reason`` is free text for the desk. The fill keeps its id; its shares stay
+    positive.
+    """
+
+    type: Literal["fill_correction"] = "fill_correction"
+    action: Literal["bust", "correct"]
+    fill_id: Id
+    order_id: Id
+    quantity: Shares | None = None
+    price: Price | None = None
+    reason: str | None = None
+    ts: Time
+
+    @model_validator(mode="after")
+    def _needs_values(self) -> FillCorrectionPayload:
+        if self.action == "correct" and self.quantity is None and self.price is None:
+            raise ValueError("a correction needs the new quantity, the new price or both")
+        return self
 
 
 class BinPayload(_Inbound):
@@ -319,12 +356,29 @@ class TickPayload(_Inbound):
 # --------------------------------------------------------------------------------------------
 
 
+class NextBin(BaseModel):
+    """One bin of the plan after the target's bin: its times and its planned shares."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    bin_start: OutTime
+    bin_end: OutTime
+    quantity: int
+
+
 class TargetPayload(_Outbound):
     """What to trade in the next bin for one order.
 
     ``quantity`` is the shares for the bin ``[bin_start, bin_end)``; ``cumulative_target`` the
     shares the order should have filled by ``bin_end``; ``remaining`` the shares still to fill;
     ``max_quantity`` the participation cap for the bin (null when uncapped).
+
+    ``state`` is the order's lifecycle state and ``reason`` why ``quantity`` is what it is:
+    ``on_plan``, ``catching_up`` (behind the baseline), ``capped`` (the participation cap binds),
+    ``limit_blocked``, ``pending``, ``halted``, ``cancelled``, ``done``, ``expired``. A target in
+    a final state (done, cancelled, expired) is the order's last, with ``quantity`` 0.
+    ``next_bins`` holds the plan's next few bins after this one, so a router can pace across
+    bins. Retained per order; cleared (empty retained payload) once the order has ended.
 
     ``participation`` is the rate of the bin's real volume that ``quantity`` stands for
     (``quantity`` / the bin's forecast volume) and ``max_participation`` the cap as a rate (null
@@ -346,6 +400,9 @@ class TargetPayload(_Outbound):
     participation: float | None = None
     max_participation: float | None = None
     plan_version: int
+    state: str = "working"
+    reason: str = "on_plan"
+    next_bins: list[NextBin] = Field(default_factory=list)
     ts: OutTime
 
 
@@ -407,11 +464,18 @@ class StatusPayload(_Outbound):
     expected_cost: float | None
     expected_cost_bps: float | None
     plan_version: int
+    max_participation: float | None = None
+    cap_source: Literal["order", "default"] | None = None
     ts: OutTime
 
 
 class ErrorPayload(_Outbound):
-    """One rejected inbound message, with a reason a person can act on."""
+    """One rejected inbound message, with a reason a person can act on.
+
+    ``severity`` ``"error"``: the message was not applied. ``"info"``: it was applied, and this
+    is a remark about it (an unknown field, reported once per name and topic kind; a line whose
+    time went backwards in a recording).
+    """
 
     type: Literal["error"] = "error"
     reason: str
@@ -420,11 +484,29 @@ class ErrorPayload(_Outbound):
     ts: OutTime | None
     line: int | None = None
     order_id: str | None = None
+    severity: Literal["info", "error"] = "error"
+
+
+class AckPayload(_Outbound):
+    """The one reply to an order message: ``result`` accepted or rejected, ``reason`` why.
+
+    Matched by ``order_id``, ``action`` and ``message_ts`` (the order message's own ``ts``);
+    ``action`` and ``message_ts`` are null when the message could not be read that far.
+    """
+
+    type: Literal["ack"] = "ack"
+    order_id: str
+    action: str | None
+    result: Literal["accepted", "rejected"]
+    reason: str | None = None
+    message_ts: OutTime | None = None
+    ts: OutTime | None
 
 
 _PAYLOADS: dict[str, type[_Inbound]] = {
     "order": OrderPayload,
     "fill": FillPayload,
+    "fill_correction": FillCorrectionPayload,
     "bin": BinPayload,
     "control": ControlPayload,
     "tick": TickPayload,
@@ -435,15 +517,16 @@ _OUTPUT_PAYLOADS: dict[str, type[_Outbound]] = {
     "alert": AlertPayload,
     "status": StatusPayload,
     "error": ErrorPayload,
+    "ack": AckPayload,
 }
 
-# Topic kind -> (message type, payload field that must equal the topic's last level).
-_TOPIC_KINDS: dict[str, tuple[str, str | None]] = {
-    "orders": ("order", "order_id"),
-    "fills": ("fill", "order_id"),
-    "bins": ("bin", "symbol"),
-    "control": ("control", None),
-    "tick": ("tick", None),
+# Topic kind -> (message types, payload field that must equal the topic's last level).
+_TOPIC_KINDS: dict[str, tuple[tuple[str, ...], str | None]] = {
+    "orders": (("order",), "order_id"),
+    "fills": (("fill", "fill_correction"), "order_id"),
+    "bins": (("bin",), "symbol"),
+    "control": (("control",), None),
+    "tick": (("tick",), None),
 }
 
 
@@ -453,6 +536,7 @@ def _topic_of_type(message_type: str, root: str) -> str:
     return {
         "order": topics.orders("{order_id}"),
         "fill": topics.fills("{order_id}"),
+        "fill_correction": topics.fills("{order_id}"),
         "bin": topics.bins("{symbol}"),
         "control": topics.control,
         "tick": topics.tick,
@@ -528,7 +612,7 @@ def _describe(exc: ValidationError) -> tuple[str, str | None]:
         if kind == "missing":
             message = "is required"
         elif kind == "extra_forbidden":
-            message = "is not a field of this message (wire contract v1); remove it"
+            message = f"is not a field of this message (wire contract v{CONTRACT_VERSION})"
         elif kind == "literal_error":
             message = message.replace("Input should be", "must be")
         if loc and first is None:
@@ -553,6 +637,26 @@ def decode(
     Raises:
         WireError: the topic, the JSON or a field is wrong; ``reason`` says what to fix.
     """
+    return decode_reading(topic, payload, root=root)[0]
+
+
+def decode_reading(
+    topic: str, payload: bytes | str | Mapping[str, Any], *, root: str = DEFAULT_ROOT
+) -> tuple[Inbound, tuple[str, ...]]:
+    """Validate one inbound message and say which fields it carried beyond the contract.
+
+    Args:
+        topic: The MQTT topic it arrived on.
+        payload: Raw bytes or text of a JSON object, or an already parsed object.
+        root: The topic root.
+
+    Returns:
+        The core event, and the names of the fields the contract does not name (sorted; a fill
+        keeps their values in ``extra``).
+
+    Raises:
+        WireError: the topic, the JSON or a required field is wrong; ``reason`` names the field.
+    """
     kind, last = _split_topic(topic, root)
     data = _parse(topic, payload)
     order_id = data.get("order_id") if isinstance(data.get("order_id"), str) else None
@@ -571,8 +675,9 @@ def decode(
             field="type",
             order_id=order_id,
         )
-    expected_type, id_field = _TOPIC_KINDS[kind]
-    if message_type != expected_type:
+    expected_types, id_field = _TOPIC_KINDS[kind]
+    if message_type not in expected_types:
+        expected_type = " or ".join(expected_types)
         where = _topic_of_type(message_type, root)
         raise WireError(
             f"a {message_type} message arrived on topic {topic!r}, which takes {expected_type} "
@@ -594,18 +699,21 @@ def decode(
             field=id_field,
             order_id=order_id,
         )
-    return _event(valid)
+    extra = valid.model_extra or {}
+    return _event(valid, extra), tuple(sorted(extra))
 
 
 def _values(model: BaseModel) -> dict[str, Any]:
-    """A validated model's field values, without ``type`` (the core message's class says it)."""
+    """A validated model's field values, without ``type`` (the core message's class says it)
+    and ``version`` (the contract's, not the message's)."""
     values = dict(model.__dict__)
     del values["type"]
+    values.pop("version", None)
     return values
 
 
-def _event(valid: _Inbound) -> Inbound:
-    """The core event of a validated inbound payload."""
+def _event(valid: _Inbound, extra: Mapping[str, Any]) -> Inbound:
+    """The core event of a validated inbound payload (``extra``: its fields beyond the contract)."""
     if type(valid) is FillPayload:  # nearly every message of a day: the short way first
         return FillMessage(
             fill_id=valid.fill_id,
@@ -614,11 +722,15 @@ def _event(valid: _Inbound) -> Inbound:
             price=valid.price,
             side=valid.side,
             ts=valid.ts,
+            extra=dict(extra),
         )
     if isinstance(valid, OrderPayload):
         return OrderMessage(
-            **_values(valid), fields_set=frozenset(valid.model_fields_set - {"type"})
+            **_values(valid),
+            fields_set=frozenset(valid.model_fields_set - {"type", "version"}),
         )
+    if isinstance(valid, FillCorrectionPayload):
+        return FillCorrectionMessage(**_values(valid))
     if isinstance(valid, BinPayload):
         return BinMessage(**_values(valid))
     if isinstance(valid, ControlPayload):
@@ -634,7 +746,11 @@ def topic_of(message: Outbound, root: str = DEFAULT_ROOT) -> str:
     if isinstance(message, StatusMessage):
         return topics.status(message.order_id)
     if isinstance(message, AlertMessage):
-        return topics.alerts(message.order_id)
+        if message.order_id is not None:
+            return topics.alerts(message.order_id)
+        return topics.symbol_alerts(message.symbol)
+    if isinstance(message, AckMessage):
+        return topics.acks(message.order_id)
     return topics.errors
 
 
@@ -683,12 +799,17 @@ def decode_output(payload: bytes | str) -> Outbound:
         reason, field = _describe(exc)
         raise WireError(reason, topic="(outbound)", field=field) from None
     outbound: dict[str, type[Outbound]] = {
+        "ack": AckMessage,
         "target": TargetMessage,
         "alert": AlertMessage,
         "status": StatusMessage,
         "error": ErrorMessage,
     }
-    return outbound[kind](**_values(valid))  # type: ignore[index]
+    values = _values(valid)
+    if kind == "target":
+        bins = valid.next_bins  # type: ignore[attr-defined]
+        values["next_bins"] = tuple(item.model_dump(mode="json") for item in bins)
+    return outbound[kind](**values)  # type: ignore[index]
 
 
 __all__ = [
@@ -696,6 +817,8 @@ __all__ = [
     "FLOAT_DECIMALS",
     "MAX_ERROR_PAYLOAD",
     "WIRE_VERSION",
+    "AckMessage",
+    "AckPayload",
     "AlertMessage",
     "AlertPayload",
     "BinMessage",
@@ -704,6 +827,8 @@ __all__ = [
     "ControlPayload",
     "ErrorMessage",
     "ErrorPayload",
+    "FillCorrectionMessage",
+    "FillCorrectionPayload",
     "FillMessage",
     "FillPayload",
     "Inbound",
@@ -721,6 +846,7 @@ __all__ = [
     "WireError",
     "decode",
     "decode_output",
+    "decode_reading",
     "encode",
     "payload_text",
     "to_json_object",

@@ -71,6 +71,7 @@ from tracker.edge.wire import (
     ErrorMessage,
     Outbound,
     StatusMessage,
+    TargetMessage,
     Tick,
     encode,
     topic_of,
@@ -80,6 +81,7 @@ from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
 from tracker.shell.config import Settings
 from tracker.shell.journal import Journal, JournalError
 from tracker.shell.replay import dumps_summary, finish_summary
+from tracker.shell.setup import Setup, apply, entries_of, removed_profiles, timeline
 
 if TYPE_CHECKING:
     from tracker.core.engine import Engine
@@ -94,6 +96,10 @@ STAGE_SECONDS = 15.0
 YIELD_SECONDS = 0.005
 #: Capacity of the outbox (outputs waiting for the broker's confirmation).
 OUTBOX_CAPACITY = 20_000
+
+
+#: Target states after which an order gets no more targets (its retained target is cleared).
+_FINAL = frozenset({"done", "cancelled", "expired"})
 
 
 def format_ts(moment: datetime) -> str:
@@ -232,6 +238,7 @@ class Daemon:
         #: that cannot be written); ``None`` after an ordinary stop.
         self.failure: InputError | None = None
         self._journal_broken = False
+        self._logged_through = 0  # journal seq up to which outputs were logged before a restart
 
     # -- lifecycle -------------------------------------------------------------------------------
 
@@ -251,10 +258,14 @@ class Daemon:
                 else build_engine(self.settings)
             )
             self.engine: EngineLike = engine
+            # The profiles this run was given (the engine may be switched to journaled ones).
+            self._profiles = dict(getattr(engine, "profiles", {}))
             self._intake = Intake(engine, root=self.root, derive_ticks=False)
             floor = _parse_ts(self._journal.last_ts) if self._journal.last_ts else None
             self._clock = _Clock(self.settings, floor, self._clock_source)
-            self._recover()
+            later = self._journaled_setup(engine)
+            self._recover(later)
+            self._describe_setup(engine)
         except BaseException:
             self._close_journal()
             self._unlock()
@@ -365,12 +376,52 @@ class Daemon:
 
     # -- recovery --------------------------------------------------------------------------------
 
-    def _recover(self) -> None:
-        """Replay the journal into the engine; queue outputs not known to be published."""
+    def _journaled_setup(self, engine: EngineLike) -> list[tuple[int, Setup]]:
+        """Put the engine in the setup the journal started with; return its later setups.
+
+        Raises:
+            InputError: the journal was written under another topic root.
+        """
+        if not hasattr(engine, "reconfigure"):
+            return []  # an engine of a test that cannot say what it runs with
+        described = timeline(self.journal.setup())
+        if not described:
+            return []
+        first = described[0][1]
+        if first.root != self.root:
+            raise InputError(
+                f"{self.settings.journal} was written under the topic root {first.root!r}, not "
+                f"{self.root!r}; use --root {first.root} with it, or give this root its own "
+                "--journal",
+                field="root",
+            )
+        apply(engine, first)
+        return described[1:]
+
+    def _describe_setup(self, engine: EngineLike) -> None:
+        """Journal what this run uses (only what changed), and run on with it from here."""
+        config = getattr(engine, "config", None)
+        if not hasattr(engine, "reconfigure") or config is None:
+            return
+        assert self._clock is not None
+        current = Setup(self.root, config, self._profiles)
+        entries = entries_of(current) + removed_profiles(self.journal.setup(), current)
+        if self.journal.describe(entries, format_ts(self._clock())):
+            apply(engine, current)
+
+    def _recover(self, later: list[tuple[int, Setup]] | None = None) -> None:
+        """Replay the journal into the engine; queue outputs not known to be published.
+
+        ``later``: setups the journal records after its first, applied at their places.
+        """
         assert self._intake is not None
         mark = self.journal.published_through
         self._persisted_mark = mark
+        self._logged_through = mark  # what was published before was logged then
+        pending = list(later or [])
         for record in self.journal.records():
+            while pending and record.line > pending[0][0]:
+                apply(self.engine, pending.pop(0)[1])
             outputs = self._feed(record)
             self.recovered += 1
             if record.line > mark:
@@ -386,7 +437,7 @@ class Daemon:
             )
 
     def _queue_now(self, seq: int, outputs: Iterable[Outbound]) -> None:
-        items = [self._outgoing(seq, out) for out in outputs]
+        items = [item for out in outputs for item in self._outgoings(seq, out)]
         if items:
             self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
             self.outbox.extend(items)
@@ -543,7 +594,7 @@ class Daemon:
             for record, outputs in zip(run, self._feed_run(run), strict=True):
                 seq = record.line
                 self._applied = seq
-                items = [self._outgoing(seq, out) for out in outputs]
+                items = [item for out in outputs for item in self._outgoings(seq, out)]
                 if items:
                     self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
                     for item in items:
@@ -613,6 +664,11 @@ class Daemon:
         return results
 
     def _report(self, record: Record, outputs: list[Outbound]) -> None:
+        if record.line <= self._logged_through:  # logged before a restart: not again
+            if self._on_output is not None:
+                for out in outputs:
+                    self._on_output(out)
+            return
         for out in outputs:
             if isinstance(out, ErrorMessage):
                 self._log.info(
@@ -636,11 +692,22 @@ class Daemon:
             if self._on_output is not None:
                 self._on_output(out)
 
+    def _outgoings(self, seq: int, message: Outbound) -> list[Outgoing]:
+        """What publishing ``message`` takes: targets and status are retained; an order's last
+        target (done, cancelled, expired) is published once and its retained one cleared."""
+        if isinstance(message, TargetMessage) and message.state in _FINAL:
+            topic = topic_of(message, self.root)
+            return [
+                Outgoing(topic=topic, payload=encode(message), retain=False, seq=seq),
+                Outgoing(topic=topic, payload=b"", retain=True, seq=seq),  # clears the retained
+            ]
+        return [self._outgoing(seq, message)]
+
     def _outgoing(self, seq: int, message: Outbound) -> Outgoing:
         return Outgoing(
             topic=topic_of(message, self.root),
             payload=encode(message),
-            retain=isinstance(message, StatusMessage),
+            retain=isinstance(message, StatusMessage | TargetMessage),
             seq=seq,
         )
 

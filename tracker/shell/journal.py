@@ -16,6 +16,15 @@ Storage is one SQLite file in write-ahead-log (WAL) mode with one table::
 topic, payload and time, and a small ``meta`` table holds the format version and how far the
 daemon's outputs are known to have been published (``published_through``).
 
+The journal describes itself: a ``setup`` table holds what the daemon ran with -- the topic root,
+the engine's settings and every liquidity profile, as canonical JSON with its SHA-256 -- each
+entry with ``after_seq``, the last journal record before it took effect. The daemon writes the
+entries that changed each time it starts (a profile replaced during the day is one more entry),
+so a replay of the journal needs no flags (:mod:`tracker.shell.setup`)::
+
+    setup(id INTEGER PRIMARY KEY, after_seq INTEGER, kind TEXT, name TEXT, sha256 TEXT,
+          content BLOB, ts TEXT)
+
 Durability policy (what "no fill lost" means here):
 
 * ``durability="full"`` (the default): SQLite ``synchronous=FULL``; every commit is on disk (the WAL
@@ -49,10 +58,12 @@ The journal guards itself while it is written:
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import os
 import sqlite3
 import zlib
 from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
 from typing import Literal, Self
@@ -67,8 +78,10 @@ __all__ = [
     "JournalError",
     "JournalLost",
     "JournalWriteError",
+    "SetupEntry",
     "published_through",
     "read_journal",
+    "read_setup",
     "record_crc",
 ]
 
@@ -102,6 +115,41 @@ CREATE TABLE IF NOT EXISTS quarantine (
     reason TEXT NOT NULL
 );
 """
+
+
+#: What the daemon ran with (added to older journals when opened; see the module docstring).
+_SETUP = """
+CREATE TABLE IF NOT EXISTS setup (
+    id INTEGER PRIMARY KEY,
+    after_seq INTEGER NOT NULL,
+    kind TEXT NOT NULL,
+    name TEXT NOT NULL,
+    sha256 TEXT NOT NULL,
+    content BLOB NOT NULL,
+    ts TEXT NOT NULL
+);
+"""
+
+
+@dataclass(frozen=True, slots=True)
+class SetupEntry:
+    """One entry of a journal's self-description.
+
+    Attributes:
+        after_seq: The last journal record before it took effect (0: from the start).
+        kind: ``root``, ``engine`` or ``profile``.
+        name: The profile's symbol (``""`` for root and engine).
+        sha256: SHA-256 of ``content``, hex.
+        content: Canonical JSON (UTF-8); empty for a profile that was taken away.
+        ts: When the daemon wrote it (its clock).
+    """
+
+    after_seq: int
+    kind: str
+    name: str
+    sha256: str
+    content: bytes
+    ts: str
 
 
 class JournalError(InputError):
@@ -204,6 +252,7 @@ class Journal:
                 )
             _check_format(self._db, self.path)
             self._db.executescript(_QUARANTINE)
+            self._db.executescript(_SETUP)
             self.quarantined = self._quarantine_damaged_tail()
             row = self._db.execute(
                 "SELECT seq, ts FROM journal ORDER BY seq DESC LIMIT 1"
@@ -304,6 +353,44 @@ class Journal:
             self.last_seq = seqs[-1]
             self.last_ts = rows[-1][2]
         return seqs
+
+    def describe(self, entries: Sequence[tuple[str, str, bytes]], ts: str) -> list[SetupEntry]:
+        """Journal what the daemon runs with, from now on: the entries that differ from the
+        journal's latest of the same kind and name (nothing when nothing changed).
+
+        Args:
+            entries: ``(kind, name, content)`` per entry (see :class:`SetupEntry`).
+            ts: The daemon's clock.
+
+        Returns:
+            The entries written.
+        """
+        latest = {(entry.kind, entry.name): entry.sha256 for entry in self.setup()}
+        written: list[SetupEntry] = []
+        for kind, name, content in entries:
+            digest = hashlib.sha256(content).hexdigest()
+            if latest.get((kind, name)) != digest:
+                written.append(SetupEntry(self.last_seq, kind, name, digest, content, ts))
+        if written:
+            with self._transaction():
+                for entry in written:
+                    self._db.execute(
+                        "INSERT INTO setup(after_seq, kind, name, sha256, content, ts) "
+                        "VALUES (?, ?, ?, ?, ?, ?)",
+                        (
+                            entry.after_seq,
+                            entry.kind,
+                            entry.name,
+                            entry.sha256,
+                            entry.content,
+                            entry.ts,
+                        ),
+                    )
+        return written
+
+    def setup(self) -> list[SetupEntry]:
+        """The journal's self-description, oldest first (empty for a journal without one)."""
+        return _setup_rows(self._db)
 
     def mark_published(self, seq: int) -> None:
         """Record that the outputs of every record up to ``seq`` have been published."""
@@ -435,6 +522,45 @@ def published_through(path: str | Path) -> int:
     finally:
         db.close()
     return int(row[0]) if row else 0
+
+
+def _setup_rows(db: sqlite3.Connection) -> list[SetupEntry]:
+    tables = {row[0] for row in db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+    if "setup" not in tables:
+        return []
+    rows = db.execute(
+        "SELECT after_seq, kind, name, sha256, content, ts FROM setup ORDER BY id"
+    ).fetchall()
+    return [
+        SetupEntry(after_seq, kind, name, sha256, bytes(content), ts)
+        for after_seq, kind, name, sha256, content, ts in rows
+    ]
+
+
+def read_setup(path: str | Path) -> list[SetupEntry]:
+    """A journal's self-description, read without opening it for writing (oldest first).
+
+    Raises:
+        JournalError: The file is missing, not a journal, or an entry's hash does not match.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise JournalError(f"{path} does not exist; give the journal file written by 'tracker run'")
+    db = _connect(path, readonly=True)
+    try:
+        _check_format(db, path)
+        entries = _setup_rows(db)
+    except sqlite3.Error as exc:
+        raise JournalError(f"cannot read {path}: {exc}") from exc
+    finally:
+        db.close()
+    for entry in entries:
+        if hashlib.sha256(entry.content).hexdigest() != entry.sha256:
+            raise JournalError(
+                f"{path}: the {entry.kind} {entry.name!r} of its self-description is damaged "
+                "(its SHA-256 does not match)"
+            )
+    return entries
 
 
 def read_journal(path: str | Path) -> Iterator[Record]:

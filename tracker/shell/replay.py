@@ -11,16 +11,18 @@ from __future__ import annotations
 import gc
 import json
 import math
-from collections.abc import Callable, Iterable, Iterator, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from tracker.core.formats import utc_text
 from tracker.core.topics import DEFAULT_ROOT
 from tracker.edge.intake import DEFAULT_TICK_SECONDS, EngineLike, Intake, has_ticks
-from tracker.edge.recordings import BadLine, read_jsonl
+from tracker.edge.recordings import BadLine, parse_ts_or_none, read_jsonl
 from tracker.edge.records import Record
 from tracker.edge.wire import (
+    AckMessage,
     AlertMessage,
     ErrorMessage,
     Outbound,
@@ -35,7 +37,14 @@ from tracker.shell.journal import read_journal
 SQLITE_HEADER = b"SQLite format 3\x00"
 
 #: Output files, in the order :func:`write_outputs` writes them.
-OUTPUT_FILES = ("targets.jsonl", "alerts.jsonl", "status.jsonl", "errors.jsonl", "summary.json")
+OUTPUT_FILES = (
+    "targets.jsonl",
+    "alerts.jsonl",
+    "status.jsonl",
+    "errors.jsonl",
+    "acks.jsonl",
+    "summary.json",
+)
 
 
 @dataclass
@@ -43,8 +52,9 @@ class ReplayResult:
     """Everything a replay produced, in the order the engine produced it.
 
     Attributes:
-        targets, alerts, status, errors: The engine's outputs by kind (errors also hold the lines
-            the intake rejected), each ErrorMessage with ``line`` set.
+        targets, alerts, status, errors, acks: The engine's outputs by kind (errors also hold
+            the lines the intake rejected and its remarks), each ErrorMessage with ``line`` set;
+            acks the one reply to each order message.
         summary: :meth:`Engine.summary` after the last line, plus a ``replay`` block of counts.
     """
 
@@ -52,6 +62,7 @@ class ReplayResult:
     alerts: list[AlertMessage] = field(default_factory=list)
     status: list[StatusMessage] = field(default_factory=list)
     errors: list[ErrorMessage] = field(default_factory=list)
+    acks: list[AckMessage] = field(default_factory=list)
     summary: dict[str, Any] = field(default_factory=dict)
 
     def add(self, outputs: Iterable[Outbound]) -> None:
@@ -63,6 +74,8 @@ class ReplayResult:
                 self.alerts.append(message)
             elif isinstance(message, StatusMessage):
                 self.status.append(message)
+            elif isinstance(message, AckMessage):
+                self.acks.append(message)
             else:
                 self.errors.append(message)
 
@@ -74,6 +87,8 @@ def replay(
     *,
     tick_seconds: float = DEFAULT_TICK_SECONDS,
     check_time: bool = True,
+    sort: bool = False,
+    changes: Sequence[tuple[int, Callable[[], None]]] = (),
     progress: Callable[[int], None] | None = None,
 ) -> ReplayResult:
     """Run an engine over a whole recording.
@@ -86,13 +101,20 @@ def replay(
         engine: A fresh engine (it is fed every line).
         root: The MQTT topic root the recording was made under.
         tick_seconds: Interval of derived ticks.
-        check_time: Reject lines whose recorded ts goes backwards (as the live daemon does).
+        check_time: Remark on lines whose recorded ts goes backwards (as the live daemon does);
+            such a line is applied at the latest time seen either way.
+        sort: Sort the recording by its lines' ``ts`` first (stable; lines without one keep
+            the time of the line before them), for a recording merged from capture points.
+        changes: ``(after, change)`` pairs: ``change()`` is called before the first line
+            numbered above ``after`` (a journal's later setups, :mod:`tracker.shell.setup`).
         progress: Called with the number of lines done, every few thousand lines and at the end.
 
     Returns:
         The outputs and the summary.
     """
     lines = list(records)
+    if sort:
+        lines = sort_by_time(lines)
     intake = Intake(
         engine,
         root=root,
@@ -108,9 +130,19 @@ def replay(
     # out of its reach; unfreeze() at the end hands them back, with any cycles among them.
     # Left alone when the caller has frozen objects of its own.
     freeze = gc.get_freeze_count() == 0
+    pending = sorted(changes, key=lambda item: item[0])
     try:
         for start in range(0, len(lines), chunk):
-            for outputs in intake.feed_many(lines[start : start + chunk]):
+            block = lines[start : start + chunk]
+            while pending:  # a change inside this block: feed up to it, change, go on
+                cut = next((i for i, line in enumerate(block) if line.line > pending[0][0]), None)
+                if cut is None:
+                    break
+                for outputs in intake.feed_many(block[:cut]):
+                    result.add(outputs)
+                pending.pop(0)[1]()
+                block = block[cut:]
+            for outputs in intake.feed_many(block):
                 result.add(outputs)
             if freeze:
                 gc.freeze()
@@ -123,6 +155,20 @@ def replay(
         progress(len(lines))
     result.summary = finish_summary(engine, intake)
     return result
+
+
+def sort_by_time(lines: list[Record | BadLine]) -> list[Record | BadLine]:
+    """The lines in the order of their recorded ``ts`` (stable: equal times keep their order; a
+    line without a readable ``ts`` stays right after the line before it)."""
+    keyed: list[tuple[str, int, Record | BadLine]] = []
+    last = ""
+    for position, line in enumerate(lines):
+        when = parse_ts_or_none(line.ts) if line.ts is not None else None
+        if when is not None:
+            last = utc_text(when, "microseconds")
+        keyed.append((last, position, line))
+    keyed.sort(key=lambda item: (item[0], item[1]))
+    return [line for _, _, line in keyed]
 
 
 def finish_summary(engine: EngineLike, intake: Intake) -> dict[str, Any]:
@@ -161,7 +207,7 @@ def read_input(path: str | Path) -> Iterator[Record | BadLine]:
 
 
 def write_outputs(result: ReplayResult, out_dir: str | Path) -> list[Path]:
-    """Write targets.jsonl, alerts.jsonl, status.jsonl, errors.jsonl and summary.json.
+    """Write targets.jsonl, alerts.jsonl, status.jsonl, errors.jsonl, acks.jsonl, summary.json.
 
     Each JSON Lines file holds one wire-contract message per line in the order the engine produced
     them (:func:`tracker.edge.wire.encode`); ``summary.json`` is indented with sorted keys. Same
@@ -186,6 +232,7 @@ def write_outputs(result: ReplayResult, out_dir: str | Path) -> list[Path]:
             ("alerts.jsonl", result.alerts),
             ("status.jsonl", result.status),
             ("errors.jsonl", result.errors),
+            ("acks.jsonl", result.acks),
         ]
         for name, messages in groups:
             path = out / name

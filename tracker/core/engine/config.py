@@ -19,9 +19,21 @@ class EngineConfig(AlertConfig):
     Attributes:
         expiry_grace_seconds: An order expires this long after its end (fills of its last bin
             that arrive within the grace still count as live).
+        default_max_participation: The participation cap (a fraction of the market's volume)
+            of an order that names none. 0.25: a desk rarely lets one parent order take more
+            than a quarter of the market's volume, where its own trading starts to make the
+            price (common practice: caps of 10-25 % are usual); the highest usual cap binds
+            only orders that would otherwise dominate the tape. 1 caps at the whole volume.
+        fill_parking_seconds: A fill for an order not seen yet waits this long (event time)
+            for its order before it is given up as unassigned (with a critical alert).
+        fill_parking_max: At most this many fills wait at once; beyond it the oldest is given
+            up first.
     """
 
     expiry_grace_seconds: float = 0.0
+    default_max_participation: float = 0.25
+    fill_parking_seconds: float = 300.0
+    fill_parking_max: int = 10_000
 
     def __post_init__(self) -> None:
         super().__post_init__()
@@ -34,6 +46,24 @@ class EngineConfig(AlertConfig):
             raise InputError(
                 f"must be a number of seconds >= 0; got {grace!r}", field="expiry_grace_seconds"
             )
+        cap = self.default_max_participation
+        if isinstance(cap, bool) or not isinstance(cap, int | float) or not 0 < cap <= 1:
+            raise InputError(
+                f"must be a fraction in (0, 1], e.g. 0.25 for 25 %; got {cap!r}",
+                field="default_max_participation",
+            )
+        wait = self.fill_parking_seconds
+        if (
+            isinstance(wait, bool)
+            or not isinstance(wait, int | float)
+            or not (math.isfinite(wait) and wait >= 0)
+        ):
+            raise InputError(
+                f"must be a number of seconds >= 0; got {wait!r}", field="fill_parking_seconds"
+            )
+        most = self.fill_parking_max
+        if isinstance(most, bool) or not isinstance(most, int) or most < 0:
+            raise InputError(f"must be a whole number >= 0; got {most!r}", field="fill_parking_max")
 
     @classmethod
     def from_mapping(cls, data: Mapping[str, Any]) -> EngineConfig:

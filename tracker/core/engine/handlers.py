@@ -10,8 +10,18 @@ Decisions:
 
 * Overfill: the fill is recorded (it happened in the market), ``fill_overfill`` is raised and
   targets are never negative: remaining is ``max(quantity - filled, 0)``.
-* A fill for an unknown order: one ErrorMessage (the line is rejected) and one
-  ``fill_unknown_order`` alert on ``{root}/alerts/{order_id}``.
+* Fills are never dropped. A fill for an order not seen yet is *parked* (``fill_parked``, info):
+  it waits ``fill_parking_seconds`` of event time (at most ``fill_parking_max`` fills wait) and is
+  applied, in arrival order, when its order arrives; one whose order never comes is given up as
+  unassigned (``fill_unassigned``, critical; in the summary).
+* A fill id seen before with the same shares, price and side is a redelivery, whatever its ``ts``
+  (a gateway re-sending it restamps it): it changes nothing. With other content it is a conflict
+  (rejected, critical): the way to change a fill is a ``fill_correction`` message -- a bust (the
+  fill did not happen) or a correction (new quantity and/or price) -- which recomputes the
+  inventory, the average price and the plan, with an alert.
+* Cancels always win: a cancel is honoured whatever else it carries (echoed fields are ignored; a
+  symbol or side contradicting the order still cancels it, with ``cancel_mismatch``), and
+  whatever its ``ts``. A halt likewise.
 * Time going backwards is judged per stream: bins per symbol (by bin start), order messages per
   order, ticks among ticks, control among control messages. Fills carry their execution time and
   may arrive late: they are not rejected for it.
@@ -24,9 +34,10 @@ Decisions:
 from __future__ import annotations
 
 import heapq
+import math
 from collections.abc import Mapping
 from dataclasses import replace
-from datetime import date, datetime
+from datetime import date, datetime, timedelta
 from typing import Any
 
 from tracker.core import alerts as rules
@@ -38,7 +49,14 @@ from tracker.core.forecast import ObservedBin, forecast
 from tracker.core.formats import utc_text
 from tracker.core.formulation import Preferences, preferences
 from tracker.core.lifecycle import AMENDABLE, Event, Lifecycle, State, TransitionError
-from tracker.core.messages import BinMessage, ControlMessage, FillMessage, OrderMessage, Tick
+from tracker.core.messages import (
+    BinMessage,
+    ControlMessage,
+    FillCorrectionMessage,
+    FillMessage,
+    OrderMessage,
+    Tick,
+)
 from tracker.core.profiles import default_profile
 from tracker.errors import InputError
 
@@ -56,7 +74,11 @@ def on_tick(state: EngineState, step: Step, tick: Tick) -> None:
 
 def on_control(state: EngineState, step: Step, message: ControlMessage) -> None:
     """Halt or resume one order, or all (a halt of all also holds orders that start later)."""
-    if state.last_control is not None and message.ts < state.last_control:
+    if (
+        message.command != "halt"  # a halt is a safety action: never refused for its time
+        and state.last_control is not None
+        and message.ts < state.last_control
+    ):
         raise Rejected(
             f"control time {utc_text(message.ts)} is earlier than the previous control "
             f"message {utc_text(state.last_control)}; control messages must move forward"
@@ -80,7 +102,8 @@ def on_control(state: EngineState, step: Step, message: ControlMessage) -> None:
         targets = [
             state.orders[o] for o in sorted(state.orders) if state.orders[o].life.state in wanted
         ]
-    state.last_control = message.ts
+    if state.last_control is None or message.ts > state.last_control:
+        state.last_control = message.ts
     timers.advance(state, step, message.ts)
     for order in targets:
         if order.life.terminal:
@@ -130,7 +153,7 @@ def _control_event(state: EngineState, order: OrderState, command: str) -> Event
 def on_order(state: EngineState, step: Step, message: OrderMessage) -> None:
     """A new order, an amendment or a cancel (order messages of one order move forward)."""
     existing = state.orders.get(message.order_id)
-    if existing is not None and message.ts < existing.last_ts:
+    if existing is not None and message.action != "cancel" and message.ts < existing.last_ts:
         raise Rejected(
             f"ts: {utc_text(message.ts)} is earlier than the previous message of order "
             f"{message.order_id!r} ({utc_text(existing.last_ts)}); order messages must move "
@@ -143,15 +166,19 @@ def on_order(state: EngineState, step: Step, message: OrderMessage) -> None:
             f"order_id: unknown order {message.order_id!r}; send action 'new' before "
             f"'{message.action}'"
         )
-    else:
+    elif message.action == "amend":
         _check_identity(existing, message)
-        if message.action == "amend":
-            _amend(state, step, existing, message)
-        else:
-            _cancel(state, step, existing, message)
+        _amend(state, step, existing, message)
+    else:
+        _cancel(state, step, existing, message)
 
 
 def _check_identity(order: OrderState, message: OrderMessage) -> None:
+    if message.start is not None and message.start != order.start:
+        raise Rejected(
+            f"start: order {order.order_id!r} starts at {utc_text(order.start)}, not "
+            f"{utc_text(message.start)}; the start cannot be amended (cancel and send a new order)"
+        )
     if message.symbol is not None and message.symbol != order.symbol:
         raise Rejected(
             f"symbol: order {order.order_id!r} is on {order.symbol}, not {message.symbol}; "
@@ -197,7 +224,8 @@ def _new_order(
         first_bin=first_bin,
         end_bin=end_bin,
         limit_price=message.limit_price,
-        max_participation=message.max_participation,
+        max_participation=_cap(state, message.max_participation),
+        cap_source="order" if message.max_participation is not None else "default",
         urgency=message.urgency,
         overrides=dict(message.preferences) if message.preferences else None,
         prefs=_preferences(message.urgency, message.preferences),
@@ -215,6 +243,67 @@ def _new_order(
     timers.advance(state, step, message.ts)
     if order.life.state is State.PENDING:
         step.emit(outputs.status(state, order, message.ts))
+    _unpark(state, step, order)
+
+
+def _cap(state: EngineState, max_participation: float | None) -> float:
+    """The order's participation cap: its own, else the configured default."""
+    if max_participation is not None:
+        return max_participation
+    return state.config.default_max_participation
+
+
+def _unpark(state: EngineState, step: Step, order: OrderState) -> None:
+    """Apply the fills that waited for ``order``, in the order they arrived."""
+    if not any(fill.order_id == order.order_id for _, fill in state.parked):
+        return
+    step.undo.parking()
+    waiting = [fill for _, fill in state.parked if fill.order_id == order.order_id]
+    state.parked[:] = [entry for entry in state.parked if entry[1].order_id != order.order_id]
+    for fill in waiting:
+        try:
+            _count_fill(state, step, order, fill)
+        except Rejected as rejection:  # a parked fill that turns out wrong (its side): say so
+            step.emit(
+                outputs.error(
+                    state.topics, fill, f"parked fill applied to its order: {rejection.reason}"
+                )
+            )
+            step.out.extend(rejection.extra)
+
+
+def _park(state: EngineState, step: Step, fill: FillMessage) -> None:
+    """Keep a fill for an order not seen yet until its order comes (or its time is up)."""
+    for _, waiting in state.parked:
+        if waiting.fill_id == fill.fill_id and waiting.order_id == fill.order_id:
+            if waiting.same_execution(fill):
+                return  # the same fill again, still waiting
+            raise Rejected(
+                f"fill_id: {fill.fill_id!r} is already waiting for order {fill.order_id!r} "
+                f"with quantity {waiting.quantity} at {waiting.price}; send a fill_correction "
+                "to change it"
+            )
+    timers.advance(state, step, fill.ts)
+    now = state.now(fill.ts)
+    step.undo.parking()
+    until = now + timedelta(seconds=state.config.fill_parking_seconds)
+    state.parked.append((until, fill))
+    step.emit(
+        replace(
+            outputs.alert(
+                rules.FILL_PARKED,
+                f"Fill {fill.fill_id} ({fill.quantity:,} shares at {fill.price}) names an "
+                f"order not seen yet; it waits for it until {utc_text(until)} and is counted "
+                "when the order arrives.",
+                None,
+                None,
+                now,
+                {"fill_id": fill.fill_id, "quantity": fill.quantity, "price": fill.price},
+            ),
+            order_id=fill.order_id,
+        )
+    )
+    timers.unpark_overflow(state, step, now)
 
 
 def _preferences(urgency: str | None, overrides: Mapping[str, Any] | None) -> Preferences:
@@ -251,6 +340,8 @@ def _amend(state: EngineState, step: Step, order: OrderState, message: OrderMess
         except InputError as exc:
             raise Rejected(str(exc)) from None
     sets = message.sets
+    if sets("start") and message.start != order.start:
+        raise Rejected("start: the start cannot be amended (cancel and send a new order)")
     urgency = message.urgency if sets("urgency") else order.urgency
     overrides = dict(message.preferences or {}) or None if sets("preferences") else order.overrides
     prefs = order.prefs
@@ -268,7 +359,8 @@ def _amend(state: EngineState, step: Step, order: OrderState, message: OrderMess
     if message.limit_price is not None or message.removes_limit:
         order.limit_price = message.limit_price
     if sets("max_participation"):
-        order.max_participation = message.max_participation
+        order.max_participation = _cap(state, message.max_participation)
+        order.cap_source = "order" if message.max_participation is not None else "default"
     order.urgency, order.overrides, order.prefs = urgency, overrides, prefs
     timers.advance(state, step, message.ts)
     if order.life.terminal:
@@ -282,15 +374,39 @@ def _amend(state: EngineState, step: Step, order: OrderState, message: OrderMess
 
 
 def _cancel(state: EngineState, step: Step, order: OrderState, message: OrderMessage) -> None:
-    if not order.life.can(Event.CANCEL):
-        raise Rejected(
-            str(TransitionError(order.life.state, Event.CANCEL, order_id=order.order_id).reason)
-        )
+    """Cancel an order, whatever else the message carries (see the module docstring)."""
+    if order.life.terminal:
+        step.ack_note = f"the order is already {order.life.state.value}; nothing to cancel"
+        return
     step.undo.order(order)
-    order.last_ts = message.ts
+    if message.ts > order.last_ts:
+        order.last_ts = message.ts
     timers.advance(state, step, message.ts)
     if order.life.terminal:  # expired while time advanced: the cancel changes nothing
+        step.ack_note = f"the order is already {order.life.state.value}; nothing to cancel"
         return
+    contradictions = {
+        name: {"order": getattr(order, name), "cancel": getattr(message, name)}
+        for name in ("symbol", "side")
+        if getattr(message, name) is not None and getattr(message, name) != getattr(order, name)
+    }
+    if contradictions:
+        said = ", ".join(
+            f"{name} {values['cancel']} (the order's is {values['order']})"
+            for name, values in contradictions.items()
+        )
+        step.ack_note = f"cancelled; the cancel named {said}"
+        step.emit(
+            outputs.alert(
+                rules.CANCEL_MISMATCH,
+                f"A cancel for order {order.order_id} named {said}. The order is cancelled all "
+                "the same (cancels always win); check the router's order ids.",
+                order,
+                order.symbol,
+                message.ts,
+                {"contradictions": contradictions},
+            )
+        )
     order.life.apply(Event.CANCEL)
     order.live_until = message.ts
     step.to_plan.pop(order.order_id, None)
@@ -323,27 +439,22 @@ def _complete(state: EngineState, step: Step, order: OrderState, ts: datetime) -
 
 
 def on_fill(state: EngineState, step: Step, fill: FillMessage) -> None:
-    """A fill: recorded at once (it happened in the market) unless it cannot be counted."""
+    """A fill: recorded at once (it happened in the market) unless it cannot be counted; parked
+    when its order is not known yet."""
     order = state.orders.get(fill.order_id)
     if order is None:
-        alert = outputs.alert(
-            rules.FILL_UNKNOWN_ORDER,
-            f"Fill {fill.fill_id} ({fill.quantity:,} shares at {fill.price}) names an order "
-            "the engine does not know; it is not counted anywhere.",
-            None,
-            None,
-            fill.ts,
-            {"fill_id": fill.fill_id, "quantity": fill.quantity, "price": fill.price},
-        )
-        raise Rejected(
-            f"order_id: fill {fill.fill_id!r} is for order {fill.order_id!r}, which the "
-            "engine does not know; send the order (action 'new') before its fills",
-            [replace(alert, order_id=fill.order_id)],
-        )
-    previous = order.fills.get(fill.fill_id)
+        _park(state, step, fill)
+        return
+    _count_fill(state, step, order, fill)
+
+
+def _count_fill(state: EngineState, step: Step, order: OrderState, fill: FillMessage) -> None:
+    previous = order.fills.get(fill.fill_id) or order.busted.get(fill.fill_id)
     if previous is not None:
-        if previous == fill:
-            return  # the same fill again: it happened once
+        if previous.same_execution(fill) or (
+            fill.fill_id in order.busted and order.busted[fill.fill_id].same_execution(fill)
+        ):
+            return  # the same fill again (a redelivery, whatever its ts): it happened once
         alert = outputs.alert(
             rules.FILL_DUPLICATE_CONFLICT,
             f"Fill id {fill.fill_id} arrived again with different content; the first "
@@ -359,8 +470,8 @@ def on_fill(state: EngineState, step: Step, fill: FillMessage) -> None:
         )
         raise Rejected(
             f"fill_id: {fill.fill_id!r} was already accepted for order {order.order_id!r} "
-            f"with quantity {previous.quantity} at {previous.price}; a fill id cannot be "
-            "reused -- send a correction under a new fill id",
+            f"with quantity {previous.quantity} at {previous.price}; to change it send a "
+            "fill_correction (action 'correct' or 'bust') for this fill_id, not the fill again",
             [alert],
         )
     if fill.side is not None and fill.side != order.side:
@@ -421,6 +532,104 @@ def on_fill(state: EngineState, step: Step, fill: FillMessage) -> None:
         _complete(state, step, order, ts)
     else:
         step.emit(outputs.status(state, order, ts))
+
+
+def on_fill_correction(state: EngineState, step: Step, message: FillCorrectionMessage) -> None:
+    """A bust or a correction of an earlier fill: the inventory, the average price and the plan
+    are recomputed without it (bust) or with its new values (correction), with an alert."""
+    order = state.orders.get(message.order_id)
+    if order is None:
+        _correct_parked(state, step, message)
+        return
+    previous = order.fills.get(message.fill_id)
+    if previous is None:
+        if message.fill_id in order.busted:
+            if message.action == "bust":
+                return  # busted already: the same bust again
+            raise Rejected(
+                f"fill_id: fill {message.fill_id!r} of order {order.order_id!r} was busted; a "
+                "busted fill cannot be corrected -- send the execution as a new fill"
+            )
+        raise Rejected(
+            f"fill_id: order {order.order_id!r} has no fill {message.fill_id!r} to "
+            f"{message.action}; send the fill first, or name a fill it has"
+        )
+    corrected: FillMessage | None = None
+    if message.action == "correct":
+        corrected = replace(
+            previous,
+            quantity=message.quantity if message.quantity is not None else previous.quantity,
+            price=message.price if message.price is not None else previous.price,
+        )
+        if corrected == previous:
+            return  # the same correction again: nothing changes
+    step.undo.order(order)
+    timers.advance(state, step, message.ts)
+    fills = dict(order.fills)  # a new mapping: the savepoint keeps the old one (see there)
+    if corrected is None:
+        del fills[message.fill_id]
+        order.busted = {**order.busted, message.fill_id: previous}
+    else:
+        fills[message.fill_id] = corrected
+    order.fills = fills
+    order.filled = sum(fill.quantity for fill in fills.values())
+    order.notional = math.fsum(fill.quantity * fill.price for fill in fills.values())
+    ts = state.now(message.ts)
+    average = order.notional / order.filled if order.filled else None
+    details: dict[str, Any] = {
+        "fill_id": message.fill_id,
+        "before": {"quantity": previous.quantity, "price": previous.price},
+        "filled": order.filled,
+        "average_price": average,
+    }
+    if message.reason:
+        details["reason"] = message.reason
+    if corrected is None:
+        code = rules.FILL_BUSTED
+        text = (
+            f"Fill {message.fill_id} ({previous.quantity:,} shares at {previous.price}) was busted"
+        )
+    else:
+        code = rules.FILL_CORRECTED
+        details["after"] = {"quantity": corrected.quantity, "price": corrected.price}
+        text = (
+            f"Fill {message.fill_id} was corrected from {previous.quantity:,} at "
+            f"{previous.price} to {corrected.quantity:,} at {corrected.price}"
+        )
+    text += f"; the order has {order.filled:,} of {order.quantity:,} shares filled"
+    if order.life.terminal and order.filled < order.quantity:
+        text += f" and stays {order.life.state.value} (send a new order for the rest)"
+    step.emit(outputs.alert(code, text + ".", order, order.symbol, ts, details))
+    if not order.life.terminal and order.filled >= order.quantity:
+        _complete(state, step, order, ts)
+    elif order.life.state is State.WORKING:
+        step.to_plan.setdefault(order.order_id, "correction")
+    else:
+        step.emit(outputs.status(state, order, ts))
+
+
+def _correct_parked(state: EngineState, step: Step, message: FillCorrectionMessage) -> None:
+    """A bust or a correction of a fill still waiting for its order."""
+    for index, (until, fill) in enumerate(state.parked):
+        if fill.fill_id == message.fill_id and fill.order_id == message.order_id:
+            step.undo.parking()
+            timers.advance(state, step, message.ts)
+            if message.action == "bust":
+                del state.parked[index]
+            else:
+                state.parked[index] = (
+                    until,
+                    replace(
+                        fill,
+                        quantity=message.quantity or fill.quantity,
+                        price=message.price or fill.price,
+                    ),
+                )
+            return
+    raise Rejected(
+        f"order_id: no order {message.order_id!r} and no fill {message.fill_id!r} waiting for "
+        f"it; a {message.action} needs the fill first"
+    )
 
 
 def on_bin(state: EngineState, step: Step, message: BinMessage) -> None:
@@ -549,4 +758,4 @@ def _symbol(state: EngineState, step: Step, name: str) -> SymbolState:
     return sym
 
 
-__all__ = ["on_bin", "on_control", "on_fill", "on_order", "on_tick"]
+__all__ = ["on_bin", "on_control", "on_fill", "on_fill_correction", "on_order", "on_tick"]

@@ -23,12 +23,14 @@ from tracker.core.engine.config import EngineConfig
 from tracker.core.engine.savepoint import Savepoint
 from tracker.core.engine.state import EngineState
 from tracker.core.engine.step import Rejected, Step
+from tracker.core.forecast import forecast
 from tracker.core.lifecycle import State
 from tracker.core.messages import (
     AlertMessage,
     BinMessage,
     ControlMessage,
     ErrorMessage,
+    FillCorrectionMessage,
     FillMessage,
     Inbound,
     OrderMessage,
@@ -246,12 +248,45 @@ class Engine:
         sells alike: ``side_sign * (average_price - benchmark) / benchmark * 1e4``.
         """
         state = self._state
-        return {
+        summary: dict[str, Any] = {
             "orders": [
                 outputs.summary_row(state.orders[order_id], state.counts.get(order_id, Counter()))
                 for order_id in sorted(state.orders)
             ]
         }
+        # Fills whose order never came (given up, or still waiting at the end): never lost.
+        unassigned = [
+            *(outputs.unassigned_row(fill, "order never came") for fill in state.unassigned),
+            *(outputs.unassigned_row(fill, "still waiting") for _, fill in state.parked),
+        ]
+        if unassigned:
+            summary["unassigned_fills"] = unassigned
+        return summary
+
+    @property
+    def profiles(self) -> Mapping[str, Profile]:
+        """The liquidity profiles the engine was given (or last reconfigured with), by symbol."""
+        return dict(self._state.profiles)
+
+    def reconfigure(self, config: EngineConfig, profiles: Mapping[str, Profile]) -> None:
+        """Run on from now with other settings and profiles (a daemon restarted with new ones).
+
+        A symbol already seen switches to its new profile when the session is the same (its
+        forecast is redone from today's bins); one on another session keeps its profile for the
+        day (its bins are on the old grid).
+        """
+        state = self._state
+        self.config = config
+        state.config = config
+        state.grace = timedelta(seconds=config.expiry_grace_seconds)
+        state.profiles = dict(profiles)
+        for name in sorted(state.symbols):
+            sym = state.symbols[name]
+            new = profiles.get(name)
+            if new is None or new is sym.profile or new.session != sym.profile.session:
+                continue
+            sym.profile = new
+            sym.forecast = forecast(new, sym.observed)
 
     def state_of(self, order_id: str) -> State | None:
         """The lifecycle state of an order, or ``None`` if unknown."""
@@ -301,6 +336,7 @@ class Engine:
             *([state.starts[0][0]] if state.starts else []),
             *([state.ends[0][0] + state.grace] if state.ends else []),
             *([state.stale_due] if state.stale_due is not None else []),
+            *([state.parked[0][0]] if state.parked else []),
         ]
         return min(candidates) if candidates else None
 
@@ -324,14 +360,24 @@ class Engine:
                 handlers.on_control(state, step, event)
             elif isinstance(event, Tick):
                 handlers.on_tick(state, step, event)
+            elif isinstance(event, FillCorrectionMessage):
+                handlers.on_fill_correction(state, step, event)
             else:  # pragma: no cover - the type says it cannot happen
                 raise Rejected(f"unknown event type {type(event).__name__}")
         except Rejected as rejection:
             # Only a first-sight alert (default profile) can have been produced before a refusal.
             error = outputs.error(state.topics, event, rejection.reason)
-            return [error, *rejection.extra, *step.out]
+            return [
+                *outputs.refused_ack(event, rejection.reason),
+                error,
+                *rejection.extra,
+                *step.out,
+            ]
         except InputError as exc:  # a check deeper down (session, preferences): same contract
-            return [outputs.error(state.topics, event, str(exc)), *step.out]
+            error = outputs.error(state.topics, event, str(exc))
+            return [*outputs.refused_ack(event, str(exc)), error, *step.out]
+        if isinstance(event, OrderMessage):  # the one reply to an order message, first
+            step.out.insert(0, outputs.ack(event, "accepted", step.ack_note))
         if self._retry:
             step.retried = frozenset(self._retry)
             for order_id, reason in self._retry.items():

@@ -23,13 +23,15 @@ from tracker.core import alerts as rules
 from tracker.core.alerts import Check
 from tracker.core.engine.state import Deviation, EngineState, OrderState, SymbolState
 from tracker.core.engine.step import Step
-from tracker.core.formats import rounded
-from tracker.core.lifecycle import LIVE
+from tracker.core.formats import rounded, utc_text
+from tracker.core.lifecycle import LIVE, State
 from tracker.core.messages import (
+    AckMessage,
     AlertMessage,
     BinMessage,
     ControlMessage,
     ErrorMessage,
+    FillCorrectionMessage,
     FillMessage,
     Inbound,
     OrderMessage,
@@ -88,8 +90,57 @@ def target(
         participation=participation,
         max_participation=max_participation,
         plan_version=order.plan_version,
+        state=order.life.state.value,
+        reason=target_reason(state, order, quantity, max_quantity),
+        next_bins=next_bins(state, order, index),
         ts=ts,
     )
+
+
+#: How many bins of the plan after a target's bin the target carries (``next_bins``).
+NEXT_BINS = 3
+
+
+def target_reason(
+    state: EngineState, order: OrderState, quantity: int, max_quantity: int | None
+) -> str:
+    """Why a target's quantity is what it is (the wire's ``reason``; the first that applies).
+
+    The order's own state when it is not working (``pending``, ``halted``, ``done``,
+    ``cancelled``, ``expired``); then ``limit_blocked`` (the market is beyond its limit),
+    ``capped`` (the participation cap binds), ``catching_up`` (behind the baseline plan: the
+    ``behind_plan`` alert is raised), else ``on_plan``.
+    """
+    life = order.life.state
+    if life is not State.WORKING:
+        return life.value
+    if order.blocked:
+        return "limit_blocked"
+    if max_quantity is not None and quantity > 0 and quantity >= max_quantity:
+        return "capped"
+    if state.book.is_raised(order.order_id, rules.BEHIND_PLAN):
+        return "catching_up"
+    return "on_plan"
+
+
+def next_bins(state: EngineState, order: OrderState, index: int) -> tuple[dict[str, Any], ...]:
+    """The plan's next :data:`NEXT_BINS` bins after bin ``index``: times and planned shares
+    (none when the order is not working or has no plan)."""
+    plan = order.plan
+    if plan is None or order.life.state is not State.WORKING or plan.cumulative.size == 0:
+        return ()
+    rows: list[dict[str, Any]] = []
+    for bin_index in range(index + 1, index + 1 + NEXT_BINS):
+        offset = bin_index - plan.first_bin
+        if offset < 0 or offset >= plan.cumulative.size:
+            break
+        before = float(plan.cumulative[offset - 1]) if offset > 0 else 0.0
+        start, end = bin_times(state, order, bin_index)
+        if start is None or end is None:
+            break
+        shares = max(round(float(plan.cumulative[offset]) - before), 0)
+        rows.append({"bin_start": utc_text(start), "bin_end": utc_text(end), "quantity": shares})
+    return tuple(rows)
 
 
 def status(
@@ -125,6 +176,8 @@ def status(
         expected_cost=cost,
         expected_cost_bps=cost_bps,
         plan_version=order.plan_version,
+        max_participation=order.max_participation,
+        cap_source=order.cap_source,
         ts=ts,
     )
 
@@ -183,11 +236,43 @@ def replan_failed(order: OrderState, ts: datetime, why: str) -> AlertMessage:
     )
 
 
+def ack(message: OrderMessage, result: str, reason: str | None) -> AckMessage:
+    """The reply to an order message: ``accepted`` or ``rejected``, and why."""
+    return AckMessage(
+        order_id=message.order_id,
+        action=message.action,
+        result="accepted" if result == "accepted" else "rejected",
+        reason=reason,
+        message_ts=message.ts,
+        ts=message.ts,
+    )
+
+
+def refused_ack(event: Inbound, reason: str) -> list[Outbound]:
+    """The rejected reply of a refused order message (nothing for other messages)."""
+    return [ack(event, "rejected", reason)] if isinstance(event, OrderMessage) else []
+
+
+def unassigned_row(fill: FillMessage, why: str) -> dict[str, Any]:
+    """A fill no order took, as the summary lists it (with the fields beyond the contract)."""
+    row: dict[str, Any] = {
+        "fill_id": fill.fill_id,
+        "order_id": fill.order_id,
+        "quantity": fill.quantity,
+        "price": rounded(fill.price),
+        "ts": utc_text(fill.ts),
+        "why": why,
+    }
+    if fill.extra:
+        row["extra"] = dict(fill.extra)
+    return row
+
+
 def topic_and_order(topics: Topics, event: Inbound) -> tuple[str, str | None]:
     """The topic an event arrived on and the order it names."""
     if isinstance(event, OrderMessage):
         return topics.orders(event.order_id), event.order_id
-    if isinstance(event, FillMessage):
+    if isinstance(event, FillMessage | FillCorrectionMessage):
         return topics.fills(event.order_id), event.order_id
     if isinstance(event, BinMessage):
         return topics.bins(event.symbol), None
@@ -280,15 +365,20 @@ def summary_row(order: OrderState, counts: Counter[str]) -> dict[str, Any]:
 
 
 __all__ = [
+    "ack",
     "alert",
     "apply_check",
     "bin_times",
     "error",
     "fill_price_alerts",
+    "next_bins",
     "order_key",
+    "refused_ack",
     "replan_failed",
     "status",
     "summary_row",
     "target",
+    "target_reason",
     "topic_and_order",
+    "unassigned_row",
 ]

@@ -7,7 +7,9 @@ makes to an order, a symbol or the engine's timers goes through it first: the sa
 field values of each record the first time it is touched (a shallow copy: fills, bins and
 forecasts are only ever added to or replaced, so remembering how many there were is enough), the
 engine-wide values (event time, the last tick and control times, the halt of all orders) and,
-lazily, the start and end heaps. The alert book keeps its own log of changes
+lazily, the start and end heaps and the parked fills. A bust or a correction replaces an order's
+``fills`` (and ``busted``) mapping with a changed copy rather than changing it in place, so the
+saved field values still hold the mapping as it was. The alert book keeps its own log of changes
 (:meth:`~tracker.core.alerts.AlertBook.mark`).
 
 :meth:`Savepoint.rollback` puts all of it back as it was; :meth:`Savepoint.release` keeps the
@@ -24,6 +26,7 @@ from typing import Any
 
 from tracker.core.engine.state import EngineState, OrderState, SymbolState
 from tracker.core.lifecycle import State
+from tracker.core.messages import FillMessage
 
 _ORDER_FIELDS = tuple(item.name for item in fields(OrderState))
 _SYMBOL_FIELDS = tuple(item.name for item in fields(SymbolState))
@@ -49,6 +52,7 @@ class Savepoint:
         "_new_orders",
         "_new_symbols",
         "_orders",
+        "_parking",
         "_scalars",
         "_state",
         "_symbols",
@@ -71,6 +75,7 @@ class Savepoint:
         self._new_orders: list[str] = []
         self._new_symbols: list[str] = []
         self._heaps: tuple[list[tuple[datetime, str]], list[tuple[datetime, str]]] | None = None
+        self._parking: tuple[list[tuple[datetime, FillMessage]], int] | None = None
         state.book.mark()
 
     def order(self, order: OrderState) -> None:
@@ -90,6 +95,11 @@ class Savepoint:
         """Call before pushing to or popping from the start and end heaps."""
         if self._heaps is None:
             self._heaps = (list(self._state.starts), list(self._state.ends))
+
+    def parking(self) -> None:
+        """Call before changing the parked fills or the unassigned ones."""
+        if self._parking is None:
+            self._parking = (list(self._state.parked), len(self._state.unassigned))
 
     def new_order(self, order: OrderState) -> None:
         """An order the event created (undone by forgetting it)."""
@@ -134,6 +144,9 @@ class Savepoint:
         if self._heaps is not None:
             state.starts[:] = self._heaps[0]
             state.ends[:] = self._heaps[1]
+        if self._parking is not None:
+            state.parked[:] = self._parking[0]
+            del state.unassigned[self._parking[1] :]
         state.book.rollback()
 
     def release(self) -> None:

@@ -108,6 +108,8 @@ class OrderState:
     vwap_volume: float = 0.0
     vwap_notional: float = 0.0
     volume_scale: float | None = None
+    cap_source: str | None = None  # where max_participation came from: "order" or "default"
+    busted: dict[str, FillMessage] = field(default_factory=dict)  # fills a bust took back
     fill_ratio: FillRatio = NO_EVIDENCE  # how its targets fill (tracker.core.engine.learning)
     worked: WorkedBin | None = None  # the target of the bin ahead, as published
 
@@ -196,6 +198,9 @@ class EngineState:
         starts, ends: Heaps of (time, order id): orders to start and to expire.
         stale_due: The earliest time a watched symbol may turn stale (None: none watched).
         halt_all: A halt of all orders is on (orders that start meanwhile are held too).
+        parked: Fills for orders not seen yet, in arrival order, each with the event time at
+            which it stops waiting (``fill_parking_seconds`` after it arrived).
+        unassigned: Parked fills whose order never came (in the summary as unassigned shares).
     """
 
     config: EngineConfig
@@ -213,6 +218,8 @@ class EngineState:
     starts: list[tuple[datetime, str]] = field(default_factory=list)
     ends: list[tuple[datetime, str]] = field(default_factory=list)
     stale_due: datetime | None = None
+    parked: list[tuple[datetime, FillMessage]] = field(default_factory=list)
+    unassigned: list[FillMessage] = field(default_factory=list)
 
     def now(self, ts: datetime) -> datetime:
         """Event time, or ``ts`` before any time was seen."""

@@ -53,6 +53,8 @@ class Step:
         jobs: The re-plans built from ``to_plan``, ready to solve.
         offsets: Cache: (symbol, time) -> (local day, bin offset) of the symbol's session.
         retried: The orders whose re-plan a failed event left to this one (tried once more).
+        ack_note: For an order message the engine accepted: a remark for its acknowledgement
+            (say, a cancel of an order already done), else ``None``.
     """
 
     ts: datetime
@@ -62,6 +64,7 @@ class Step:
     jobs: list[ReplanJob] = field(default_factory=list)
     offsets: dict[tuple[str, datetime], tuple[date, float]] = field(default_factory=dict)
     retried: frozenset[str] = frozenset()
+    ack_note: str | None = None
 
     def emit(self, message: Outbound | None) -> None:
         """Add an output (``None``: nothing to say)."""

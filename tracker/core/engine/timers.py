@@ -3,11 +3,13 @@
 Every event moves event time (never back) before the engine applies it, and a
 :class:`~tracker.core.messages.Tick` moves it when no message arrives; :func:`advance` then starts
 the pending orders whose start has come, expires the orders whose end (plus the grace) has passed,
-and judges the watched symbols whose next bin is overdue. The engine never reads a clock.
+gives up the parked fills whose order did not come in time, and judges the watched symbols whose
+next bin is overdue. The engine never reads a clock.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import heapq
 from datetime import datetime
 
@@ -17,6 +19,7 @@ from tracker.core.engine.planning import zero_target
 from tracker.core.engine.state import EngineState, OrderState
 from tracker.core.engine.step import Step
 from tracker.core.lifecycle import Event, State
+from tracker.core.messages import FillMessage
 
 
 def advance(state: EngineState, step: Step, ts: datetime) -> None:
@@ -37,7 +40,37 @@ def advance(state: EngineState, step: Step, ts: datetime) -> None:
         order = state.orders[order_id]
         if order.end == end and not order.life.terminal:
             expire(state, step, order, now)
+    if state.parked and state.parked[0][0] < now:
+        step.undo.parking()
+        while state.parked and state.parked[0][0] < now:
+            _, fill = state.parked.pop(0)
+            unassign(state, step, fill, now, "its order did not arrive in time")
     judge_staleness(state, step, now)
+
+
+def unpark_overflow(state: EngineState, step: Step, now: datetime) -> None:
+    """Give up the oldest parked fills while more than ``fill_parking_max`` wait."""
+    while len(state.parked) > state.config.fill_parking_max:
+        step.undo.parking()
+        _, fill = state.parked.pop(0)
+        unassign(state, step, fill, now, "too many fills were waiting for their orders")
+
+
+def unassign(state: EngineState, step: Step, fill: FillMessage, now: datetime, why: str) -> None:
+    """A parked fill is given up: kept as unassigned shares (summary), with a critical alert."""
+    step.undo.parking()
+    state.unassigned.append(fill)
+    alert = outputs.alert(
+        rules.FILL_UNASSIGNED,
+        f"Fill {fill.fill_id} ({fill.quantity:,} shares at {fill.price}) names order "
+        f"{fill.order_id}, which the engine does not know, and {why}: its shares are "
+        "unassigned (in the summary). Send the order, or book the shares by hand.",
+        None,
+        None,
+        now,
+        {"fill_id": fill.fill_id, "quantity": fill.quantity, "price": fill.price},
+    )
+    step.emit(dataclasses.replace(alert, order_id=fill.order_id))
 
 
 def start(state: EngineState, step: Step, order: OrderState, now: datetime) -> None:
@@ -71,6 +104,7 @@ def expire(state: EngineState, step: Step, order: OrderState, now: datetime) -> 
     step.to_plan.pop(order.order_id, None)
     residual = order.remaining
     state.book.clear_silently(order.order_id)
+    step.emit(zero_target(state, step, order, now))  # the order's last target
     step.emit(outputs.status(state, order, now))
     if residual > 0:
         message = (
@@ -125,4 +159,4 @@ def judge_staleness(state: EngineState, step: Step, now: datetime) -> None:
     state.stale_due = due
 
 
-__all__ = ["advance", "expire", "judge_staleness", "start"]
+__all__ = ["advance", "expire", "judge_staleness", "start", "unassign", "unpark_overflow"]
