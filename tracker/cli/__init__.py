@@ -27,6 +27,7 @@ COMMANDS: tuple[str, ...] = (
     "watch",
     "journal",
     "demo",
+    "schema",
 )
 
 CAUTION = (
