@@ -333,6 +333,8 @@ def test_stale_market_data_raised_and_cleared(recorder: Recorder) -> None:
 def test_tiny_participation_cap_makes_completion_infeasible(recorder: Recorder) -> None:
     """A 1 % cap cannot complete 200,000 shares in a day: one critical alert, cap respected."""
     started(recorder, quantity=200_000, max_participation=0.01)
+    first = recorder.targets("A")[-1]  # filled in full: the fill ratio stays 1
+    recorder.feed(fill("A", "F1", first.quantity, 20.0, ts=at(4)))
     recorder.feed(closed_bin(0))
     alerts = recorder.alerts("completion_infeasible", "A")
     target = recorder.targets("A")[-1]

@@ -75,7 +75,7 @@ def test_the_order_s_last_bin_targets_the_cap() -> None:
     allows."""
     recorder = Recorder(Engine())
     recorder.feed(
-        order("A", "ZEPH", "buy", 2_000, _at(380), _at(390), ts=_at(370), max_participation=0.2)
+        order("A", "ZEPH", "buy", 2_000, _at(385), _at(390), ts=_at(370), max_participation=0.2)
     )
     for index in range(77):
         start = OPEN + index * BIN
@@ -115,6 +115,21 @@ def test_a_bin_is_judged_on_its_real_volume() -> None:
     )
     order_ratio, _ = learn(FillRatio(), FillRatio(), worked, 30_000.0, 4_000)
     assert (3_000.0, 3_000.0, 1) == (order_ratio.filled, order_ratio.targeted, order_ratio.bins)
+
+
+def test_a_bin_filled_to_the_cap_is_not_counted() -> None:
+    """Fills that reached the cap of the real volume say the cap stopped them, not the router:
+    the bin is censored and left out of the ratio."""
+    worked = WorkedBin(
+        index=5,
+        quantity=8_000,
+        participation=0.3,
+        max_participation=0.2,
+        remaining=50_000,
+        filled_at=0,
+    )
+    order_ratio, _ = learn(FillRatio(), FillRatio(), worked, 30_000.0, 6_000)
+    assert FillRatio() == order_ratio
 
 
 def test_targets_grow_when_fills_fall_short() -> None:

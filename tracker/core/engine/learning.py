@@ -9,9 +9,11 @@ engine measures, per order, the *fill ratio* of its targets and sizes targets an
 
 Per bin the order had a target for (:class:`WorkedBin`, kept when the target is published), when
 the bin closes the engine knows what the router could work: the target's ``participation`` times
-the bin's *real* volume (else its ``quantity``), never more than the cap times the real volume nor
-what was left. The fills since the target was published are what it got. The ratio of the sums,
-over the bins the order had a positive target in, is the order's evidence (:class:`FillRatio`).
+the bin's *real* volume (else its ``quantity``), never more than what was left. The fills since
+the target was published are what it got. The ratio of the sums, over the bins the order had a
+positive target in, is the order's evidence (:class:`FillRatio`). A bin whose fills reached the
+cap times the real volume is censored (the cap, not the router, stopped it: the ratio is only
+known to be at least what it shows) and is not counted.
 
 Shrinkage (a normal-prior posterior mean on the ratio, as the forecast does for the day's scale):
 with ``m`` bins of evidence and the prior worth :data:`PRIOR_BINS` bins, the estimate is
@@ -24,7 +26,8 @@ problem for an alert, not for sizing).
 
 How it is used (:mod:`tracker.core.engine.planning`): with ratio ``r`` the remaining-horizon
 problem caps each bin's *fills* at ``r x cap x forecast volume`` (what the cap lets the router
-get), and the target of the bin ahead asks for the planned fills divided by ``r``, at most the cap.
+get), and the target of the bin ahead asks for the planned fills divided by ``r``, at most the
+cap divided by ``r`` (the cap bounds the fills, not what the router works).
 
 Fills that arrive after their bin has closed count toward the next bin; the error is one bin's
 worth of a late report, and washes out in the sums.
@@ -96,13 +99,18 @@ class WorkedBin:
 
     def workable(self, volume: float) -> float:
         """What a router could work on the bin's real ``volume``: the rate (else the shares),
-        at most the cap times the volume and what was left."""
+        at most what was left."""
         wanted = (
             self.participation * volume if self.participation is not None else float(self.quantity)
         )
-        if self.max_participation is not None:
-            wanted = min(wanted, math.floor(self.max_participation * volume + 1e-9))
         return max(min(wanted, float(self.remaining)), 0.0)
+
+    def censored(self, volume: float, filled: float) -> bool:
+        """Whether ``filled`` reached the cap of the bin's real ``volume`` (so the cap, not the
+        router's fill ratio, set it)."""
+        if self.max_participation is None:
+            return False
+        return filled >= math.floor(self.max_participation * volume + 1e-9) - 1.0
 
 
 #: No evidence yet (the default of an order and a symbol).
@@ -122,9 +130,9 @@ def learn(
         filled: The order's filled shares now.
     """
     workable = worked.workable(volume)
-    if workable < 1.0:
-        return order_ratio, symbol_ratio
     got = float(max(filled - worked.filled_at, 0))
+    if workable < 1.0 or worked.censored(volume, got):
+        return order_ratio, symbol_ratio
     return order_ratio.add(got, workable), symbol_ratio.add(got, workable)
 
 

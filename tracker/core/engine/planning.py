@@ -16,7 +16,9 @@ rate is the cap: everything the cap of the real volume allows.
 Plans that expect to fall short: before an order is re-planned at a bin close, the bin's target is
 judged against what filled (:mod:`tracker.core.engine.learning`); with the order's fill ratio
 ``r`` the problem caps each bin's fills at ``r x cap x forecast volume`` and the target asks for
-the planned fills over ``r`` (at most the cap).
+the planned fills over ``r``, at most the cap over ``r``: a router that fills a share ``r`` of
+what it works then executes up to the cap, and the cap (``max_participation``) still bounds what
+it executes.
 
 When the last price is beyond an order's limit, the next bin's target is zero and the plan is
 re-solved over the bins after it. A re-plan that cannot be made (the solver fails, or a problem
@@ -244,11 +246,15 @@ def _next_target(
     """The target of the bin ahead under the new plan (None: no bin of the order is left).
 
     Shares at the forecast volume and the same as a rate of it (``participation``); the rate is
-    the cap in the order's last bin and when the plan cannot complete (module docstring).
+    the cap in the order's last bin and when the plan cannot complete (module docstring). With a
+    fill ratio ``r`` below 1 the target asks for the planned fills over ``r``, up to the cap over
+    ``r``: ``quantity`` and ``participation`` may then exceed ``max_quantity`` and
+    ``max_participation``, which bound the fills (what the router executes), not what it works.
     """
     order, first = job.order, job.first
     if first >= sym.profile.session.n_bins or first >= order.end_bin:
         return None
+    ratio = fill_ratio(order, sym)
     volume = max(float(sym.forecast.volume[first]), 1.0)  # as build_problem has it
     if job.fraction != 1.0:
         volume = max(volume * job.fraction, 1.0)
@@ -260,13 +266,13 @@ def _next_target(
     elif rate is not None and (schedule.status == CAPPED_SHORTFALL or first == order.end_bin - 1):
         wanted, at_cap = math.inf, True
     else:
-        wanted = float(schedule.trades[0]) / fill_ratio(order, sym)
+        wanted = float(schedule.trades[0]) / ratio
     max_quantity = None if cap is None else math.floor(cap + 1e-9)
     quantity = min(wanted, float(order.remaining))
-    if max_quantity is not None:
-        quantity = min(quantity, float(max_quantity))
+    if cap is not None:  # the most whose expected fills fit under the cap
+        quantity = min(quantity, math.floor(cap / ratio + 1e-9))
     quantity = max(0, round(quantity))
-    participation = rate if at_cap else quantity / volume
+    participation = rate / ratio if at_cap and rate is not None else quantity / volume
     step.undo.order(order)
     previous = order.worked
     order.worked = learning.WorkedBin(

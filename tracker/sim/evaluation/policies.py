@@ -10,8 +10,9 @@ hears what filled (:meth:`Policy.after`). Four policies:
   dicts and passed through :func:`tracker.edge.wire.decode`; its outputs are read only through
   :func:`tracker.edge.wire.to_json_object` and :func:`tracker.edge.wire.topic_of`, as a router
   would read them off the bus. The router works each target the engine publishes for a bin: when
-  the target carries a ``participation`` rate, that rate of the bin's real volume (at most
-  ``max_participation`` of it), as a router that sees the market would; else its ``quantity``.
+  the target carries a ``participation`` rate, that rate of the bin's real volume, executing at
+  most ``max_participation`` of it, as a router that sees the market would; else its
+  ``quantity``.
 * ``opening-plan`` -- the plan made at the start with the same formulation and solver
   (:func:`tracker.core.formulation.build_problem`, :func:`tracker.core.solve.solve`), never
   re-solved; each bin it asks for the planned cumulative (in whole shares) minus what has filled,
@@ -269,11 +270,11 @@ class EnginePolicy:
         quantity, rate, cap = self._targets.get(n, (0, None, None))
         if rate is None:
             return quantity
-        volume = float(self._day.volume[n])
-        wanted = round(rate * volume)  # the rate is written to 6 decimals: to the nearest share
-        if cap is not None:
-            wanted = min(wanted, math.floor(cap * volume + 1e-9))
-        return max(wanted, 0)
+        # The rate is written to 6 decimals: to the nearest share. The cap bounds what is
+        # executed, which the router (Execution.fill) applies to the fills with the same rate.
+        if cap is not None and cap != self._day.order.max_participation:
+            raise EvaluationError(f"the target's cap {cap} is not the order's")
+        return max(round(rate * float(self._day.volume[n])), 0)
 
     def after(self, n: int, shares: int, price: float) -> None:
         if shares > 0:
