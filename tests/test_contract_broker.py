@@ -38,9 +38,15 @@ def broker(tmp_path: Path) -> Iterator[PrivateMosquitto]:
         yield running
 
 
-def _daemon(folder: Path, broker: PrivateMosquitto) -> DaemonProcess:
+def _daemon(folder: Path, broker: PrivateMosquitto, journal: Path | None = None) -> DaemonProcess:
+    """A daemon subprocess, connected (a restart gets its own folder, so its own log)."""
     daemon = DaemonProcess(
-        folder, broker.url, root=ROOT, instance="conf", extra=("--clock-start", CLOCK_START)
+        folder,
+        broker.url,
+        root=ROOT,
+        instance="conf",
+        journal=journal,
+        extra=("--clock-start", CLOCK_START),
     )
     daemon.start()
     daemon.wait_connected()
@@ -102,7 +108,7 @@ def test_router_behaviour_live(tmp_path: Path, broker: PrivateMosquitto, case: C
         if case.restart_after:
             before = _retained(broker.port, f"{ROOT}/targets/{ORDER_ID}")
             assert 0 == daemon.terminate()
-            daemon = _daemon(folder, broker)
+            daemon = _daemon(tmp_path / "restarted", broker, folder / "journal.sqlite")
             # A router restarting mid-bin reads the latest target at once (retained).
             after = _retained(broker.port, f"{ROOT}/targets/{ORDER_ID}")
             assert before is not None and before == after
@@ -137,3 +143,26 @@ def test_router_behaviour_live(tmp_path: Path, broker: PrivateMosquitto, case: C
     assert 0 == main(["replay", str(folder / "journal.sqlite"), "--out", str(out)])
     (row,) = json.loads((out / "summary.json").read_text())["orders"]
     assert (case.filled, case.state) == (row["filled"], row["state"])
+
+
+def test_restarted_daemon_logs_nothing_twice(tmp_path: Path, broker: PrivateMosquitto) -> None:
+    """What a daemon logged (a rejected message, an alert) is not logged again after a restart."""
+    folder = tmp_path / "daemon"
+    daemon = _daemon(folder, broker)
+    try:
+        _pub(broker.port, f"{ROOT}/fills/{ORDER_ID}", '{"type": "fill", "quantity": -1')
+        topic, payload, _ = CASES["fill-before-order"].lines[0]
+        _pub(broker.port, topic, json.dumps(payload))  # parked: an info alert
+        wait_until(lambda: _count(daemon) >= 2, 60, "two messages journaled")
+        assert 0 == daemon.terminate()
+        first = daemon.log_text()
+        daemon = _daemon(tmp_path / "restarted", broker, folder / "journal.sqlite")
+        assert 0 == daemon.terminate()
+    finally:
+        daemon.cleanup()
+    logged = [
+        [json.loads(line).get("event") for line in text.splitlines()]
+        for text in (first, daemon.log_text())
+    ]
+    expected = [(1, 1, 1), (0, 0, 1)]
+    assert expected == [(e.count("rejected"), e.count("alert"), e.count("stopped")) for e in logged]

@@ -280,7 +280,7 @@ class Daemon:
     ) -> None:
         try:
             if self._journal is not None and not self._journal_broken:
-                self._journal.mark_published(self.published_through)
+                self._journal.mark_published(self.published_through, logged=self._applied)
             if exc_type is None and self.settings.summary is not None:
                 self.write_summary(self.settings.summary)
         finally:
@@ -417,7 +417,8 @@ class Daemon:
         assert self._intake is not None
         mark = self.journal.published_through
         self._persisted_mark = mark
-        self._logged_through = mark  # what was published before was logged then
+        # What was applied before (published, or marked logged) was logged then: not again.
+        self._logged_through = max(mark, self.journal.logged_through)
         pending = list(later or [])
         for record in self.journal.records():
             while pending and record.line > pending[0][0]:
@@ -569,7 +570,10 @@ class Daemon:
         # The commit (an fsync with durability "full") runs in a worker thread: meanwhile the
         # loop keeps reading, so the next group is larger when the disk is slow (group commit).
         seqs = await asyncio.to_thread(
-            self.journal.append_many, rows, published_through=self._mark_to_persist()
+            self.journal.append_many,
+            rows,
+            published_through=self._mark_to_persist(),
+            logged_through=self._applied,
         )
         self.commits += 1
         for item in batch:

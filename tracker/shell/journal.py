@@ -318,6 +318,7 @@ class Journal:
         rows: Sequence[tuple[str, bytes, str]],
         *,
         published_through: int | None = None,
+        logged_through: int | None = None,
     ) -> list[int]:
         """Append records in one transaction and commit it (durably, per the policy).
 
@@ -325,6 +326,8 @@ class Journal:
             rows: ``(topic, payload, ts)`` per record, in order of application.
             published_through: When given, also record that the outputs of every record up to
                 this sequence number have been published (same transaction).
+            logged_through: When given, also record that every record up to this sequence
+                number has been applied and logged (a restart does not log them again).
 
         Returns:
             The sequence numbers given to the rows.
@@ -344,6 +347,8 @@ class Journal:
                     seqs.append(seq)
                 if published_through is not None:
                     self._set_published_through(published_through)
+                if logged_through is not None:
+                    self._set_meta("logged_through", logged_through)
         except sqlite3.Error as exc:
             raise JournalWriteError(
                 f"cannot write to {self.path}: {exc}; nothing of this group was journaled (free "
@@ -392,10 +397,20 @@ class Journal:
         """The journal's self-description, oldest first (empty for a journal without one)."""
         return _setup_rows(self._db)
 
-    def mark_published(self, seq: int) -> None:
-        """Record that the outputs of every record up to ``seq`` have been published."""
+    def mark_published(self, seq: int, logged: int | None = None) -> None:
+        """Record that the outputs of every record up to ``seq`` have been published (and,
+        when given, that every record up to ``logged`` has been applied and logged)."""
         with self._transaction():
             self._set_published_through(seq)
+            if logged is not None:
+                self._set_meta("logged_through", logged)
+
+    def _set_meta(self, key: str, value: int) -> None:
+        self._db.execute(
+            "INSERT INTO meta(key, value) VALUES (?, ?) "
+            "ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+            (key, str(value)),
+        )
 
     def _set_published_through(self, seq: int) -> None:
         self._db.execute(
@@ -413,6 +428,12 @@ class Journal:
     def published_through(self) -> int:
         """Sequence number up to which the daemon's outputs were confirmed published (0: none)."""
         row = self._db.execute("SELECT value FROM meta WHERE key = 'published_through'").fetchone()
+        return int(row[0]) if row else 0
+
+    @property
+    def logged_through(self) -> int:
+        """Sequence number up to which the daemon applied and logged the records (0: none)."""
+        row = self._db.execute("SELECT value FROM meta WHERE key = 'logged_through'").fetchone()
         return int(row[0]) if row else 0
 
     def records(self, after: int = 0) -> Iterator[Record]:
