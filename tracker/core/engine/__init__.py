@@ -19,12 +19,17 @@ Events:
   info alert once per symbol). It is ``pending`` until its start; then it is planned over its own
   remaining bins and its first target is published. ``amend`` (quantity, end, limit price,
   participation cap, urgency, preferences) re-plans at once and resets the baseline; ``cancel``
-  publishes a zero target.
+  publishes a final zero target and always wins (whatever else it carries, whatever its ``ts``).
+  Every order message gets one :class:`~tracker.core.messages.AckMessage` (accepted or
+  rejected, and why). An order without a participation cap gets ``default_max_participation``.
 * ``fill``: recorded at once (status published); an overfill, a fill on an ended order and a fill
-  whose price is far outside its bin's range raise alerts. A fill for an unknown order, a fill id
-  seen before with different content and a fill whose side differs from the order's are rejected:
-  one :class:`~tracker.core.messages.ErrorMessage` each, plus a one-shot alert on the order's alert
-  topic. The same fill again changes nothing and returns nothing.
+  whose price is far outside its bin's range raise alerts. A fill for an order not seen yet is
+  parked until its order arrives (or, after ``fill_parking_seconds``, kept as unassigned with a
+  critical alert). A fill id seen before with other shares, price or side, and a fill whose side
+  differs from the order's, are rejected: one :class:`~tracker.core.messages.ErrorMessage` each,
+  plus a one-shot alert. The same fill again (whatever its ``ts``) changes nothing.
+* ``fill_correction``: a bust or a correction of an earlier fill; inventory, average price and
+  plan are recomputed, with an alert.
 * ``bin`` (a symbol's bin closed): the intraday forecast is updated; for every working order on
   the symbol the remaining horizon is re-solved from the realized inventory -- all orders of the
   event in one :func:`~tracker.core.solve.solve_batch` call -- and the next bin's target, the status
@@ -32,7 +37,11 @@ Events:
 * ``control``: halt or resume one order or all (a global halt also holds orders that start while
   it is on). A halt publishes a zero target.
 * ``tick`` (and every other event): starts pending orders whose start has come, expires orders
-  whose end has passed, and judges stale market data.
+  whose end has passed (with a final zero target), gives up parked fills whose time is up, and
+  judges stale market data.
+
+Each target says the order's ``state``, the ``reason`` for its quantity and the plan's
+``next_bins``.
 
 The parts, one concept each:
 
