@@ -147,6 +147,9 @@ class Watch:
         drawn_at = 0.0
         pace = 1.0 / self.refresh
         while True:
+            if writer.failed is not None or not os.isatty(self.output_fd):
+                self._quit.set()  # the terminal went away (and no SIGHUP said so)
+                return
             now = time.monotonic()
             if self.board.version != drawn_version or now - drawn_at >= IDLE_FRAME_SECONDS:
                 drawn_version = self.board.version

@@ -19,7 +19,6 @@ The view uses the terminal's alternate screen, so the shell's screen is back as 
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import io
 import os
 import termios
@@ -118,12 +117,14 @@ class FrameWriter:
 
     Attributes:
         written: Frames written. dropped: Frames replaced before they were written.
+        failed: The error that ended writing (the terminal went away), or ``None``.
     """
 
     def __init__(self, fd: int) -> None:
         self.fd = fd
         self.written = 0
         self.dropped = 0
+        self.failed: OSError | None = None
         self._pending: str | None = None
         self._closing = False
         self._ready = threading.Condition()
@@ -161,10 +162,13 @@ class FrameWriter:
                 closing = self._closing
             if frame:
                 data = frame.encode("utf-8", "replace")
-                with contextlib.suppress(OSError):
+                try:
                     while data:
                         count = os.write(self.fd, data)
                         data = data[count:]
+                except OSError as exc:  # the terminal is gone (hung up, closed)
+                    self.failed = exc
+                    return
                 self.written += 1
             if closing:
                 with self._ready:
