@@ -105,3 +105,22 @@ def test_ended_order_leaves_no_retained_target() -> None:
         on_topic[-1].payload,
         f"{ROOT}/targets/{ORDER_ID}" in publisher.retained,
     )
+
+
+def test_unreadable_order_message_gets_a_rejected_ack(tmp_path: Path) -> None:
+    """An order message refused at the edge is still answered on its order's ack topic."""
+    topic, payload = "conf/orders/A1", {"type": "order", "action": "new", "order_id": "A1"}
+    case = Case(
+        [(topic, {**payload, "ts": "2026-03-10T13:59:00Z"}, "2026-03-10T13:59:00Z")],
+        0,
+        "",
+        "",
+        frozenset(),
+    )
+    path = tmp_path / "in.jsonl"
+    path.write_text(jsonl(case), encoding="utf-8")
+    out = tmp_path / "out"
+    assert 0 == main(["replay", str(path), "--out", str(out), "--root", ROOT, "--no-progress"])
+    (ack,) = [json.loads(line) for line in (out / "acks.jsonl").read_text().splitlines()]
+    assert ("A1", "new", "rejected") == (ack["order_id"], ack["action"], ack["result"])
+    assert "missing: symbol, side, quantity, start, end" in ack["reason"]

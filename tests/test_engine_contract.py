@@ -293,3 +293,15 @@ def test_any_interleaving_of_fills_and_their_order_gives_the_same_result(
     assert expected_filled == row["filled"]
     # The summary rounds to 6 decimals; sums in another order differ only in the last bits.
     assert round(expected_average, 6) == row["average_price"]
+
+
+def test_amend_may_echo_the_start_but_not_change_it() -> None:
+    """An amend repeating the order's start is applied; one with another start is refused."""
+    recorder = started()
+    same = order("A", "ZEPH", "buy", 40_000, at(0), at(390), ts=at(1), action="amend")
+    other = order("A", "ZEPH", "buy", 30_000, at(5), at(390), ts=at(2), action="amend")
+    recorder.feed(same)
+    recorder.feed(other)
+    results = [(a.action, a.result) for a in recorder.acks("A")[1:]]
+    assert [("amend", "accepted"), ("amend", "rejected")] == results
+    assert "start" in str(recorder.acks("A")[2].reason)
