@@ -382,3 +382,9 @@ def test_once_without_a_broker_says_so(capsys: pytest.CaptureFixture[str]) -> No
     )
     assert 2 == code
     assert "cannot reach the broker" in capsys.readouterr().err
+
+
+def test_a_symbol_alert_on_its_own_topic_is_the_symbols_not_an_orders() -> None:
+    """An alert on {root}/alerts/symbol/ZEPH (order_id null) is filed under ZEPH, not an order."""
+    board = board_with(("alerts/symbol/ZEPH", alert("volume_shock", "warning", order_id=None)))
+    assert ([], ["volume_shock"]) == (list(board.orders), list(board.symbol_alerts["ZEPH"]))

@@ -274,7 +274,8 @@ class Board:
         elif kind == "targets" and rest:
             self._target(rest, data, now)
         elif kind == "alerts":
-            self._alert(rest or None, data, now)
+            # {root}/alerts/ORDER names an order; symbol and engine alerts sit two levels down.
+            self._alert(rest if rest and "/" not in rest else None, data, now)
         elif kind == "bins" and rest:
             self._bin(rest, data, retained, now)
         elif kind == "fills" and rest:

@@ -58,8 +58,7 @@ def subscriptions(root: str) -> tuple[tuple[str, int], ...]:
     """
     topics = Topics(root)
     return (
-        (topics.alerts(), 1),
-        (topics.alerts(None), 1),
+        (topics.alerts("#"), 1),  # order, symbol and engine alerts alike
         (topics.health(), 1),
         (topics.errors, 1),
         (topics.status(), 0),
