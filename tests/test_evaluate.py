@@ -19,6 +19,7 @@ import pytest
 from scipy import stats
 
 from tracker.cli import main
+from tracker.core.formulation import PERMANENT_IMPACT
 from tracker.errors import InputError
 from tracker.sim.evaluation.config import EvaluationConfig, Scenario, load_config, parse_config
 from tracker.sim.evaluation.execution import Execution
@@ -266,15 +267,18 @@ def test_replanning_reproduces_the_opening_plan_when_nothing_deviates(
 
 def test_on_an_exact_day_the_market_charges_what_the_planner_expects() -> None:
     """With the market's impact equal to the planner's (the square-root law of
-    tracker.core.formulation) and nothing deviating, the realized spread + impact of the opening
-    plan equals its expected cost (tracker.core.solve.cost_breakdown) and the timing cost is 0."""
-    config = exact_config()
+    tracker.core.formulation, and its permanent impact PERMANENT_IMPACT, linear as in Almgren and
+    Chriss 2000) and nothing deviating, the realized spread + impact of the opening plan equals
+    its expected cost (cost_breakdown plus own_permanent_impact) and the timing cost is 0."""
+    base = exact_config()
+    config = replace(base, costs=replace(base.costs, permanent_impact=PERMANENT_IMPACT))
     scenario = config.scenarios[0]
     day = simulated_day(config, scenario, 0, 4, config.market.profile(config.session))
     result = run_day(day, scenario, config, ["opening-plan"])["opening-plan"]
     realized = result.costs["spread"] + result.costs["temporary"] + result.costs["permanent"]
     assert result.expected_cost == pytest.approx(realized, rel=1e-4)
     assert 0.0 == result.costs["timing"]
+    assert result.costs["permanent"] > 0.02 * realized  # the permanent part is not vacuous
 
 
 def test_the_engine_s_first_plan_is_the_opening_plan() -> None:

@@ -240,6 +240,9 @@ class StatusMessage:
     plan_version: int
     max_participation: float | None = None
     cap_source: str | None = None
+    cost_sd: float | None = None
+    cost_sd_bps: float | None = None
+    risk_penalty: float | None = None
     ts: datetime
 
 

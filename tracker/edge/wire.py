@@ -383,8 +383,12 @@ class TargetPayload(_Outbound):
     ``participation`` is the rate of the bin's real volume that ``quantity`` stands for
     (``quantity`` / the bin's forecast volume) and ``max_participation`` the cap as a rate (null
     when uncapped): a router that sees the market trade more or less than forecast works
-    ``participation`` x the real volume, never more than ``max_participation`` x the real volume
-    nor ``remaining``. ``quantity`` and ``max_quantity`` are the same at the forecast volume.
+    ``participation`` x the real volume and executes never more than ``max_participation`` x the
+    real volume nor ``remaining``. ``quantity`` and ``max_quantity`` are the same at the forecast
+    volume.
+    When the order's fills have run below its targets (the engine learns its fill ratio ``r``),
+    ``quantity`` and ``participation`` ask for the planned fills over ``r``, never more than
+    ``max_quantity`` and ``max_participation``.
     """
 
     type: Literal["target"] = "target"
@@ -439,8 +443,13 @@ class StatusPayload(_Outbound):
             (null before the order has a plan).
         volume_scale: Today's volume multiplier on the symbol's profile (1 = a normal day).
         expected_cost, expected_cost_bps: Expected cost to go of the current plan (half spread,
-            fees and impact; not the risk term), in currency and in basis points of the value of
-            the remaining shares at the plan's price; null when the order is not live.
+            fees, temporary impact and the order's own permanent impact; not the risk term), in
+            currency and in basis points of the value of the remaining shares at the plan's
+            price; null when the order is not live.
+        cost_sd, cost_sd_bps: Standard deviation of the plan's cost to go (the timing risk of
+            the market's own moves), in the same units; null when the order is not live.
+        risk_penalty: The plan's risk penalty (the objective's inventory-risk and completion
+            terms, currency): what the schedule's urgency trades cost against, not a cost.
         plan_version: Version of the latest plan (1 = the plan made at the start).
     """
 
@@ -466,6 +475,9 @@ class StatusPayload(_Outbound):
     plan_version: int
     max_participation: float | None = None
     cap_source: Literal["order", "default"] | None = None
+    cost_sd: float | None = None
+    cost_sd_bps: float | None = None
+    risk_penalty: float | None = None
     ts: OutTime
 
 

@@ -27,7 +27,7 @@ problem for an alert, not for sizing).
 How it is used (:mod:`tracker.core.engine.planning`): with ratio ``r`` the remaining-horizon
 problem caps each bin's *fills* at ``r x cap x forecast volume`` (what the cap lets the router
 get), and the target of the bin ahead asks for the planned fills divided by ``r``, at most the
-cap divided by ``r`` (the cap bounds the fills, not what the router works).
+cap.
 
 Fills that arrive after their bin has closed count toward the next bin; the error is one bin's
 worth of a late report, and washes out in the sums.

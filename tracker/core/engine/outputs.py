@@ -151,9 +151,12 @@ def status(
         deviation = order.deviation(state.symbols[order.symbol].closed_for(order))
     planned, gap, gap_bins = deviation
     plan = order.plan
-    cost = plan.expected_cost if plan is not None and order.life.state in LIVE else None
+    live = plan is not None and order.life.state in LIVE
+    cost = plan.expected_cost if plan is not None and live else None
+    cost_sd = plan.cost_sd if plan is not None and live else None
     notional = order.remaining * plan.price if plan is not None else 0.0
     cost_bps = cost / notional * 1e4 if cost is not None and notional > 0 else None
+    cost_sd_bps = cost_sd / notional * 1e4 if cost_sd is not None and notional > 0 else None
     # Every value is of its field's type (floats are floats, not ints or numpy scalars): the
     # encoder writes them as they are (tests/test_wire.py holds it to the contract's models).
     return StatusMessage(
@@ -178,6 +181,9 @@ def status(
         plan_version=order.plan_version,
         max_participation=order.max_participation,
         cap_source=order.cap_source,
+        cost_sd=cost_sd,
+        cost_sd_bps=cost_sd_bps,
+        risk_penalty=plan.risk_penalty if plan is not None and live else None,
         ts=ts,
     )
 

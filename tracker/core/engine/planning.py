@@ -16,9 +16,7 @@ rate is the cap: everything the cap of the real volume allows.
 Plans that expect to fall short: before an order is re-planned at a bin close, the bin's target is
 judged against what filled (:mod:`tracker.core.engine.learning`); with the order's fill ratio
 ``r`` the problem caps each bin's fills at ``r x cap x forecast volume`` and the target asks for
-the planned fills over ``r``, at most the cap over ``r``: a router that fills a share ``r`` of
-what it works then executes up to the cap, and the cap (``max_participation``) still bounds what
-it executes.
+the planned fills over ``r``, never more than the cap.
 
 When the last price is beyond an order's limit, the next bin's target is zero and the plan is
 re-solved over the bins after it. A re-plan that cannot be made (the solver fails, or a problem
@@ -36,7 +34,7 @@ from tracker.core import alerts as rules
 from tracker.core.engine import learning, outputs
 from tracker.core.engine.state import EngineState, OrderState, Plan, SymbolState
 from tracker.core.engine.step import ReplanJob, Step
-from tracker.core.formulation import build_problem
+from tracker.core.formulation import build_problem, own_permanent_impact, timing_cost_sd
 from tracker.core.lifecycle import State
 from tracker.core.messages import TargetMessage
 from tracker.core.problem import Problem
@@ -200,13 +198,28 @@ def solve_problems(problems: list[Problem | None]) -> list[Schedule | None]:
     return [next(iterator) if p is not None else None for p in problems]
 
 
-def _plan(job: ReplanJob, schedule: Schedule | None, plan_price: float) -> Plan:
-    """The plan a schedule makes (no schedule: nothing can trade, everything is shortfall)."""
+def _plan(job: ReplanJob, schedule: Schedule | None, plan_price: float, sym: SymbolState) -> Plan:
+    """The plan a schedule makes (no schedule: nothing can trade, everything is shortfall).
+
+    Its expected cost is spread, fees, temporary impact and the order's own permanent impact
+    (:func:`~tracker.core.formulation.own_permanent_impact`); the risk penalty is kept apart, and
+    the cost's standard deviation is the timing risk of the schedule
+    (:func:`~tracker.core.formulation.timing_cost_sd`).
+    """
     order = job.order
     if schedule is not None:
         trajectory = schedule.trajectory
         cumulative = trajectory[0] - trajectory[1:]  # cumulative trades, one array operation
         cost = schedule.cost
+        trades = schedule.trades
+        first_bin = job.first + 1 if job.blocked else job.first
+        volatility = sym.forecast.volatility
+        permanent = own_permanent_impact(
+            trades,
+            daily_volatility=math.sqrt(float(np.dot(volatility, volatility))),
+            price=plan_price,
+            average_daily_volume=sym.forecast.average_daily_volume,
+        )
         return Plan(
             version=order.plan_version + 1,
             first_bin=job.first + 1 if job.blocked else job.first,
@@ -219,8 +232,15 @@ def _plan(job: ReplanJob, schedule: Schedule | None, plan_price: float) -> Plan:
                 cost.get("fixed_cost", 0.0)
                 + cost.get("temporary_impact", 0.0)
                 + cost.get("permanent_impact", 0.0)
+                + permanent
             ),
             price=plan_price,
+            cost_sd=timing_cost_sd(
+                trades, volatility[first_bin : first_bin + trades.size], plan_price
+            ),
+            risk_penalty=float(
+                cost.get("inventory_penalty", 0.0) + cost.get("terminal_penalty", 0.0)
+            ),
         )
     return Plan(  # blocked on its last bin, or no bin left: nothing can trade
         version=order.plan_version + 1,
@@ -247,9 +267,8 @@ def _next_target(
 
     Shares at the forecast volume and the same as a rate of it (``participation``); the rate is
     the cap in the order's last bin and when the plan cannot complete (module docstring). With a
-    fill ratio ``r`` below 1 the target asks for the planned fills over ``r``, up to the cap over
-    ``r``: ``quantity`` and ``participation`` may then exceed ``max_quantity`` and
-    ``max_participation``, which bound the fills (what the router executes), not what it works.
+    fill ratio ``r`` below 1 the target asks for the planned fills over ``r``, never more than
+    the cap (a target never exceeds ``max_quantity``: the contract's promise to the router).
     """
     order, first = job.order, job.first
     if first >= sym.profile.session.n_bins or first >= order.end_bin:
@@ -269,10 +288,10 @@ def _next_target(
         wanted = float(schedule.trades[0]) / ratio
     max_quantity = None if cap is None else math.floor(cap + 1e-9)
     quantity = min(wanted, float(order.remaining))
-    if cap is not None:  # the most whose expected fills fit under the cap
-        quantity = min(quantity, math.floor(cap / ratio + 1e-9))
+    if max_quantity is not None:
+        quantity = min(quantity, float(max_quantity))
     quantity = max(0, round(quantity))
-    participation = rate / ratio if at_cap and rate is not None else quantity / volume
+    participation = rate if at_cap else quantity / volume
     step.undo.order(order)
     previous = order.worked
     order.worked = learning.WorkedBin(
@@ -305,7 +324,7 @@ def apply_replan(state: EngineState, step: Step, job: ReplanJob, schedule: Sched
         return
     sym = state.symbols[order.symbol]
     previous = order.plan
-    plan = _plan(job, schedule, price(order, sym))
+    plan = _plan(job, schedule, price(order, sym), sym)
     step.undo.order(order)
     order.plan_version = plan.version
     order.plan = plan

@@ -39,8 +39,10 @@ class Plan:
     quantity: float  # shares the plan had to trade
     status: str
     shortfall: float
-    expected_cost: float
+    expected_cost: float  # spread, fees, temporary and own permanent impact (no risk term)
     price: float
+    cost_sd: float = 0.0  # sd of the cost to go (timing risk), currency
+    risk_penalty: float = 0.0  # the objective's inventory-risk and completion terms, currency
 
     def expected_filled(self, closed_bin: int | None) -> float:
         """Shares the plan expects filled by the end of bin ``closed_bin`` (None: none closed)."""

@@ -41,7 +41,7 @@ import numpy.typing as npt
 from tracker.core.engine import Engine
 from tracker.core.forecast import forecast
 from tracker.core.formats import utc_text
-from tracker.core.formulation import build_problem, preferences
+from tracker.core.formulation import build_problem, own_permanent_impact, preferences
 from tracker.core.problem import Problem
 from tracker.core.solve import Schedule, cost_breakdown, solve
 from tracker.edge.wire import decode, to_json_object, topic_of
@@ -99,9 +99,17 @@ class OpeningPlan:
         self.cumulative = np.round(done).astype(np.int64)
 
     def expected_cost(self, trades: FloatArray) -> float:
-        """Expected spread + impact of ``trades`` (window bins) under the planner's model, bps."""
+        """Expected spread + impact of ``trades`` (window bins) under the planner's model, bps:
+        as the engine states it, with the order's own permanent impact."""
         terms = cost_breakdown(self.problem, trades)
         cost = terms["fixed_cost"] + terms["temporary_impact"] + terms["permanent_impact"]
+        volatility = forecast(self.day.profile, {}).volatility
+        cost += own_permanent_impact(
+            trades,
+            daily_volatility=math.sqrt(float(np.dot(volatility, volatility))),
+            price=self.day.arrival_price,
+            average_daily_volume=self.day.profile.average_daily_volume,
+        )
         return cost / (self.day.order.quantity * self.day.arrival_price) * 1e4
 
 
