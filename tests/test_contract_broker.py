@@ -106,7 +106,15 @@ def test_router_behaviour_live(tmp_path: Path, broker: PrivateMosquitto, case: C
         split = case.restart_after or len(case.lines)
         _publish(broker, daemon, case, range(split))
         if case.restart_after:
-            before = _retained(broker.port, f"{ROOT}/targets/{ORDER_ID}")
+            # Journaled is not yet published: wait until the retained target has settled.
+            reads: list[dict[str, object] | None] = [None]
+
+            def settled() -> bool:
+                reads.append(_retained(broker.port, f"{ROOT}/targets/{ORDER_ID}"))
+                return reads[-1] is not None and reads[-1] == reads[-2]
+
+            wait_until(settled, 30, "the retained target to settle")
+            before = reads[-1]
             assert 0 == daemon.terminate()
             daemon = _daemon(tmp_path / "restarted", broker, folder / "journal.sqlite")
             # A router restarting mid-bin reads the latest target at once (retained).
