@@ -14,6 +14,7 @@ import pytest
 
 from tracker.core.engine import Engine
 from tracker.core.engine.learning import PRIOR_BINS, FillRatio, WorkedBin, fill_ratio, learn
+from tracker.core.engine.planning import CATCH_UP
 from tracker.core.forecast import forecast
 from tracker.core.profiles import default_profile
 from tracker.edge.wire import TargetMessage
@@ -150,3 +151,31 @@ def test_targets_grow_when_fills_fall_short() -> None:
         last = _targets(recorder)[-1]
         rates.append(last.quantity / last.remaining)
     assert rates[1] > rates[0] * 1.1
+
+
+def test_an_order_behind_its_baseline_targets_part_of_the_gap_at_once() -> None:
+    """Six bins at half the forecast volume, each target's rate filled in full on the real
+    volume (fill ratio 1): the order is behind its baseline, and the next target is at least
+    CATCH_UP of what it is behind by that bin's end, not all of it."""
+    engine = Engine()
+    recorder = Recorder(engine)
+    recorder.feed(
+        order("A", "ZEPH", "buy", 20_000, _at(0), _at(390), ts=_at(-30), max_participation=0.2)
+    )
+    recorder.feed(tick(_at(0)))
+    baseline = engine.plans("A")[-1]
+    volume = forecast(default_profile("ZEPH"), {}).volume
+    filled = 0
+    for index in range(6):
+        target = _targets(recorder)[-1]
+        start = OPEN + index * BIN
+        real = round(0.5 * volume[index])
+        done = round((target.participation or 0.0) * real)
+        when = (start + BIN - timedelta(seconds=1)).isoformat().replace("+00:00", "Z")
+        recorder.feed(fill("A", f"F{index}", done, 20.0, ts=when))
+        filled += done
+        recorder.feed(bin_message("ZEPH", start, start + BIN, volume=real, price=20.0))
+    target = _targets(recorder)[-1]
+    behind = baseline.filled_at + float(baseline.cumulative[6 - baseline.first_bin]) - filled
+    assert target.max_quantity is not None and CATCH_UP * behind < target.max_quantity
+    assert math.floor(CATCH_UP * behind) <= target.quantity < behind

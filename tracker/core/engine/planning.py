@@ -11,7 +11,8 @@ Targets a router can scale: each target carries, besides its shares at the forec
 ``participation`` rate they stand for (shares / the bin's forecast volume) and the cap as a rate
 (``max_participation``), so that a router applies them to the volume that really trades. In the
 order's last bin, and when the plan cannot complete under the caps (``capped_shortfall``), the
-rate is the cap: everything the cap of the real volume allows.
+rate is the cap: everything the cap of the real volume allows. A target is never less than
+:data:`CATCH_UP` of what the order is behind its baseline.
 
 Plans that expect to fall short: before an order is re-planned at a bin close, the bin's target is
 judged against what filled (:mod:`tracker.core.engine.learning`); with the order's fill ratio
@@ -46,6 +47,16 @@ from tracker.errors import InputError, TrackerError
 #: a few basis points: common practice). Only the plan's shape depends on it, and only until the
 #: first bin of the symbol arrives.
 ASSUMED_SPREAD_BPS = 5.0
+
+#: The target of the bin ahead is at least this share of what the order is behind its baseline
+#: by the end of that bin. A re-plan from the realized inventory spreads a shortfall over the rest
+#: of the day (cheaper on average); catching part of it up at once keeps the order near the
+#: schedule the desk agreed to, so a day whose volume keeps falling short leaves fewer shares and
+#: less timing risk. Measured with ``tracker evaluate`` (300 days, seed 1, five scenarios): 0
+#: gives the lowest mean shortfall but a worse 95 % CVaR than the opening plan with full catch-up
+#: on half-volume, midday-collapse and partial-fill days; 1 matches that CVaR but gives up most of
+#: the mean's gain; 0.5 keeps a significant mean gain in every scenario (README).
+CATCH_UP = 0.5
 
 
 def horizon(step: Step, order: OrderState, sym: SymbolState, now: datetime) -> tuple[int, float]:
@@ -286,6 +297,9 @@ def _next_target(
         wanted, at_cap = math.inf, True
     else:
         wanted = float(schedule.trades[0]) / ratio
+        if order.baseline is not None:  # never less than part of the way back to the baseline
+            behind = order.baseline.expected_filled(first) - order.filled
+            wanted = max(wanted, CATCH_UP * behind / ratio)
     max_quantity = None if cap is None else math.floor(cap + 1e-9)
     quantity = min(wanted, float(order.remaining))
     if max_quantity is not None:
