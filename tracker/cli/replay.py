@@ -3,15 +3,12 @@
 from __future__ import annotations
 
 import argparse
-import functools
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any
 
 from tracker.core.topics import DEFAULT_ROOT
-from tracker.errors import InputError
 
 DESCRIPTION = """\
 Replay a recorded day through the engine, deterministically, and write its outputs.
@@ -102,49 +99,26 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 def run(args: argparse.Namespace) -> int:
     """Replay INPUT into DIR; print a one-line account; return 0."""
-    from tracker.core.engine import Engine
     from tracker.shell.config import validate_root
     from tracker.shell.files import load_engine_config, load_profiles
-    from tracker.shell.journal import read_setup
-    from tracker.shell.replay import is_journal, read_input, replay, write_outputs
-    from tracker.shell.setup import Setup, apply, differences, engine_of, timeline
+    from tracker.shell.replay import read_input, replay, write_outputs
+    from tracker.shell.setup import plan_replay
 
     config, config_root = load_engine_config(Path(args.config)) if args.config else (None, None)
-    root = validate_root(args.root or config_root or DEFAULT_ROOT, field="--root")
-    profiles = load_profiles(Path(args.profiles)) if args.profiles else {}
+    given_root = args.root or config_root
+    if given_root is not None:
+        given_root = validate_root(given_root, field="--root")
     path = Path(args.input)
-    described = timeline(read_setup(path)) if is_journal(path) else []
+    plan = plan_replay(
+        path,
+        root=given_root,
+        config=config,
+        profiles=load_profiles(Path(args.profiles)) if args.profiles else None,
+        what_if=args.what_if,
+        default_root=DEFAULT_ROOT,
+    )
     records = list(read_input(path))
-    changes: list[tuple[int, Callable[[], None]]] = []
-    what_if: dict[str, Any] | None = None
-    if described:
-        recorded = described[0][1]
-        flags = Setup(
-            root=root if (args.root or config_root) else recorded.root,
-            config=config if config is not None else recorded.config,
-            profiles=profiles if args.profiles else recorded.profiles,
-        )
-        # Flags are judged against the setup the journal started with.
-        said = differences(recorded, flags)
-        if said and not args.what_if:
-            raise InputError(
-                f"{path} records the setup its daemon ran with; these flags disagree with it: "
-                f"{'; '.join(said)}. Leave them out to reproduce what was published, or add "
-                "--what-if to replay with them",
-                field="--what-if",
-            )
-        if said:
-            what_if = {"differs_from_journal": said}
-            engine = engine_of(flags)
-            root = flags.root
-        else:
-            engine = engine_of(recorded)
-            root = recorded.root
-            changes = [
-                (after, functools.partial(apply, engine, later)) for after, later in described[1:]
-            ]
-    else:
-        engine = Engine(config=config, profiles=profiles, root=root)
+    engine, root, changes, what_if = plan.engine, plan.root, plan.changes, plan.what_if
     show = stderr_is_terminal() if args.progress is None else bool(args.progress)
     with _progress_bar(len(records), show) as advance:
         result = replay(

@@ -447,15 +447,17 @@ def read_recording(
     Raises:
         InputError: The input cannot be read or the folder written.
     """
-    from tracker.core.engine import Engine
     from tracker.core.topics import DEFAULT_ROOT
     from tracker.shell.replay import is_journal, read_input, replay, write_outputs
+    from tracker.shell.setup import plan_replay
 
-    given = dict(profiles or {})
+    # A journal is replayed with the setup it recorded (root, settings, profiles), as
+    # 'tracker replay' does; flags that disagree with it are refused.
+    plan = plan_replay(path, root=root, config=config, profiles=profiles, default_root=DEFAULT_ROOT)
+    given = dict(plan.engine.profiles)
     records = list(read_input(path))
-    engine = Engine(config=config, profiles=given, root=root or DEFAULT_ROOT)
-    observer = Observer(engine)
-    result = replay(records, observer, root or DEFAULT_ROOT)
+    observer = Observer(plan.engine)
+    result = replay(records, observer, plan.root, changes=plan.changes)
     if keep_replay:
         write_outputs(result, out_dir / "replay")
     day = ReviewDay(

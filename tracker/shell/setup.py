@@ -14,9 +14,11 @@ flags at all.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import json
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from tracker.errors import InputError
@@ -148,3 +150,74 @@ __all__ = [
     "removed_profiles",
     "timeline",
 ]
+
+
+@dataclass(frozen=True)
+class ReplayPlan:
+    """How to replay an input: the engine to feed, the root, the setups to switch to on the way.
+
+    Attributes:
+        engine: A fresh engine with the setup the replay starts from.
+        root: The topic root of the recording.
+        changes: ``(after, change)`` pairs for :func:`tracker.shell.replay.replay`: a journal's
+            later setups, each applied before the first record numbered above ``after``.
+        what_if: For a journal replayed with flags that differ from it on purpose (``--what-if``):
+            what differs, for the summary. ``None`` otherwise.
+    """
+
+    engine: Engine
+    root: str
+    changes: list[tuple[int, Callable[[], None]]]
+    what_if: dict[str, Any] | None
+
+
+def plan_replay(
+    path: Path,
+    *,
+    root: str | None,
+    config: EngineConfig | None,
+    profiles: Mapping[str, Profile] | None,
+    what_if: bool = False,
+    default_root: str,
+) -> ReplayPlan:
+    """The engine and setups that replay ``path`` as it was published (``tracker replay``'s rule).
+
+    A journal describes itself: given no flag, it is replayed with the setup it recorded, switching
+    at its place to every later one. Flags (``root``, ``config``, ``profiles``; ``None`` = not
+    given) that disagree with the journal are refused, unless ``what_if`` asks to replay with them
+    (the plan then says what differs). A JSON Lines recording has no setup: the flags, or the
+    defaults, apply.
+
+    Raises:
+        InputError: Flags that disagree with the journal, without ``what_if``.
+    """
+    from tracker.core.engine import Engine
+    from tracker.shell.journal import read_setup
+    from tracker.shell.replay import is_journal
+
+    described = timeline(read_setup(path)) if is_journal(path) else []
+    if not described:
+        engine = Engine(config=config, profiles=dict(profiles or {}), root=root or default_root)
+        return ReplayPlan(engine, root or default_root, [], None)
+    recorded = described[0][1]
+    flags = Setup(
+        root=root if root is not None else recorded.root,
+        config=config if config is not None else recorded.config,
+        profiles=profiles if profiles is not None else recorded.profiles,
+    )
+    # Flags are judged against the setup the journal started with.
+    said = differences(recorded, flags)
+    if said and not what_if:
+        raise InputError(
+            f"{path} records the setup its daemon ran with; these flags disagree with it: "
+            f"{'; '.join(said)}. Leave them out to reproduce what was published, or add "
+            "--what-if to replay with them",
+            field="--what-if",
+        )
+    if said:
+        return ReplayPlan(engine_of(flags), flags.root, [], {"differs_from_journal": said})
+    engine = engine_of(recorded)
+    changes: list[tuple[int, Callable[[], None]]] = [
+        (after, functools.partial(apply, engine, later)) for after, later in described[1:]
+    ]
+    return ReplayPlan(engine, recorded.root, changes, None)
