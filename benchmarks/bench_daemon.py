@@ -2,8 +2,8 @@
 
 Everything runs on this machine: a private Mosquitto on a free 127.0.0.1 port, the daemon as
 ``python -m tracker run`` in its own process, and the load generator and collector (aiomqtt) here.
-The data are invented: 50 made-up symbols HX00..HX49 on the made-up venue Harbour Lane Exchange
-(HLX), 1,000 made-up parent orders (20 per symbol).
+The data are invented: 50 made-up symbols X_HX00..X_HX49 on the made-up venue Harbour Lane Exchange
+(X_HLX), 1,000 made-up parent orders (20 per symbol).
 
 Figures, each against a ceiling measured in the same run:
 
@@ -50,7 +50,7 @@ sys.path.insert(0, str(REPO))
 from tests.brokers import PrivateMosquitto  # noqa: E402 -- after the path set-up
 
 DAY = datetime(2026, 3, 10, 13, 30, tzinfo=UTC)  # 09:30 New York (EDT) on an invented day
-SYMBOLS = [f"HX{i:02d}" for i in range(50)]
+SYMBOLS = [f"X_HX{i:02d}" for i in range(50)]
 ROOT = "bench"
 RAW_ROOT = "raw"
 WINDOW = 256  # publications in flight at once (publisher pipelining)
@@ -63,7 +63,7 @@ def iso(moment: datetime) -> str:
 
 
 def order_ids(count: int) -> list[str]:
-    return [f"HLX-{i:04d}" for i in range(count)]
+    return [f"X_HLX-{i:04d}" for i in range(count)]
 
 
 def symbol_of(order_id: str, count_symbols: int = 50) -> str:

@@ -1,7 +1,7 @@
 """How long `tracker evaluate` takes (300 days x 4 policies x 1 scenario), with a reference.
 
 Invented data only: the simulated stock of the shipped scenario file (an invented stock on the
-invented venue Harbour Lane Exchange, HLX).
+invented venue Harbour Lane Exchange, X_HLX).
 
 Figures printed:
 

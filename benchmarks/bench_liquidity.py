@@ -9,7 +9,7 @@ Prints figures and ratios against references measured in the same run (no timed 
 * for 1,000 working orders at one bin close (50 symbols x 20 orders, bin 30 of 78): one forecast
   per symbol, one problem per order, one batched solve; build time against the solve time.
 
-All data is invented (market generator, made-up symbols on the invented HLX venue).
+All data is invented (market generator, made-up symbols on the invented X_HLX venue).
 """
 
 from __future__ import annotations

@@ -1,8 +1,8 @@
 """Replay throughput and the cost of one bin close, with references measured in the same run.
 
-Invented data only: 50 made-up symbols (HX00..HX49) on the made-up venue Harbour Lane Exchange
-(HLX), 500 parent orders (10 per symbol, the whole 09:30-16:00 session), one bin message per symbol
-and 5-minute bin, and about 200,000 fills spread over each order's day.
+Invented data only: 50 made-up symbols (X_HX00..X_HX49) on the made-up venue Harbour Lane Exchange
+(X_HLX), 500 parent orders (10 per symbol, the whole 09:30-16:00 session), one bin message per
+symbol and 5-minute bin, and about 200,000 fills spread over each order's day.
 
 Figures printed:
 
@@ -72,7 +72,7 @@ def make_day(symbols: int, orders_per_symbol: int, fills: int, seed: int = 1) ->
     n_orders = symbols * orders_per_symbol
     per_order = fills // n_orders
     for s in range(symbols):
-        symbol = f"HX{s:02d}"
+        symbol = f"X_HX{s:02d}"
         price = float(rng.uniform(10, 90))
         adv = float(rng.uniform(2e6, 8e6))
         for j in range(orders_per_symbol):
@@ -229,8 +229,8 @@ def bin_close_times(orders: int, closes: int) -> tuple[list[float], list[float],
         engine.handle(
             OrderMessage(
                 action="new",
-                order_id=f"HX00-{j:04d}",
-                symbol="HX00",
+                order_id=f"X_HX00-{j:04d}",
+                symbol="X_HX00",
                 side="buy" if j % 2 == 0 else "sell",
                 quantity=int(rng.integers(2_000, 8_000)),
                 start=open_,
@@ -248,7 +248,7 @@ def bin_close_times(orders: int, closes: int) -> tuple[list[float], list[float],
         for n in range(closes):
             start, end = bins[n]
             message = BinMessage(
-                symbol="HX00",
+                symbol="X_HX00",
                 start=start,
                 end=end,
                 volume=int(60_000 * rng.lognormal(0, 0.3)),

@@ -1,6 +1,6 @@
 """The end-of-day review of a 1,000-order day, against the replay of the same day in the same run.
 
-Invented data only: the benchmark day of ``bench_replay.py`` (made-up symbols HX00..HX49 on the
+Invented data only: the benchmark day of ``bench_replay.py`` (made-up symbols X_HX00..X_HX49 on the
 made-up venue Harbour Lane Exchange), here with 50 symbols x 20 orders = 1,000 parent orders over
 the whole session, a bin per symbol and 5-minute bin, and about 200,000 fills.
 

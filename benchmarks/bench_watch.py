@@ -3,7 +3,7 @@
 Everything runs on this machine, with invented data: a private Mosquitto on a free 127.0.0.1 port,
 the daemon as ``python -m tracker run`` in its own process, and the view as ``python -m tracker
 watch`` in a tmux pane (a real terminal, 200 x 60, on a private tmux server), drawing at its
-default pace. 1,000 made-up parent orders on 50 made-up symbols (HX00..HX49, the made-up venue
+default pace. 1,000 made-up parent orders on 50 made-up symbols (X_HX00..X_HX49, the made-up venue
 Harbour Lane Exchange) start at the open; then every ``--bin-seconds`` of wall time one 5-minute
 bin of the day passes: one fill per order (the status of each order changes), then the bin of
 every symbol (the daemon re-plans all 1,000 orders and publishes a target and a status for each).
@@ -58,11 +58,11 @@ def dumps(payload: dict[str, object]) -> bytes:
 
 
 def symbols(count: int) -> list[str]:
-    return [f"HX{i:02d}" for i in range(count)]
+    return [f"X_HX{i:02d}" for i in range(count)]
 
 
 def orders(count: int) -> list[str]:
-    return [f"HLX-{i:04d}" for i in range(count)]
+    return [f"X_HLX-{i:04d}" for i in range(count)]
 
 
 def order_message(order_id: str, symbol: str) -> tuple[str, bytes]:

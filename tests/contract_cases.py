@@ -6,7 +6,7 @@ Each case is what an order router or a venue gateway really sends -- an echoed c
 extra fields, a fill before its order, a fill re-sent with a new ts, a bust, a correction, a
 recording merged out of time order, a restart in the middle of a bin -- with the filled shares,
 the order's state and the last target that must come out. Times are on 2026-03-10 (New York on
-daylight time: the session opens at 13:30 UTC); ZEPH runs on the stated default profile.
+daylight time: the session opens at 13:30 UTC); X_ZEPH runs on the stated default profile.
 """
 
 from __future__ import annotations
@@ -31,12 +31,12 @@ def at(seconds: float) -> str:
 
 
 def order(ts: float = -60.0, **extra: Any) -> tuple[str, dict[str, Any]]:
-    """The new order A1: buy 10,000 ZEPH from 14:00 to 19:00 UTC, cap 20 %."""
+    """The new order A1: buy 10,000 X_ZEPH from 14:00 to 19:00 UTC, cap 20 %."""
     payload = {
         "type": "order",
         "action": "new",
         "order_id": ORDER_ID,
-        "symbol": "ZEPH",
+        "symbol": "X_ZEPH",
         "side": "buy",
         "quantity": 10_000,
         "start": START,
@@ -122,7 +122,7 @@ CASES: dict[str, Case] = {
     "extra-fields": Case(
         _lines(
             order(),
-            fill("F1", 1_000, 42.0, 10, venue="HLX", exec_id="E-1", liquidity="added"),
+            fill("F1", 1_000, 42.0, 10, venue="X_HLX", exec_id="E-1", liquidity="added"),
         ),
         filled=1_000,
         state="working",

@@ -20,7 +20,7 @@ def run(checks: list[Check]) -> list[str | None]:
     book = AlertBook()
     result: list[str | None] = []
     for check in checks:
-        message = book.apply(check, scope="A", order_id="A", symbol="ZEPH", ts=TS)
+        message = book.apply(check, scope="A", order_id="A", symbol="X_ZEPH", ts=TS)
         result.append(None if message is None else message.state)
     return result
 
@@ -137,7 +137,7 @@ def test_switching_from_behind_to_ahead_clears_then_raises() -> None:
         for check in alerts.deviation(
             quantity=100_000, deviation_shares=gap, deviation_bins=gap / 2_000, config=CONFIG
         ):
-            message = book.apply(check, scope="A", order_id="A", symbol="ZEPH", ts=TS)
+            message = book.apply(check, scope="A", order_id="A", symbol="X_ZEPH", ts=TS)
             if message is not None:
                 seen.append((message.code, message.state))
     expected = [
@@ -152,7 +152,7 @@ def test_scopes_are_independent() -> None:
     """The same condition on two orders is raised for each of them."""
     book = AlertBook()
     raised = [
-        book.apply(behind(9_000), scope=scope, order_id=scope, symbol="ZEPH", ts=TS)
+        book.apply(behind(9_000), scope=scope, order_id=scope, symbol="X_ZEPH", ts=TS)
         for scope in ("A", "B")
     ]
     expected = ["A", "B"]
@@ -162,8 +162,8 @@ def test_scopes_are_independent() -> None:
 def test_cleared_message_is_info_and_keeps_code() -> None:
     """A clear carries the same code, severity info and a plain message."""
     book = AlertBook()
-    book.apply(behind(9_000), scope="A", order_id="A", symbol="ZEPH", ts=TS)
-    message = book.apply(behind(0), scope="A", order_id="A", symbol="ZEPH", ts=TS)
+    book.apply(behind(9_000), scope="A", order_id="A", symbol="X_ZEPH", ts=TS)
+    message = book.apply(behind(0), scope="A", order_id="A", symbol="X_ZEPH", ts=TS)
     assert message is not None
     expected = ("behind_plan", "info", "cleared")
     assert expected == (message.code, message.severity, message.state)
@@ -211,7 +211,7 @@ def test_deviation_message_says_which_way(gap: float, expected: str) -> None:
         quantity=100_000, deviation_shares=gap, deviation_bins=gap / 2_000, config=CONFIG
     )
     book = AlertBook()
-    messages = [book.apply(c, scope="A", order_id="A", symbol="ZEPH", ts=TS) for c in checks]
+    messages = [book.apply(c, scope="A", order_id="A", symbol="X_ZEPH", ts=TS) for c in checks]
     assert [expected] == [m.message for m in messages if m is not None]
 
 
@@ -271,7 +271,7 @@ def test_event_takes_its_severity_from_the_table(
     code: str, case: str | None, expected: str
 ) -> None:
     """A one-shot alert carries the severity CODES gives its code (and case)."""
-    message = alerts.event(code, "text", order_id="A", symbol="ZEPH", ts=TS, case=case)
+    message = alerts.event(code, "text", order_id="A", symbol="X_ZEPH", ts=TS, case=case)
     assert expected == message.severity
 
 
@@ -288,14 +288,14 @@ def test_event_takes_its_severity_from_the_table(
 def test_event_refuses_a_case_that_does_not_fit(code: str, case: str | None) -> None:
     """A missing, unknown or needless case, or an unknown code, is a caller's bug: KeyError."""
     with pytest.raises(KeyError):
-        alerts.event(code, "text", order_id="A", symbol="ZEPH", ts=TS, case=case)
+        alerts.event(code, "text", order_id="A", symbol="X_ZEPH", ts=TS, case=case)
 
 
 def test_a_check_raises_with_the_severity_of_its_code() -> None:
     """A condition raised through the book carries its code's severity from CODES."""
     book = AlertBook()
     check = alerts.completion(quantity=100_000, shortfall=5_000, config=CONFIG)
-    message = book.apply(check, scope="A", order_id="A", symbol="ZEPH", ts=TS)
+    message = book.apply(check, scope="A", order_id="A", symbol="X_ZEPH", ts=TS)
     assert message is not None
     assert ("completion_infeasible", "critical") == (message.code, message.severity)
 
@@ -303,12 +303,25 @@ def test_a_check_raises_with_the_severity_of_its_code() -> None:
 def test_rollback_undoes_every_change_since_the_mark() -> None:
     """Raises, clears and silent clears after mark() are undone by rollback(); earlier ones stay."""
     book = AlertBook()
-    book.apply(behind(9_000), scope="A", order_id="A", symbol="ZEPH", ts=TS)
-    book.apply(behind(9_000), scope="B", order_id="B", symbol="ZEPH", ts=TS)
+    book.apply(behind(9_000), scope="A", order_id="A", symbol="X_ZEPH", ts=TS)
+    book.apply(behind(9_000), scope="B", order_id="B", symbol="X_ZEPH", ts=TS)
     book.mark()
-    book.apply(behind(0), scope="A", order_id="A", symbol="ZEPH", ts=TS)  # cleared
-    book.apply(behind(9_000), scope="C", order_id="C", symbol="ZEPH", ts=TS)  # raised
+    book.apply(behind(0), scope="A", order_id="A", symbol="X_ZEPH", ts=TS)  # cleared
+    book.apply(behind(9_000), scope="C", order_id="C", symbol="X_ZEPH", ts=TS)  # raised
     book.clear_silently("B")
     book.rollback()
     expected = [True, True, False]
     assert expected == [book.is_raised(scope, "behind_plan") for scope in ("A", "B", "C")]
+
+
+def test_shock_messages_write_numbers_as_people_read_them() -> None:
+    """Volumes in whole shares with separators, spreads in currency: no scientific notation."""
+    config = alerts.AlertConfig()
+    volume = alerts.volume_shock(observed=2_352.0, forecast=12_186.786, config=config)
+    spread = alerts.spread_shock(observed=0.0634, forecast=0.01869, config=config)
+    assert "Observed volume 2,352 shares is far below the forecast 12,187 shares (0.19 times)." == (
+        volume.message()
+    )
+    assert "Observed spread 0.0634 is far above the forecast 0.0187 (3.39 times)." == (
+        spread.message()
+    )

@@ -10,13 +10,13 @@ import pytest
 from tracker.cli import CAUTION, main
 
 REPO = Path(__file__).resolve().parent.parent
-SHIPPED = REPO / "replay_data" / "history-ZEPH.csv"
+SHIPPED = REPO / "replay_data" / "history-X_ZEPH.csv"
 
 ORDER = {
     "type": "order",
     "action": "new",
-    "order_id": "ZEPH-7",
-    "symbol": "ZEPH",
+    "order_id": "X_ZEPH-7",
+    "symbol": "X_ZEPH",
     "side": "sell",
     "quantity": 120_000,
     "start": "2026-03-02T15:02:00Z",
@@ -32,7 +32,7 @@ def history(tmp_path: Path) -> Path:
     """A 5-day invented history written by `tracker simulate history`."""
     path = tmp_path / "history.csv"
     assert 0 == main(
-        ["simulate", "history", "--symbol", "ZEPH", "--days", "5", "--seed", "3", "-o", str(path)]
+        ["simulate", "history", "--symbol", "X_ZEPH", "--days", "5", "--seed", "3", "-o", str(path)]
     )
     return path
 
@@ -41,7 +41,7 @@ def history(tmp_path: Path) -> Path:
 def profile(history: Path, tmp_path: Path) -> Path:
     """The profile calibrated from it."""
     path = tmp_path / "profile.json"
-    assert 0 == main(["calibrate", str(history), "--symbol", "ZEPH", "-o", str(path)])
+    assert 0 == main(["calibrate", str(history), "--symbol", "X_ZEPH", "-o", str(path)])
     return path
 
 
@@ -55,7 +55,7 @@ def test_profile_has_the_documented_fields(profile: Path) -> None:
     """PROFILE.json has symbol, session, one object per bin, ADV, days and quality."""
     data = json.loads(profile.read_text(encoding="utf-8"))
     expected = (
-        "ZEPH",
+        "X_ZEPH",
         {"start": "09:30", "end": "16:00", "timezone": "America/New_York", "bin_minutes": 5},
         78,
         {"start", "volume_share", "spread", "volatility"},
@@ -81,7 +81,7 @@ def test_bad_row_reported_with_its_file_line(
     lines[10] = ",".join(fields)
     bad = tmp_path / "bad.csv"
     bad.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    code = main(["calibrate", str(bad), "--symbol", "ZEPH", "-o", str(tmp_path / "p.json")])
+    code = main(["calibrate", str(bad), "--symbol", "X_ZEPH", "-o", str(tmp_path / "p.json")])
     expected = (0, "line 11: volume must be >= 0 shares (row skipped)")
     assert expected == (code, capsys.readouterr().err.splitlines()[0])
 
@@ -90,12 +90,12 @@ def test_parquet_history(tmp_path: Path) -> None:
     """A Parquet history calibrates like a CSV one."""
     path = tmp_path / "history.parquet"
     assert 0 == main(["simulate", "history", "--days", "3", "-o", str(path)])
-    assert 0 == main(["calibrate", str(path), "--symbol", "ZEPH", "-o", str(tmp_path / "p.json")])
+    assert 0 == main(["calibrate", str(path), "--symbol", "X_ZEPH", "-o", str(tmp_path / "p.json")])
 
 
 def test_missing_history_is_exit_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """A history file that does not exist is a one-line error and exit code 2."""
-    code = main(["calibrate", str(tmp_path / "nope.csv"), "--symbol", "ZEPH", "-o", "p.json"])
+    code = main(["calibrate", str(tmp_path / "nope.csv"), "--symbol", "X_ZEPH", "-o", "p.json"])
     assert (2, True) == (code, "does not exist" in capsys.readouterr().err)
 
 
@@ -108,7 +108,7 @@ def test_wrong_session_is_exit_2(
             "calibrate",
             str(history),
             "--symbol",
-            "ZEPH",
+            "X_ZEPH",
             "-o",
             str(tmp_path / "p.json"),
             "--bin-minutes",
@@ -121,7 +121,7 @@ def test_wrong_session_is_exit_2(
 def test_shipped_history_calibrates(tmp_path: Path) -> None:
     """The invented history in replay_data/ calibrates despite its comment line."""
     out = tmp_path / "p.json"
-    assert 0 == main(["calibrate", str(SHIPPED), "--symbol", "ZEPH", "-o", str(out)])
+    assert 0 == main(["calibrate", str(SHIPPED), "--symbol", "X_ZEPH", "-o", str(out)])
     assert 20 == json.loads(out.read_text(encoding="utf-8"))["days"]
 
 
@@ -197,9 +197,11 @@ def test_plan_order_needs_an_arrival_price(
 def test_plan_order_rejects_profile_of_other_symbol(
     profile: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    """An order for KALO with ZEPH's profile is refused with a reason."""
+    """An order for X_KALO with X_ZEPH's profile is refused with a reason."""
     path = tmp_path / "order.json"
-    path.write_text(json.dumps({**ORDER, "symbol": "KALO", "order_id": "KALO-1"}), encoding="utf-8")
+    path.write_text(
+        json.dumps({**ORDER, "symbol": "X_KALO", "order_id": "X_KALO-1"}), encoding="utf-8"
+    )
     code = main(["plan", "--order", str(path), "--profile", str(profile), "--arrival-price", "9"])
     assert (2, True) == (code, "symbol" in capsys.readouterr().err)
 

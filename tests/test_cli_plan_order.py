@@ -15,8 +15,8 @@ from tracker.cli import main
 ORDER: dict[str, Any] = {
     "type": "order",
     "action": "new",
-    "order_id": "ZEPH-B1",
-    "symbol": "ZEPH",
+    "order_id": "X_ZEPH-B1",
+    "symbol": "X_ZEPH",
     "side": "buy",
     "quantity": 120_000,
     "start": "2026-03-10T09:30:00-04:00",

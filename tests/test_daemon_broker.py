@@ -34,8 +34,8 @@ ROOT = "desk"
 ORDER = {
     "type": "order",
     "action": "new",
-    "order_id": "ZEPH-T1",
-    "symbol": "ZEPH",
+    "order_id": "X_ZEPH-T1",
+    "symbol": "X_ZEPH",
     "side": "buy",
     "quantity": 10_000,
     "start": "2026-03-10T14:30:00Z",
@@ -48,16 +48,16 @@ def _fill(n: int, quantity: int = 100) -> tuple[str, bytes]:
     payload = {
         "type": "fill",
         "fill_id": f"F{n}",
-        "order_id": "ZEPH-T1",
+        "order_id": "X_ZEPH-T1",
         "quantity": quantity,
         "price": 42.0,
         "ts": f"2026-03-10T14:{31 + n // 60:02d}:{n % 60:02d}Z",
     }
-    return f"{ROOT}/fills/ZEPH-T1", json.dumps(payload).encode()
+    return f"{ROOT}/fills/X_ZEPH-T1", json.dumps(payload).encode()
 
 
 def _order() -> tuple[str, bytes]:
-    return f"{ROOT}/orders/ZEPH-T1", json.dumps(ORDER).encode()
+    return f"{ROOT}/orders/X_ZEPH-T1", json.dumps(ORDER).encode()
 
 
 @pytest.fixture
@@ -157,7 +157,7 @@ def test_messages_sent_while_the_daemon_is_down_are_taken_on_restart(
 
     summary = asyncio.run(scenario())
     filled = {o["order_id"]: o["filled"] for o in summary["orders"]}  # type: ignore[attr-defined]
-    assert {"ZEPH-T1": 1_000} == filled
+    assert {"X_ZEPH-T1": 1_000} == filled
 
 
 async def _serve_until_published(
@@ -188,7 +188,7 @@ def test_restart_rebuilds_state_from_the_journal(
     recovered, summary = asyncio.run(scenario())
     filled = {o["order_id"]: o["filled"] for o in summary["orders"]}  # type: ignore[attr-defined]
     assert recovered >= 3
-    assert {"ZEPH-T1": 200} == filled
+    assert {"X_ZEPH-T1": 200} == filled
 
 
 def test_redelivered_fill_changes_nothing(tmp_path: Path, mosquitto: PrivateMosquitto) -> None:
@@ -203,7 +203,7 @@ def test_redelivered_fill_changes_nothing(tmp_path: Path, mosquitto: PrivateMosq
 
     summary = asyncio.run(scenario())
     filled = {o["order_id"]: o["filled"] for o in summary["orders"]}  # type: ignore[attr-defined]
-    assert ({"ZEPH-T1": 100}, 2) == (filled, summary["replay"]["redelivered"])  # type: ignore[index]
+    assert ({"X_ZEPH-T1": 100}, 2) == (filled, summary["replay"]["redelivered"])  # type: ignore[index]
 
 
 async def _retained(port: int, topic: str) -> bytes | None:
@@ -230,11 +230,11 @@ def test_status_is_retained_per_order(tmp_path: Path, mosquitto: PrivateMosquitt
     async def scenario() -> bytes | None:
         async with Daemon(settings) as daemon:
             await _serve_until_published(daemon, mosquitto.port, [_order(), _fill(1)])
-        return await _retained(mosquitto.port, f"{ROOT}/status/ZEPH-T1")
+        return await _retained(mosquitto.port, f"{ROOT}/status/X_ZEPH-T1")
 
     status = asyncio.run(scenario())
     assert status is not None
-    assert (100, "ZEPH-T1") == (json.loads(status)["filled"], json.loads(status)["order_id"])
+    assert (100, "X_ZEPH-T1") == (json.loads(status)["filled"], json.loads(status)["order_id"])
 
 
 def test_health_is_online_while_running_and_offline_after_stop(
@@ -262,11 +262,11 @@ def test_health_is_online_while_running_and_offline_after_stop(
 @pytest.mark.parametrize(
     ("topic", "payload", "reason"),
     [
-        (f"{ROOT}/fills/ZEPH-T1", b"{not json", "not valid JSON"),
-        (f"{ROOT}/fills/ZEPH-T1", b"\xff\xfe", "not UTF-8"),
-        (f"{ROOT}/fills/ZEPH%2BT1", _fill(1)[1], "the topic says"),
-        (f"{ROOT}/orders/ZEPH-T1", _fill(1)[1], "arrived on topic"),
-        (f"{ROOT}/fills/ZEPH-T1", b"x" * 70_000, "over the limit"),
+        (f"{ROOT}/fills/X_ZEPH-T1", b"{not json", "not valid JSON"),
+        (f"{ROOT}/fills/X_ZEPH-T1", b"\xff\xfe", "not UTF-8"),
+        (f"{ROOT}/fills/X_ZEPH%2BT1", _fill(1)[1], "the topic says"),
+        (f"{ROOT}/orders/X_ZEPH-T1", _fill(1)[1], "arrived on topic"),
+        (f"{ROOT}/fills/X_ZEPH-T1", b"x" * 70_000, "over the limit"),
     ],
     ids=["json", "utf8", "id-mismatch", "wrong-topic", "too-large"],
 )
@@ -291,7 +291,7 @@ def test_bad_message_reaches_the_errors_topic(
     filled = {o["order_id"]: o["filled"] for o in summary["orders"]}  # type: ignore[attr-defined]
     assert 1 == len(errors)
     assert reason in str(errors[0]["reason"]) + str(errors[0]["payload"])
-    assert {"ZEPH-T1": 100} == filled
+    assert {"X_ZEPH-T1": 100} == filled
 
 
 def test_small_inbox_applies_a_burst_without_loss(
@@ -308,7 +308,7 @@ def test_small_inbox_applies_a_burst_without_loss(
 
     summary = asyncio.run(scenario())
     filled = {o["order_id"]: o["filled"] for o in summary["orders"]}  # type: ignore[attr-defined]
-    assert {"ZEPH-T1": 3_000} == filled
+    assert {"X_ZEPH-T1": 3_000} == filled
 
 
 @pytest.fixture

@@ -184,7 +184,7 @@ _TOPICS = st.sampled_from(
     [
         f"{JUNK_ROOT}/orders/O-1",
         f"{JUNK_ROOT}/fills/O-1",
-        f"{JUNK_ROOT}/bins/ZEPH",
+        f"{JUNK_ROOT}/bins/X_ZEPH",
         f"{JUNK_ROOT}/control",
     ]
 )
@@ -267,12 +267,12 @@ def _fill_message(root: str, n: int) -> tuple[str, bytes]:
     payload = {
         "type": "fill",
         "fill_id": f"F{n}",
-        "order_id": "ZEPH-J1",
+        "order_id": "X_ZEPH-J1",
         "quantity": 100,
         "price": 42.0,
         "ts": "2026-03-10T14:31:00Z",
     }
-    return f"{root}/fills/ZEPH-J1", json.dumps(payload).encode()
+    return f"{root}/fills/X_ZEPH-J1", json.dumps(payload).encode()
 
 
 def test_journal_deleted_while_running_stops_and_loses_nothing(
@@ -336,8 +336,8 @@ def test_no_ticks_are_journaled_while_nothing_waits_on_time(
     order = {
         "type": "order",
         "action": "new",
-        "order_id": "ZEPH-Q1",
-        "symbol": "ZEPH",
+        "order_id": "X_ZEPH-Q1",
+        "symbol": "X_ZEPH",
         "side": "buy",
         "quantity": 1_000,
         "start": utc_text(start + timedelta(minutes=3)),
@@ -354,13 +354,13 @@ def test_no_ticks_are_journaled_while_nothing_waits_on_time(
             await asyncio.wait_for(daemon.bus.connected.wait(), 30)
             await asyncio.sleep(2.5)  # two and a half simulated minutes, nothing to wait for
             quiet = ticks(settings.journal)
-            message = (f"{root}/orders/ZEPH-Q1", json.dumps(order).encode())
+            message = (f"{root}/orders/X_ZEPH-Q1", json.dumps(order).encode())
             await publish_all(mosquitto.port, [message], client_id="quiet-pub")
             await async_wait_until(
-                lambda: daemon.engine.state_of("ZEPH-Q1") is not None, 30, "the order"
+                lambda: daemon.engine.state_of("X_ZEPH-Q1") is not None, 30, "the order"
             )
             await asyncio.sleep(4.0)  # its start (3 simulated minutes in) passes meanwhile
-            state = daemon.engine.state_of("ZEPH-Q1")
+            state = daemon.engine.state_of("X_ZEPH-Q1")
             daemon.stop()
             await asyncio.wait_for(task, 60)
             return quiet, ticks(settings.journal), None if state is None else state.value

@@ -96,7 +96,7 @@ def test_demo_command_exits_zero_and_says_where_outputs_are(
     assert 0 == code
     assert f"journal:  {out / 'journal.sqlite'}" in printed
     assert "matches what the daemon published" in printed
-    assert ["KALO-S1", "MIRA-B1", "ZEPH-B1", "ZEPH-S2"] == sorted(filled)
+    assert ["X_KALO-S1", "X_MIRA-B1", "X_ZEPH-B1", "X_ZEPH-S2"] == sorted(filled)
     assert all(shares > 0 for shares in filled.values())
 
 

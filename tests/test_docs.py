@@ -49,7 +49,7 @@ def test_readme_carries_the_cautions() -> None:
 def test_readme_example_order_is_a_whole_session_near_the_demo_price() -> None:
     """The README's example order decodes, spans exactly the session's 78 bins in New York time
     (09:30-16:00, daylight saving time included: common practice for US equities) and names an
-    arrival price within 5 % of ZEPH's first bin on that day of the invented recording shipped
+    arrival price within 5 % of X_ZEPH's first bin on that day of the invented recording shipped
     beside it."""
     import json
 
@@ -58,11 +58,11 @@ def test_readme_example_order_is_a_whole_session_near_the_demo_price() -> None:
 
     text = (ROOT / "README.md").read_text()
     block = text.split("with an `order.json` such as", 1)[1].split("```json", 1)[1].split("```")[0]
-    order = decode("tracker/orders/ZEPH-B1", json.loads(block))
+    order = decode("tracker/orders/X_ZEPH-B1", json.loads(block))
     first, end, fraction = Session().bin_span(order.start, order.end)  # type: ignore[attr-defined]
     assert (0, 78, 1.0) == (first, end, fraction)
     day = ROOT / "replay_data" / "day-2026-03-10-seed7.jsonl"
     lines = [json.loads(line) for line in day.read_text().splitlines() if line.strip()]
-    first_bin = next(line["payload"] for line in lines if line["topic"].endswith("/bins/ZEPH"))
+    first_bin = next(line["payload"] for line in lines if line["topic"].endswith("/bins/X_ZEPH"))
     assert order.start.date() == date.fromisoformat(first_bin["start"][:10])  # type: ignore[attr-defined]
     assert abs(order.arrival_price / first_bin["open"] - 1) < 0.05  # type: ignore[attr-defined]

@@ -1,7 +1,7 @@
 """The tracking engine: lifecycle, re-planning, fills, alerts and the summary.
 
 Symbols, prices and volumes here are invented test values (a made-up venue, Harbour Lane
-Exchange, HLX). The session is the default one (09:30-16:00 America/New_York, 5-minute bins, 78
+Exchange, X_HLX). The session is the default one (09:30-16:00 America/New_York, 5-minute bins, 78
 bins: common practice); on 2026-03-02 the open is 14:30 UTC.
 """
 
@@ -47,7 +47,7 @@ def closed_bin(index: int, *, volume: int = 12_000, price: float = 20.0, **extra
     """The bin message of bin ``index`` (default profile volumes are about 8,000-30,000)."""
     start = OPEN + index * BIN
     return bin_message(
-        "ZEPH",
+        "X_ZEPH",
         start,
         start + BIN,
         volume=volume,
@@ -60,7 +60,7 @@ def new_order(order_id: str = "A", quantity: int = 50_000, **extra: object):
     """A buy order over the whole day, sent before the open."""
     return order(
         order_id,
-        "ZEPH",
+        "X_ZEPH",
         "buy",
         quantity,
         at(0),
@@ -121,7 +121,7 @@ def test_order_starting_mid_session_plans_over_its_own_bins(recorder: Recorder) 
     """An order sent at 12:00 for the rest of the day targets the 12:00 bin first."""
     for index in range(30):
         recorder.feed(closed_bin(index))
-    recorder.feed(order("L", "ZEPH", "sell", 9_000, at(150), at(390), ts=at(150)))
+    recorder.feed(order("L", "X_ZEPH", "sell", 9_000, at(150), at(390), ts=at(150)))
     target = recorder.targets("L")[-1]
     expected = (OPEN + 30 * BIN, 1)
     assert expected == (target.bin_start, target.plan_version)
@@ -200,7 +200,7 @@ def test_amend_below_filled_is_refused(recorder: Recorder) -> None:
 
 def test_expiry_with_residual_alerts(recorder: Recorder) -> None:
     """An order whose end passes with shares left expires with a warning."""
-    recorder.feed(order("S", "ZEPH", "buy", 5_000, at(0), at(10), ts=at(-1)))
+    recorder.feed(order("S", "X_ZEPH", "buy", 5_000, at(0), at(10), ts=at(-1)))
     recorder.feed(tick(at(0)))
     recorder.feed(fill("S", "f1", 1_000, 20.0, ts=at(4)))
     recorder.feed(tick(at(10)))
@@ -327,7 +327,7 @@ def test_stale_market_data_raised_and_cleared(recorder: Recorder) -> None:
         recorder.feed(tick(at(minute)))
     recorder.feed(closed_bin(1))
     states = [(a.state, a.symbol) for a in recorder.alerts("market_data_stale")]
-    assert [("raised", "ZEPH"), ("cleared", "ZEPH")] == states
+    assert [("raised", "X_ZEPH"), ("cleared", "X_ZEPH")] == states
 
 
 def test_tiny_participation_cap_makes_completion_infeasible(recorder: Recorder) -> None:
@@ -347,7 +347,7 @@ def test_volume_shock_is_symbol_level(recorder: Recorder) -> None:
     started(recorder)
     recorder.feed(closed_bin(0, volume=300_000))
     alerts = recorder.alerts("volume_shock")
-    assert [(None, "ZEPH")] == [(a.order_id, a.symbol) for a in alerts]
+    assert [(None, "X_ZEPH")] == [(a.order_id, a.symbol) for a in alerts]
 
 
 def test_default_profile_alert_once_per_symbol(recorder: Recorder) -> None:
@@ -360,7 +360,7 @@ def test_default_profile_alert_once_per_symbol(recorder: Recorder) -> None:
 
 def test_calibrated_profile_means_no_default_alert() -> None:
     """With a profile for the symbol there is no default-profile alert."""
-    recorder = Recorder(Engine(profiles={"ZEPH": default_profile("ZEPH")}))
+    recorder = Recorder(Engine(profiles={"X_ZEPH": default_profile("X_ZEPH")}))
     recorder.feed(new_order("A"))
     assert [] == recorder.alerts("default_profile")
 
@@ -401,9 +401,9 @@ def test_bin_going_backwards_is_rejected(recorder: Recorder) -> None:
 def test_bin_off_the_session_grid_is_rejected(recorder: Recorder) -> None:
     """A bin that is not one of the session's 5-minute bins is an error."""
     start = OPEN + timedelta(minutes=2)
-    outputs = recorder.feed(bin_message("ZEPH", start, start + BIN, volume=100, price=20.0))
+    outputs = recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=100, price=20.0))
     errors = [o for o in outputs if isinstance(o, ErrorMessage)]
-    assert 1 == len(errors) and "is not a bin of ZEPH's session" in errors[0].reason
+    assert 1 == len(errors) and "is not a bin of X_ZEPH's session" in errors[0].reason
 
 
 def test_tick_going_backwards_is_rejected(recorder: Recorder) -> None:
@@ -428,7 +428,7 @@ def test_second_new_order_with_the_same_id_is_an_error(recorder: Recorder) -> No
 
 def test_order_spanning_two_days_is_rejected(recorder: Recorder) -> None:
     """An order must start and end on the same trading day."""
-    message = order("X", "ZEPH", "buy", 100, at(0), at(24 * 60), ts=at(-1))
+    message = order("X", "X_ZEPH", "buy", 100, at(0), at(24 * 60), ts=at(-1))
     outputs = recorder.feed(message)
     errors = [o for o in outputs if isinstance(o, ErrorMessage)]
     assert 1 == len(errors) and "same local trading day" in errors[0].reason
@@ -461,7 +461,7 @@ def test_given_arrival_price_wins(recorder: Recorder) -> None:
 def test_shortfall_sign_positive_is_cost(side: str, fill_price: float, expected_bps: float) -> None:
     """Shortfall against arrival is positive when it cost money, for buys and sells alike."""
     recorder = Recorder(Engine())
-    recorder.feed(order("A", "ZEPH", side, 10_000, at(0), at(390), ts=at(-1), arrival_price=20.0))
+    recorder.feed(order("A", "X_ZEPH", side, 10_000, at(0), at(390), ts=at(-1), arrival_price=20.0))
     recorder.feed(tick(at(0)))
     recorder.feed(fill("A", "f1", 1_000, fill_price, ts=at(1)))
     recorder.feed(closed_bin(0, price=20.0))
@@ -489,7 +489,7 @@ def day_of_messages() -> list[object]:
     """A short invented morning: two orders, fills, bins, a halt and ticks."""
     messages: list[object] = [
         new_order("B", 30_000),
-        order("A", "ZEPH", "sell", 20_000, at(0), at(120), ts=at(-5), limit_price=19.5),
+        order("A", "X_ZEPH", "sell", 20_000, at(0), at(120), ts=at(-5), limit_price=19.5),
         tick(at(0)),
     ]
     for index in range(8):
@@ -546,7 +546,7 @@ def test_replan_from_expected_inventory_reproduces_remaining_plan() -> None:
     Bellman's principle of optimality (Bellman 1957, Dynamic Programming): the tail of an optimal
     schedule is optimal for the tail problem started from the schedule's own inventory.
     """
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     today = forecast(profile, {})
     prefs = preferences("high")
     full = solve(
@@ -578,9 +578,9 @@ def test_replan_from_expected_inventory_reproduces_remaining_plan() -> None:
 
 def test_engine_replan_on_plan_reproduces_remaining_plan() -> None:
     """When fills and volumes follow the plan and forecast, re-plans keep the first plan."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     expected_volume = profile.expected_volume
-    engine = Engine(profiles={"ZEPH": profile})
+    engine = Engine(profiles={"X_ZEPH": profile})
     engine.handle(new_order("A", 50_000, arrival_price=20.0, urgency="high"))
     first = next(o for o in engine.handle(tick(at(0))) if isinstance(o, TargetMessage))
     first_plan = engine._state.orders["A"].plan  # white-box: the first plan's cumulative schedule
@@ -666,7 +666,7 @@ def test_large_fill_ahead_moves_the_plan_materially(recorder: Recorder) -> None:
 def test_expiry_grace_lets_last_fills_count_as_live() -> None:
     """With a grace period, a fill just after the end arrives before the order expires."""
     recorder = Recorder(Engine(EngineConfig(expiry_grace_seconds=30)))
-    recorder.feed(order("S", "ZEPH", "buy", 5_000, at(0), at(10), ts=at(-1)))
+    recorder.feed(order("S", "X_ZEPH", "buy", 5_000, at(0), at(10), ts=at(-1)))
     recorder.feed(tick(at(0)))
     recorder.feed(tick(at(10)))
     recorder.feed(fill("S", "late", 1_000, 20.0, ts=at(10.2)))
@@ -680,8 +680,8 @@ def test_expiry_grace_lets_last_fills_count_as_live() -> None:
 
 def test_reject_names_the_order_of_the_topic() -> None:
     """An error for a payload on an order topic carries that order id."""
-    error = Engine().reject("tracker/fills/ZEPH-1", b"{", "not JSON", None)
-    expected = ("ZEPH-1", "tracker/fills/ZEPH-1", "{")
+    error = Engine().reject("tracker/fills/X_ZEPH-1", b"{", "not JSON", None)
+    expected = ("X_ZEPH-1", "tracker/fills/X_ZEPH-1", "{")
     assert expected == (error.order_id, error.topic, error.payload)
 
 

@@ -51,8 +51,8 @@ def synthetic_bin_close(symbols: int) -> list[Inbound]:
             events.append(
                 OrderMessage(
                     action="new",
-                    order_id=f"HX{s:02d}-{side}",
-                    symbol=f"HX{s:02d}",
+                    order_id=f"X_HX{s:02d}-{side}",
+                    symbol=f"X_HX{s:02d}",
                     side=side,
                     quantity=quantity,
                     start=open_,
@@ -67,7 +67,7 @@ def synthetic_bin_close(symbols: int) -> list[Inbound]:
             price = 20.0 + s
             events.append(
                 BinMessage(
-                    symbol=f"HX{s:02d}",
+                    symbol=f"X_HX{s:02d}",
                     start=start,
                     end=end,
                     volume=30_000 + 1_000 * s,

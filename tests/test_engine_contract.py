@@ -33,9 +33,9 @@ def at(minutes: float) -> str:
 
 
 def new_order(order_id: str = "A", ts: str | None = None, **extra: object):  # type: ignore[no-untyped-def]
-    """A buy of 50,000 ZEPH over the whole day, sent before the open, cap 20 %."""
+    """A buy of 50,000 X_ZEPH over the whole day, sent before the open, cap 20 %."""
     values: dict[str, object] = {"max_participation": 0.2, **extra}
-    return order(order_id, "ZEPH", "buy", 50_000, at(0), at(390), ts=ts or at(-30), **values)
+    return order(order_id, "X_ZEPH", "buy", 50_000, at(0), at(390), ts=ts or at(-30), **values)
 
 
 def started(config: EngineConfig | None = None, **extra: object) -> Recorder:
@@ -57,7 +57,7 @@ def codes(outputs: list[object]) -> list[str]:
 def test_cancel_naming_another_side_still_cancels_with_a_critical_alert() -> None:
     """A cancel whose side contradicts the order cancels it and raises cancel_mismatch."""
     recorder = started()
-    outputs = recorder.feed(cancel("A", ts=at(1), symbol="ZEPH", side="sell"))
+    outputs = recorder.feed(cancel("A", ts=at(1), symbol="X_ZEPH", side="sell"))
     alert = recorder.alerts("cancel_mismatch")[0]
     ack = next(o for o in outputs if isinstance(o, AckMessage))
     assert "cancelled" == recorder.engine.state_of("A")  # type: ignore[attr-defined]
@@ -68,7 +68,7 @@ def test_cancel_naming_another_side_still_cancels_with_a_critical_alert() -> Non
 def test_cancel_with_an_earlier_ts_still_cancels() -> None:
     """A cancel is not refused for its time: it wins even when stamped before the last amend."""
     recorder = started()
-    recorder.feed(order("A", "ZEPH", "buy", 40_000, at(0), at(390), ts=at(5), action="amend"))
+    recorder.feed(order("A", "X_ZEPH", "buy", 40_000, at(0), at(390), ts=at(5), action="amend"))
     recorder.feed(cancel("A", ts=at(2)))
     assert "cancelled" == recorder.engine.state_of("A")  # type: ignore[attr-defined]
 
@@ -97,7 +97,7 @@ def test_every_order_message_gets_one_ack() -> None:
     """new, amend and cancel are each acknowledged once; a refused new says why."""
     recorder = started()
     recorder.feed(new_order())  # the same id again: refused
-    recorder.feed(order("A", "ZEPH", "buy", 40_000, at(0), at(390), ts=at(1), action="amend"))
+    recorder.feed(order("A", "X_ZEPH", "buy", 40_000, at(0), at(390), ts=at(1), action="amend"))
     recorder.feed(cancel("A", ts=at(2)))
     acks = [(a.action, a.result) for a in recorder.acks("A")]
     expected = [
@@ -250,7 +250,7 @@ def test_expiry_publishes_a_final_zero_target() -> None:
 def test_order_without_a_cap_gets_the_default_cap_in_its_status() -> None:
     """No max_participation: the configured default (0.25) applies and the status says so."""
     recorder = Recorder(Engine())
-    recorder.feed(order("B", "ZEPH", "buy", 50_000, at(0), at(390), ts=at(-30)))
+    recorder.feed(order("B", "X_ZEPH", "buy", 50_000, at(0), at(390), ts=at(-30)))
     status = recorder.statuses("B")[-1]
     assert (0.25, "default") == (status.max_participation, status.cap_source)
 
@@ -298,8 +298,8 @@ def test_any_interleaving_of_fills_and_their_order_gives_the_same_result(
 def test_amend_may_echo_the_start_but_not_change_it() -> None:
     """An amend repeating the order's start is applied; one with another start is refused."""
     recorder = started()
-    same = order("A", "ZEPH", "buy", 40_000, at(0), at(390), ts=at(1), action="amend")
-    other = order("A", "ZEPH", "buy", 30_000, at(5), at(390), ts=at(2), action="amend")
+    same = order("A", "X_ZEPH", "buy", 40_000, at(0), at(390), ts=at(1), action="amend")
+    other = order("A", "X_ZEPH", "buy", 30_000, at(5), at(390), ts=at(2), action="amend")
     recorder.feed(same)
     recorder.feed(other)
     results = [(a.action, a.result) for a in recorder.acks("A")[1:]]

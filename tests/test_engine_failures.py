@@ -182,7 +182,7 @@ def test_order_is_left_as_it_was_and_replanned_on_the_next_event(
     engine.handle(
         order(
             "A",
-            "ZEPH",
+            "X_ZEPH",
             "buy",
             40_000,
             "2026-03-02T14:30:00Z",

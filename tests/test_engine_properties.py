@@ -1,6 +1,6 @@
 """Properties of the engine over random message sequences (Hypothesis).
 
-Symbols and prices are invented test values (a made-up venue, Harbour Lane Exchange, HLX).
+Symbols and prices are invented test values (a made-up venue, Harbour Lane Exchange, X_HLX).
 """
 
 from __future__ import annotations
@@ -75,7 +75,7 @@ def step(draw: st.DrawFn) -> tuple[int, Any]:
                 "type": "order",
                 "action": "new",
                 "order_id": order_id,
-                "symbol": "ZEPH",
+                "symbol": "X_ZEPH",
                 "side": side,
                 "quantity": quantity,
                 "start": at(start),
@@ -122,9 +122,9 @@ def step(draw: st.DrawFn) -> tuple[int, Any]:
         def bin_(minute: int) -> tuple[str, Any]:
             index = min(max(minute // 5 - shift, 0), 77)
             start = OPEN + timedelta(minutes=5 * index)
-            return "tracker/bins/ZEPH", {
+            return "tracker/bins/X_ZEPH", {
                 "type": "bin",
-                "symbol": "ZEPH",
+                "symbol": "X_ZEPH",
                 "start": iso(start),
                 "end": iso(start + timedelta(minutes=5)),
                 "volume": volume,
@@ -151,7 +151,7 @@ def step(draw: st.DrawFn) -> tuple[int, Any]:
         return advance, control
     if kind == "tick":
         return advance, lambda minute: ("tracker/tick", {"type": "tick", "ts": at(minute)})
-    topic = draw(st.sampled_from(["tracker/fills/A", "tracker/bins/ZEPH", "tracker/nowhere"]))
+    topic = draw(st.sampled_from(["tracker/fills/A", "tracker/bins/X_ZEPH", "tracker/nowhere"]))
     garbage = draw(st.sampled_from(["{", "[]", '{"type": "fill"}', '{"type": "quote"}', b"\xff"]))
     return advance, lambda minute: (topic, garbage)
 
@@ -164,7 +164,7 @@ PREFIX: list[tuple[str, Any]] = [
             "type": "order",
             "action": "new",
             "order_id": order_id,
-            "symbol": "ZEPH",
+            "symbol": "X_ZEPH",
             "side": side,
             "quantity": quantity,
             "start": at(0),

@@ -356,9 +356,9 @@ def test_the_report_values_completion_at_zero_one_and_three_times_the_penalty() 
 def test_recorded_days_are_replayed_with_a_profile_from_the_days_before() -> None:
     """A history replays as the market: each day's bins are the recording's, and its profile is
     calibrated on the 20 full days before it."""
-    frame = simulate_history("ZEPH", 26, seed=4)
+    frame = simulate_history("X_ZEPH", 26, seed=4)
     config = load_config()
-    recorded = read_recorded(frame, "ZEPH", config.session)
+    recorded = read_recorded(frame, "X_ZEPH", config.session)
     days = list(
         history_days(
             config, config.scenario("normal"), recorded, days=3, seed=1, calibration_days=20
@@ -378,9 +378,9 @@ def test_recorded_days_are_replayed_with_a_profile_from_the_days_before() -> Non
 
 def test_a_recorded_day_cannot_be_made_exact() -> None:
     """An exact scenario changes the price path, which a recording cannot: a clear error."""
-    frame = simulate_history("ZEPH", 3, seed=4)
+    frame = simulate_history("X_ZEPH", 3, seed=4)
     config = exact_config()
-    recorded = read_recorded(frame, "ZEPH", config.session)
+    recorded = read_recorded(frame, "X_ZEPH", config.session)
     with pytest.raises(InputError, match="recorded day cannot"):
         list(
             history_days(config, config.scenarios[0], recorded, days=1, seed=1, calibration_days=1)

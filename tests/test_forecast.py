@@ -22,7 +22,7 @@ def _days(scales: np.ndarray, seed: int) -> np.ndarray:
     """Per-bin volumes (days x 78) of invented full days with the given day scales (the truth)."""
     count = scales.shape[0]
     frame = simulate_days(
-        "ZEPH",
+        "X_ZEPH",
         trading_days(date(2026, 1, 5), count),
         np.random.default_rng(seed),
         volume_scales=scales,
@@ -53,13 +53,13 @@ def test_remaining_volume_error_falls_through_the_morning(normal_days: np.ndarra
     """The error of the remaining-day volume forecast falls as bins are observed (to midday)."""
     # After midday the remaining volume is the sum of few noisy bins and its relative error grows
     # again whatever the scale estimate; the day scale itself is learnt by then.
-    errors = [_remaining_errors(normal_days, true_profile("ZEPH"), k)[0] for k in CHECKPOINTS]
+    errors = [_remaining_errors(normal_days, true_profile("X_ZEPH"), k)[0] for k in CHECKPOINTS]
     assert sorted(errors, reverse=True) == errors
 
 
 def test_day_volume_error_falls_all_day(normal_days: np.ndarray) -> None:
     """The error of the whole day's volume (observed + forecast) falls at every checkpoint."""
-    profile = true_profile("ZEPH")
+    profile = true_profile("X_ZEPH")
     errors = []
     for seen in (0, 6, 12, 24, 39, 52, 66, 72):
         errors.append(
@@ -84,20 +84,20 @@ def test_day_volume_error_falls_all_day(normal_days: np.ndarray) -> None:
 def test_forecast_beats_unadjusted_profile_on_shock_days(shock: float, seen: int) -> None:
     """On days with a volume shock the forecast beats the unadjusted profile."""
     volumes = _days(np.full(60, shock), seed=int(shock * 10) + seen)
-    adjusted, unadjusted = _remaining_errors(volumes, true_profile("ZEPH"), seen)
+    adjusted, unadjusted = _remaining_errors(volumes, true_profile("X_ZEPH"), seen)
     assert adjusted < unadjusted
 
 
 def test_no_observation_is_the_profile() -> None:
     """With nothing observed the forecast is the profile's expected volume."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     np.testing.assert_array_equal(profile.expected_volume, forecast(profile, {}).volume)
 
 
 def test_scale_is_shrunk_toward_one_early() -> None:
     """With a normal prior, double volume in the first bin gives log s = w log 2 with
     w = f / (f + 0.05) (the normal-normal posterior mean)."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     first = float(profile.expected_volume[0])
     today = forecast(profile, {0: ObservedBin(2 * first)}, prior_df=math.inf)
     fraction = float(profile.volume_share[0])
@@ -107,27 +107,27 @@ def test_scale_is_shrunk_toward_one_early() -> None:
 
 def test_scale_follows_the_observed_ratio_late() -> None:
     """After most of the day the scale is close to the observed ratio."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     observed = {i: ObservedBin(1.5 * float(v)) for i, v in enumerate(profile.expected_volume[:60])}
     assert 1.5 == pytest.approx(forecast(profile, observed).volume_scale, rel=0.05)
 
 
 def test_scale_is_bounded() -> None:
     """A day with 100 times the volume is capped at the upper bound."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     observed = {i: ObservedBin(100 * float(v)) for i, v in enumerate(profile.expected_volume[:40])}
     assert VOLUME_SCALE_BOUNDS[1] == forecast(profile, observed).volume_scale
 
 
 def test_observed_bins_keep_what_was_seen() -> None:
     """Observed bins hold the observed volume and spread."""
-    today = forecast(default_profile("ZEPH"), {0: ObservedBin(12_345.0, spread=0.07)})
+    today = forecast(default_profile("X_ZEPH"), {0: ObservedBin(12_345.0, spread=0.07)})
     assert (12_345.0, 0.07) == (today.volume[0], today.spread[0])
 
 
 def test_wide_spreads_raise_the_spread_forecast() -> None:
     """Spreads twice the profile in recent bins raise the forecast spread, shrunk: 1 < r < 2."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     observed = {
         i: ObservedBin(float(profile.expected_volume[i]), spread=2 * float(profile.spread[i]))
         for i in range(12)
@@ -139,7 +139,7 @@ def test_wide_spreads_raise_the_spread_forecast() -> None:
 
 def test_volatility_ratio_from_ranges() -> None:
     """High-low ranges implying twice the profile volatility give a shrunk ratio 2^(m/(m+m0))."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     observed = {}
     for i in range(12):
         # Parkinson: ln(H/L) = sigma * sqrt(4 ln 2) makes the bin's estimate exactly sigma.
@@ -159,13 +159,13 @@ def test_forecast_mid_session_for_symbol_without_profile() -> None:
 def test_observed_index_outside_session_is_rejected() -> None:
     """An observed bin index outside the session raises InputError."""
     with pytest.raises(InputError):
-        forecast(default_profile("ZEPH"), {78: ObservedBin(1.0)})
+        forecast(default_profile("X_ZEPH"), {78: ObservedBin(1.0)})
 
 
 def test_a_midday_collapse_stays_out_of_the_day_scale() -> None:
     """An hour at a fifth of the profile's volume (12 bins) does not move the day's scale: it is
     the scale of the same day without those bins (a transient shock, not a smaller day)."""
-    profile = true_profile("ZEPH")
+    profile = true_profile("X_ZEPH")
     noise = np.exp(np.random.default_rng(8).standard_normal(42) * 0.1)
     steady = {i: ObservedBin(1.1 * float(profile.expected_volume[i]) * noise[i]) for i in range(42)}
     collapsed = dict(steady)
@@ -178,7 +178,7 @@ def test_a_midday_collapse_stays_out_of_the_day_scale() -> None:
 def test_a_day_off_its_profile_is_followed_faster_than_with_a_normal_prior() -> None:
     """Half the volume all morning: the Student-t prior's scale is nearer the observed half
     than the normal prior's (a heavy-tailed prior pulls less on large deviations; from memory)."""
-    profile = true_profile("ZEPH")
+    profile = true_profile("X_ZEPH")
     half = {i: ObservedBin(0.5 * float(v)) for i, v in enumerate(profile.expected_volume[:12])}
     heavy = forecast(profile, half).volume_scale
     normal = forecast(profile, half, prior_df=math.inf).volume_scale

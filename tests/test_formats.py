@@ -49,7 +49,7 @@ def test_topics_under_root() -> None:
     assert ("desk/orders/+", "desk/fills/+", "desk/bins/+", "desk/control") == topics.inbound
     assert "desk/targets/A-1" == topics.targets("A-1")
     assert "desk/alerts/engine/all" == topics.alerts(None)
-    assert "desk/alerts/symbol/ZEPH" == topics.symbol_alerts("ZEPH")
+    assert "desk/alerts/symbol/X_ZEPH" == topics.symbol_alerts("X_ZEPH")
     assert "desk/acks/A-1" == topics.acks("A-1")
     assert "desk/health/i1" == topics.health("i1")
     assert DEFAULT_ROOT == Topics().root
@@ -70,7 +70,7 @@ def test_order_id_of(topic: str, expected: str | None) -> None:
     [
         ("desk/orders/A-1", ("orders", "A-1")),
         ("desk/fills/A-1", ("fills", "A-1")),
-        ("desk/bins/ZEPH", ("bins", "ZEPH")),
+        ("desk/bins/X_ZEPH", ("bins", "X_ZEPH")),
         ("desk/control", ("control", None)),
         ("desk/tick", ("tick", None)),
         ("desk/orders", None),

@@ -1,9 +1,9 @@
 """Golden regression: replaying the shipped invented day gives the shipped outputs, byte for byte.
 
-The day (replay_data/day-*.jsonl) is invented: made-up symbols ZEPH, KALO and MIRA on the made-up
-venue Harbour Lane Exchange (HLX), recorded by `tracker simulate day`. When a change to the engine
-is meant to change its outputs, regenerate the golden files as replay_data/GOLDEN.md says and
-review the diff.
+The day (replay_data/day-*.jsonl) is invented: made-up symbols X_ZEPH, X_KALO and X_MIRA on the
+made-up venue Harbour Lane Exchange (X_HLX), recorded by `tracker simulate day`. When a change to
+the engine is meant to change its outputs, regenerate the golden files as replay_data/GOLDEN.md says
+and review the diff.
 """
 
 from __future__ import annotations
@@ -52,7 +52,7 @@ def test_errors_are_exactly_the_bad_lines(replayed: Path) -> None:
     errors = (replayed / "errors.jsonl").read_text(encoding="utf-8").splitlines()
     assert bad == [json.loads(error)["line"] for error in errors]
     summary = json.loads((replayed / "summary.json").read_text(encoding="utf-8"))
-    assert ["ORIN-B9"] == [row["order_id"] for row in summary["unassigned_fills"]]
+    assert ["X_ORIN-B9"] == [row["order_id"] for row in summary["unassigned_fills"]]
 
 
 def test_the_day_has_targets_and_alerts(replayed: Path) -> None:
@@ -60,7 +60,7 @@ def test_the_day_has_targets_and_alerts(replayed: Path) -> None:
     targets = (replayed / "targets.jsonl").read_text(encoding="utf-8").splitlines()
     orders = {json.loads(t)["order_id"] for t in targets}
     alerts = (replayed / "alerts.jsonl").read_text(encoding="utf-8").splitlines()
-    expected = ({"ZEPH-B1", "KALO-S1", "MIRA-B1", "ZEPH-S2"}, True)
+    expected = ({"X_ZEPH-B1", "X_KALO-S1", "X_MIRA-B1", "X_ZEPH-S2"}, True)
     assert expected == (orders, len(alerts) > 0)
 
 

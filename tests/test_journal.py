@@ -257,12 +257,12 @@ def test_export_replays_like_the_journal(
     from tracker.edge.recordings import read_jsonl
 
     order = (
-        '{"type":"order","action":"new","order_id":"ZEPH-J1","symbol":"ZEPH","side":"buy",'
+        '{"type":"order","action":"new","order_id":"X_ZEPH-J1","symbol":"X_ZEPH","side":"buy",'
         '"quantity":5000,"start":"2026-03-10T14:30:00Z","end":"2026-03-10T20:00:00Z",'
         '"ts":"2026-03-10T14:29:00Z"}'
     )
     fill = (
-        '{"type": "fill", "fill_id": "J1", "order_id": "ZEPH-J1", "quantity": 100, '
+        '{"type": "fill", "fill_id": "J1", "order_id": "X_ZEPH-J1", "quantity": 100, '
         '"price": 42.0, "ts": "2026-03-10T14:31:00Z"}'
     )
     rows = [
@@ -271,10 +271,10 @@ def test_export_replays_like_the_journal(
             b'{"type":"tick","ts":"2026-03-10T14:29:30Z"}',
             "2026-03-10T14:29:30.000000Z",
         ),
-        ("tracker/orders/ZEPH-J1", order.encode(), "2026-03-10T14:29:31.000000Z"),
-        ("tracker/fills/ZEPH-J1", fill.encode(), "2026-03-10T14:31:01.000000Z"),  # spaced JSON
-        ("tracker/fills/ZEPH-J1", b'{"type": "fill", NaN}', "2026-03-10T14:31:02.000000Z"),
-        ("tracker/fills/ZEPH-J1", fill.encode(), "2026-03-10T14:31:03.000000Z"),  # redelivery
+        ("tracker/orders/X_ZEPH-J1", order.encode(), "2026-03-10T14:29:31.000000Z"),
+        ("tracker/fills/X_ZEPH-J1", fill.encode(), "2026-03-10T14:31:01.000000Z"),  # spaced JSON
+        ("tracker/fills/X_ZEPH-J1", b'{"type": "fill", NaN}', "2026-03-10T14:31:02.000000Z"),
+        ("tracker/fills/X_ZEPH-J1", fill.encode(), "2026-03-10T14:31:03.000000Z"),  # redelivery
     ]
     journal = tmp_path / "j.sqlite"
     with Journal(journal) as writer:

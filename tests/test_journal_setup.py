@@ -37,7 +37,7 @@ def _order(order_id: str, ts: str, **extra: object) -> bytes:
         "type": "order",
         "action": "new",
         "order_id": order_id,
-        "symbol": "ZEPH",
+        "symbol": "X_ZEPH",
         "side": "buy",
         "quantity": 10_000,
         "start": "2026-03-10T14:00:00Z",
@@ -49,10 +49,10 @@ def _order(order_id: str, ts: str, **extra: object) -> bytes:
 
 
 def _setup(cap: float, adv: float = 2_000_000.0) -> Setup:
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     mapping = {**profile.to_mapping(), "average_daily_volume": adv}
     return Setup(
-        ROOT, EngineConfig(default_max_participation=cap), {"ZEPH": Profile.from_mapping(mapping)}
+        ROOT, EngineConfig(default_max_participation=cap), {"X_ZEPH": Profile.from_mapping(mapping)}
     )
 
 
@@ -85,7 +85,7 @@ def test_timeline_reads_back_each_setup_at_its_place(tmp_path: Path) -> None:
     described = timeline(read_setup(_journal(tmp_path / "j.sqlite")))
     expected = [(0, 0.25, 2_000_000.0), (1, 0.3, 2_000_000.0)]
     actual = [
-        (after, s.config.default_max_participation, s.profiles["ZEPH"].average_daily_volume)
+        (after, s.config.default_max_participation, s.profiles["X_ZEPH"].average_daily_volume)
         for after, s in described
     ]
     assert expected == actual
@@ -146,7 +146,7 @@ def test_live_run_with_profiles_and_config_replays_byte_for_byte(
     flags, gives every output topic the bytes the daemon published."""
     profiles = tmp_path / "profiles"
     profiles.mkdir()
-    for symbol in ("ZEPH", "KALO", "MIRA"):
+    for symbol in ("X_ZEPH", "X_KALO", "X_MIRA"):
         mapping = {**default_profile(symbol).to_mapping(), "average_daily_volume": 1_500_000.0}
         (profiles / f"{symbol}.json").write_text(json.dumps(mapping))
     settings = Settings(

@@ -73,9 +73,9 @@ def test_terminal_states_have_no_way_out() -> None:
 def test_error_says_what_is_allowed() -> None:
     """The refusal names the order, its state and the events allowed now."""
     with pytest.raises(TransitionError) as info:
-        Lifecycle("ZEPH-1", State.HALTED).apply(Event.START)
+        Lifecycle("X_ZEPH-1", State.HALTED).apply(Event.START)
     expected = (
-        "cannot start: order 'ZEPH-1' is halted; allowed now: cancel, complete, expire, resume, "
+        "cannot start: order 'X_ZEPH-1' is halted; allowed now: cancel, complete, expire, resume, "
         "resume_pending"
     )
     assert expected == info.value.reason

@@ -20,14 +20,14 @@ SESSION = Session()
 
 @pytest.fixture(scope="module")
 def history() -> pd.DataFrame:
-    """250 invented days of ZEPH (about one year)."""
-    return simulate_history("ZEPH", 250, seed=11)
+    """250 invented days of X_ZEPH (about one year)."""
+    return simulate_history("X_ZEPH", 250, seed=11)
 
 
 @pytest.fixture(scope="module")
 def calibrated(history: pd.DataFrame) -> Profile:
     """The profile calibrated on the invented year."""
-    return calibrate(history, "ZEPH", SESSION)
+    return calibrate(history, "X_ZEPH", SESSION)
 
 
 # Tolerances of the recovery test, stated: with 250 days, per-bin volume noise of 30 % and spread
@@ -39,7 +39,7 @@ RECOVERY = {"volume_share": 0.06, "spread": 0.06, "volatility": 0.06}
 @pytest.mark.parametrize("name", sorted(RECOVERY), ids=sorted(RECOVERY))
 def test_calibration_recovers_generator_truth(calibrated: Profile, name: str) -> None:
     """Each per-bin curve is within the stated relative tolerance of the generator's truth."""
-    truth = getattr(true_profile("ZEPH"), name)
+    truth = getattr(true_profile("X_ZEPH"), name)
     worst = float(np.max(np.abs(getattr(calibrated, name) / truth - 1.0)))
     assert worst < RECOVERY[name]
 
@@ -68,9 +68,9 @@ def test_parkinson_matches_known_brownian_volatility() -> None:
         f"{date(2026, 1, 5) + pd.Timedelta(days=int(d))}T{label}:00"
         for d, label in zip(frame.d, np.array(SESSION.bin_labels())[frame.n], strict=True)
     ]
-    frame["symbol"], frame["volume"], frame["spread"] = "KALO", 1000, 0.01
+    frame["symbol"], frame["volume"], frame["spread"] = "X_KALO", 1000, 0.01
     frame["vwap"] = frame[["open", "close"]].mean(axis=1)
-    profile = calibrate(frame, "KALO", SESSION)
+    profile = calibrate(frame, "X_KALO", SESSION)
     assert sigma == pytest.approx(float(np.sqrt(np.mean(profile.volatility**2))), rel=0.05)
 
 
@@ -92,7 +92,7 @@ def _one_day(day: date, seed: int, close_at: time | None = None) -> pd.DataFrame
     last = session.bin_index(bins[-1][0])
     assert last is not None
     return simulate_days(
-        "MIRA", [day], np.random.default_rng(seed), session, open_bins=[(0, last + 1)]
+        "X_MIRA", [day], np.random.default_rng(seed), session, open_bins=[(0, last + 1)]
     )
 
 
@@ -101,7 +101,7 @@ def test_half_day_is_not_rebinned() -> None:
     full = _one_day(date(2026, 3, 2), 1)
     half = _one_day(date(2026, 3, 3), 2, close_at=time(13, 0))
     half.loc[half.index[0], "spread"] = 0.5  # mark the half day's 09:30 bin
-    profile = calibrate(pd.concat([full, half], ignore_index=True), "MIRA", SESSION)
+    profile = calibrate(pd.concat([full, half], ignore_index=True), "X_MIRA", SESSION)
     expected = (full.spread.iloc[0] + 0.5) / 2
     assert expected == pytest.approx(profile.spread[0])
 
@@ -110,7 +110,7 @@ def test_half_day_volume_not_used_for_shares() -> None:
     """Volume shares come from full days only, so a half day does not inflate the morning."""
     full = _one_day(date(2026, 3, 2), 1)
     half = _one_day(date(2026, 3, 3), 2, close_at=time(13, 0))
-    profile = calibrate(pd.concat([full, half], ignore_index=True), "MIRA", SESSION)
+    profile = calibrate(pd.concat([full, half], ignore_index=True), "X_MIRA", SESSION)
     expected = (full.volume / full.volume.sum()).to_numpy()
     np.testing.assert_allclose(expected, profile.volume_share, rtol=1e-12)
 
@@ -121,7 +121,7 @@ def test_bad_rows_reported_with_their_line(history: pd.DataFrame) -> None:
     frame.loc[4, "high"] = 1.0
     frame.loc[9, "volume"] = "lots"
     frame.loc[20, "start"] = pd.Timestamp("2026-01-05 09:31", tz=SESSION.timezone)
-    profile = calibrate(frame, "ZEPH", SESSION)
+    profile = calibrate(frame, "X_ZEPH", SESSION)
     expected = [(6, "high"), (11, "volume"), (22, "start")]  # row + 2: a CSV with a header
     assert expected == [(r["line"], r["field"]) for r in profile.quality["rejected"]]
 
@@ -139,7 +139,7 @@ def test_line_column_is_used_for_reports(history: pd.DataFrame) -> None:
     frame = _full_days(history, 2)
     frame["line"] = np.arange(len(frame)) + 100
     frame.loc[3, "spread"] = -0.01
-    profile = calibrate(frame, "ZEPH", SESSION)
+    profile = calibrate(frame, "X_ZEPH", SESSION)
     expected = [{"line": 103, "field": "spread", "reason": "must be >= 0 (currency)"}]
     assert expected == profile.quality["rejected"]
 
@@ -148,7 +148,7 @@ def test_duplicate_bin_is_rejected(history: pd.DataFrame) -> None:
     """A second row for the same day and bin is rejected, the first is kept."""
     day = _full_days(history)
     frame = pd.concat([day, day.head(1)], ignore_index=True)
-    profile = calibrate(frame, "ZEPH", SESSION)
+    profile = calibrate(frame, "X_ZEPH", SESSION)
     expected = [80]
     assert expected == [r["line"] for r in profile.quality["rejected"]]
 
@@ -158,16 +158,16 @@ def test_offsets_and_local_times_give_the_same_profile(history: pd.DataFrame) ->
     frame = history.head(78 * 10)
     utc = frame.assign(start=[s.tz_convert("UTC").isoformat() for s in frame.start])
     naive = frame.assign(start=[s.tz_localize(None).isoformat() for s in frame.start])
-    a, b = calibrate(utc, "ZEPH", SESSION), calibrate(naive, "ZEPH", SESSION)
+    a, b = calibrate(utc, "X_ZEPH", SESSION), calibrate(naive, "X_ZEPH", SESSION)
     np.testing.assert_array_equal(a.volume_share, b.volume_share)
 
 
 def test_spread_outlier_removed(history: pd.DataFrame) -> None:
     """A spread 100 times its usual level is screened out and counted."""
     frame = history.head(78 * 40).copy()
-    clean = calibrate(frame, "ZEPH", SESSION)
+    clean = calibrate(frame, "X_ZEPH", SESSION)
     frame.loc[78 * 5 + 40, "spread"] *= 100
-    dirty = calibrate(frame, "ZEPH", SESSION)
+    dirty = calibrate(frame, "X_ZEPH", SESSION)
     removed = (
         dirty.quality["outliers_removed"]["spread"] - clean.quality["outliers_removed"]["spread"]
     )
@@ -187,7 +187,7 @@ def test_spread_outlier_removed(history: pd.DataFrame) -> None:
 def test_unusable_history_names_the_problem(history: pd.DataFrame, change, field: str) -> None:  # type: ignore[no-untyped-def]
     """A history that cannot give a profile raises InputError naming what to fix."""
     with pytest.raises(InputError) as info:
-        calibrate(change(history.head(78 * 2)), "ZEPH", SESSION)
+        calibrate(change(history.head(78 * 2)), "X_ZEPH", SESSION)
     assert field == info.value.field
 
 
@@ -199,7 +199,7 @@ def test_profile_mapping_round_trip(calibrated: Profile) -> None:
 
 def test_profile_mapping_names_bad_bin() -> None:
     """A bin with a non-numeric spread is named with its index."""
-    data = default_profile("ZEPH").to_mapping()
+    data = default_profile("X_ZEPH").to_mapping()
     data["bins"][3]["spread"] = "wide"
     with pytest.raises(InputError) as info:
         Profile.from_mapping(data)
@@ -208,12 +208,12 @@ def test_profile_mapping_names_bad_bin() -> None:
 
 def test_default_profile_is_u_shaped() -> None:
     """The default volume curve is U-shaped: open and close above midday (common practice)."""
-    share = default_profile("ZEPH").volume_share
+    share = default_profile("X_ZEPH").volume_share
     middle = share[30:48].mean()
     assert (share[0] > 2 * middle, share[-1] > 2 * middle) == (True, True)
 
 
 def test_default_profile_spreads_widest_at_open() -> None:
     """The default spread is widest in the first bin (common practice)."""
-    spread = default_profile("ZEPH").spread
+    spread = default_profile("X_ZEPH").spread
     assert int(np.argmax(spread)) == 0

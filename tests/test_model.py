@@ -60,8 +60,8 @@ def _problem(profile: Profile, quantity: float = 50_000.0, **prefs: object):  # 
 
 def test_fixed_cost_is_half_spread_plus_fees() -> None:
     """h_n is half the bin's spread plus the fee in bps of price."""
-    problem = _problem(default_profile("ZEPH"), fee_bps=1.0)
-    expected = default_profile("ZEPH").spread * 0.5 + 1e-4 * PRICE
+    problem = _problem(default_profile("X_ZEPH"), fee_bps=1.0)
+    expected = default_profile("X_ZEPH").spread * 0.5 + 1e-4 * PRICE
     np.testing.assert_allclose(expected, problem.fixed_cost, rtol=1e-12)
 
 
@@ -79,12 +79,12 @@ def test_square_root_law_cost() -> None:
 
 def test_power_law_exponent_is_three_fifths() -> None:
     """The power law uses beta = 3/5 (Almgren, Thum, Hauptmann and Li 2005)."""
-    assert 0.6 == _problem(default_profile("ZEPH"), impact_law="power").impact_exponent
+    assert 0.6 == _problem(default_profile("X_ZEPH"), impact_law="power").impact_exponent
 
 
 def test_caps_are_participation_times_forecast_volume() -> None:
     """u_n = max_participation x V_n."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     problem = build_problem(
         quantity=1.0,
         first_bin=10,
@@ -99,7 +99,7 @@ def test_caps_are_participation_times_forecast_volume() -> None:
 
 def test_mid_bin_start_scales_first_bin_volume() -> None:
     """An order with 40 % of its first bin ahead gets 40 % of that bin's cap."""
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     problem = build_problem(
         quantity=1.0,
         first_bin=5,
@@ -153,9 +153,9 @@ def test_u_shaped_liquidity_moves_low_urgency_trading_from_the_open_to_the_close
 
 
 def _shape(urgency: str) -> np.ndarray:
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     plan = plan_order(
-        symbol="ZEPH",
+        symbol="X_ZEPH",
         side="buy",
         quantity=50_000,
         start=OPEN,
@@ -171,7 +171,7 @@ def _shape(urgency: str) -> np.ndarray:
 
 def test_low_urgency_follows_the_volume_curve() -> None:
     """Low urgency stays close to the volume curve: total variation distance below 0.12."""
-    distance = 0.5 * np.abs(_shape("low") - default_profile("ZEPH").volume_share).sum()
+    distance = 0.5 * np.abs(_shape("low") - default_profile("X_ZEPH").volume_share).sum()
     assert distance < 0.12
 
 
@@ -189,12 +189,12 @@ def test_medium_urgency_sits_between() -> None:
 def test_sell_is_never_turned_into_buying() -> None:
     """A sell's plan only sells: every bin >= 0 shares, inventory falls to 0, sums to the order."""
     plan = plan_order(
-        symbol="ZEPH",
+        symbol="X_ZEPH",
         side="sell",
         quantity=123_457,
         start=OPEN,
         end=CLOSE,
-        liquidity=default_profile("ZEPH"),
+        liquidity=default_profile("X_ZEPH"),
         preferences=preferences("high"),
         max_participation=0.3,
         arrival_price=PRICE,
@@ -208,12 +208,12 @@ def test_buy_and_sell_cost_the_same() -> None:
     """The problem is side-free: a buy and a sell of the same size have the same expected cost."""
     costs = [
         plan_order(
-            symbol="ZEPH",
+            symbol="X_ZEPH",
             side=side,
             quantity=80_000,
             start=OPEN,
             end=CLOSE,
-            liquidity=default_profile("ZEPH"),
+            liquidity=default_profile("X_ZEPH"),
             preferences=preferences(),
             max_participation=None,
             arrival_price=PRICE,
@@ -226,12 +226,12 @@ def test_buy_and_sell_cost_the_same() -> None:
 def test_cost_in_bps_of_arrival_value() -> None:
     """bps = currency cost / (quantity x arrival price) x 10,000."""
     plan = plan_order(
-        symbol="ZEPH",
+        symbol="X_ZEPH",
         side="buy",
         quantity=80_000,
         start=OPEN,
         end=CLOSE,
-        liquidity=default_profile("ZEPH"),
+        liquidity=default_profile("X_ZEPH"),
         preferences=preferences(),
         max_participation=None,
         arrival_price=PRICE,
@@ -243,12 +243,12 @@ def test_cost_in_bps_of_arrival_value() -> None:
 def test_cap_too_tight_reports_shortfall() -> None:
     """An order the caps cannot complete trades at the caps and reports what is left."""
     plan = plan_order(
-        symbol="ZEPH",
+        symbol="X_ZEPH",
         side="buy",
         quantity=900_000,
         start=OPEN,
         end=CLOSE,
-        liquidity=default_profile("ZEPH"),
+        liquidity=default_profile("X_ZEPH"),
         preferences=preferences(),
         max_participation=0.1,
         arrival_price=PRICE,
@@ -290,7 +290,7 @@ def test_bad_bin_range_is_rejected() -> None:
             quantity=1.0,
             first_bin=0,
             end_bin=N + 1,
-            forecast=forecast(default_profile("ZEPH"), {}),
+            forecast=forecast(default_profile("X_ZEPH"), {}),
             preferences=preferences(),
             max_participation=None,
             price=PRICE,
@@ -300,7 +300,7 @@ def test_bad_bin_range_is_rejected() -> None:
 def test_every_impact_law_builds_a_solvable_problem() -> None:
     """Each impact law gives a problem the solver completes."""
     statuses = {
-        name: solve(_problem(default_profile("ZEPH"), impact_law=name)).status
+        name: solve(_problem(default_profile("X_ZEPH"), impact_law=name)).status
         for name in IMPACT_LAWS
     }
     assert {name: "optimal" for name in IMPACT_LAWS} == statuses
@@ -308,12 +308,12 @@ def test_every_impact_law_builds_a_solvable_problem() -> None:
 
 def _plan(urgency: str = "medium", cap: float | None = 0.2) -> OrderPlan:
     return plan_order(
-        symbol="ZEPH",
+        symbol="X_ZEPH",
         side="buy",
         quantity=120_000,
         start=OPEN,
         end=CLOSE,
-        liquidity=default_profile("ZEPH"),
+        liquidity=default_profile("X_ZEPH"),
         preferences=preferences(urgency),
         max_participation=cap,
         arrival_price=PRICE,
@@ -323,7 +323,7 @@ def _plan(urgency: str = "medium", cap: float | None = 0.2) -> OrderPlan:
 def test_risk_term_is_risk_aversion_times_the_variance_of_the_cost() -> None:
     """With p = 2 the risk term is lambda x Var[cost] (Almgren and Chriss 2000: E + lambda V)."""
     plan = _plan()
-    adv = default_profile("ZEPH").average_daily_volume
+    adv = default_profile("X_ZEPH").average_daily_volume
     lam = preferences("medium").risk_aversion / (PRICE * adv)
     assert plan.cost["risk"] == pytest.approx(lam * plan.cost_std**2, rel=1e-9)
 

@@ -19,8 +19,8 @@ ROOT = "cli"
 ORDER = {
     "type": "order",
     "action": "new",
-    "order_id": "ZEPH-C1",
-    "symbol": "ZEPH",
+    "order_id": "X_ZEPH-C1",
+    "symbol": "X_ZEPH",
     "side": "buy",
     "quantity": 5_000,
     "start": "2026-03-10T14:30:00Z",
@@ -34,7 +34,7 @@ def _fill(n: int) -> str:
         {
             "type": "fill",
             "fill_id": f"C{n}",
-            "order_id": "ZEPH-C1",
+            "order_id": "X_ZEPH-C1",
             "quantity": 250,
             "price": 42.05,
             "ts": f"2026-03-10T14:31:{n:02d}Z",
@@ -94,11 +94,11 @@ def test_mosquitto_clients_drive_the_daemon(setup: tuple[PrivateMosquitto, Daemo
     broker, daemon = setup
     # -E: subscribe (a persistent session) and leave; the broker keeps what comes for it.
     subprocess.run(_watcher(broker.port, "-E"), check=True, timeout=60)
-    _pub(broker.port, f"{ROOT}/orders/ZEPH-C1", message=json.dumps(ORDER))
-    _pub(broker.port, f"{ROOT}/fills/ZEPH-C1", lines="\n".join(_fill(n) for n in range(4)))
-    _pub(broker.port, f"{ROOT}/fills/ZEPH-C1", message='{"type": "fill", "quantity": -1')
+    _pub(broker.port, f"{ROOT}/orders/X_ZEPH-C1", message=json.dumps(ORDER))
+    _pub(broker.port, f"{ROOT}/fills/X_ZEPH-C1", lines="\n".join(_fill(n) for n in range(4)))
+    _pub(broker.port, f"{ROOT}/fills/X_ZEPH-C1", message='{"type": "fill", "quantity": -1')
     wait_until(lambda: _journaled(daemon) >= 6, 60, "six messages in the journal")
-    status = _sub_retained(broker.port, f"{ROOT}/status/ZEPH-C1")
+    status = _sub_retained(broker.port, f"{ROOT}/status/X_ZEPH-C1")
     health = _sub_retained(broker.port, f"{ROOT}/health/cli")
     # Back as the same persistent client: what was published meanwhile comes now (-W ends it).
     queued = subprocess.run(
@@ -109,7 +109,7 @@ def test_mosquitto_clients_drive_the_daemon(setup: tuple[PrivateMosquitto, Daemo
     errors = [json.loads(body) for topic, body in seen if topic == f"{ROOT}/errors"]
     assert (1_000, "working") == (status["filled"], status["state"])
     assert "online" == health["status"]
-    assert f"{ROOT}/targets/ZEPH-C1" in topics
+    assert f"{ROOT}/targets/X_ZEPH-C1" in topics
     assert 1 == len(errors)
     assert "not valid JSON" in str(errors[0]["reason"])
     assert 0 == daemon.terminate()

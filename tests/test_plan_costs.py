@@ -1,6 +1,6 @@
 """Costs that mean one thing: the plan's expected cost, its risk penalty and its sd, apart.
 
-Prices and volumes are invented test values (a made-up venue, Harbour Lane Exchange, HLX), on the
+Prices and volumes are invented test values (a made-up venue, Harbour Lane Exchange, X_HLX), on the
 default session (09:30-16:00 America/New_York, 5-minute bins: common practice).
 """
 
@@ -60,11 +60,11 @@ def test_the_status_states_cost_risk_and_sd_apart() -> None:
     engine = Engine()
     recorder = Recorder(engine)
     recorder.feed(
-        order("A", "ZEPH", "buy", 50_000, _at(0), _at(390), ts=_at(-30), arrival_price=20.0)
+        order("A", "X_ZEPH", "buy", 50_000, _at(0), _at(390), ts=_at(-30), arrival_price=20.0)
     )
     recorder.feed(tick(_at(0)))
     status = [m for m in recorder.outputs if isinstance(m, StatusMessage)][-1]
-    profile = default_profile("ZEPH")
+    profile = default_profile("X_ZEPH")
     today = forecast(profile, {})
     problem = build_problem(
         quantity=50_000.0,

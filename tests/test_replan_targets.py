@@ -1,7 +1,7 @@
 """Targets a router can scale, and the fill ratio the engine learns from its targets.
 
 Symbols, prices and volumes are invented test values (a made-up venue, Harbour Lane Exchange,
-HLX), on the default session (09:30-16:00 America/New_York, 5-minute bins: common practice);
+X_HLX), on the default session (09:30-16:00 America/New_York, 5-minute bins: common practice);
 on 2026-03-02 the open is 14:30 UTC.
 """
 
@@ -34,7 +34,7 @@ def _started(quantity: int, max_participation: float = 0.2) -> Recorder:
     recorder.feed(
         order(
             "A",
-            "ZEPH",
+            "X_ZEPH",
             "buy",
             quantity,
             _at(0),
@@ -55,7 +55,7 @@ def test_a_target_states_its_shares_as_a_rate_of_the_forecast_volume() -> None:
     """participation is quantity / the bin's forecast volume and max_participation the cap, so
     a router that applies the rate to the forecast volume gets the target's shares back."""
     target = _targets(_started(50_000))[-1]
-    volume = float(forecast(default_profile("ZEPH"), {}).volume[0])
+    volume = float(forecast(default_profile("X_ZEPH"), {}).volume[0])
     assert target.participation == pytest.approx(target.quantity / volume)
     assert 0.2 == target.max_participation
     assert target.quantity == round(target.participation * volume)
@@ -76,11 +76,11 @@ def test_the_order_s_last_bin_targets_the_cap() -> None:
     allows."""
     recorder = Recorder(Engine())
     recorder.feed(
-        order("A", "ZEPH", "buy", 2_000, _at(385), _at(390), ts=_at(370), max_participation=0.2)
+        order("A", "X_ZEPH", "buy", 2_000, _at(385), _at(390), ts=_at(370), max_participation=0.2)
     )
     for index in range(77):
         start = OPEN + index * BIN
-        recorder.feed(bin_message("ZEPH", start, start + BIN, volume=12_000, price=20.0))
+        recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=12_000, price=20.0))
     last = _targets(recorder)[-1]
     assert (0.2, 2_000) == (last.participation, last.quantity)
 
@@ -147,7 +147,7 @@ def test_targets_grow_when_fills_fall_short() -> None:
                 when = (start + BIN - timedelta(seconds=1)).isoformat().replace("+00:00", "Z")
                 recorder.feed(fill("A", f"F{index}", done, 20.0, ts=when))
             volume = round(target.quantity / target.participation) if target.participation else 0
-            recorder.feed(bin_message("ZEPH", start, start + BIN, volume=volume, price=20.0))
+            recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=volume, price=20.0))
         last = _targets(recorder)[-1]
         rates.append(last.quantity / last.remaining)
     assert rates[1] > rates[0] * 1.1
@@ -160,11 +160,11 @@ def test_an_order_behind_its_baseline_targets_part_of_the_gap_at_once() -> None:
     engine = Engine()
     recorder = Recorder(engine)
     recorder.feed(
-        order("A", "ZEPH", "buy", 20_000, _at(0), _at(390), ts=_at(-30), max_participation=0.2)
+        order("A", "X_ZEPH", "buy", 20_000, _at(0), _at(390), ts=_at(-30), max_participation=0.2)
     )
     recorder.feed(tick(_at(0)))
     baseline = engine.plans("A")[-1]
-    volume = forecast(default_profile("ZEPH"), {}).volume
+    volume = forecast(default_profile("X_ZEPH"), {}).volume
     filled = 0
     for index in range(6):
         target = _targets(recorder)[-1]
@@ -174,7 +174,7 @@ def test_an_order_behind_its_baseline_targets_part_of_the_gap_at_once() -> None:
         when = (start + BIN - timedelta(seconds=1)).isoformat().replace("+00:00", "Z")
         recorder.feed(fill("A", f"F{index}", done, 20.0, ts=when))
         filled += done
-        recorder.feed(bin_message("ZEPH", start, start + BIN, volume=real, price=20.0))
+        recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=real, price=20.0))
     target = _targets(recorder)[-1]
     behind = baseline.filled_at + float(baseline.cumulative[6 - baseline.first_bin]) - filled
     assert target.max_quantity is not None and CATCH_UP * behind < target.max_quantity

@@ -1,7 +1,7 @@
 """Replay: line-level checks, error records with line numbers, redelivery, ticks, determinism.
 
-The recordings here are invented: order ORD1 on the made-up symbol ZEPH of the made-up venue Harbour
-Lane Exchange (HLX).
+The recordings here are invented: order ORD1 on the made-up symbol X_ZEPH of the made-up venue
+Harbour Lane Exchange (X_HLX).
 """
 
 from __future__ import annotations
@@ -39,12 +39,12 @@ def at(seconds: float) -> str:
 
 
 def order(seconds: float = 0.0, order_id: str = "ORD1", **changes: Any) -> dict[str, Any]:
-    """A new-order line for 100,000 ZEPH to buy over the rest of the morning."""
+    """A new-order line for 100,000 X_ZEPH to buy over the rest of the morning."""
     payload: dict[str, Any] = {
         "type": "order",
         "action": "new",
         "order_id": order_id,
-        "symbol": "ZEPH",
+        "symbol": "X_ZEPH",
         "side": "buy",
         "quantity": 100_000,
         "start": at(0),
@@ -210,10 +210,10 @@ def test_blank_lines_are_skipped_without_error(tmp_path: Path) -> None:
 
 
 def bin_line(seconds: float) -> dict[str, Any]:
-    """The ZEPH bin that closes at T0 + 5 minutes, published ``seconds`` after T0."""
+    """The X_ZEPH bin that closes at T0 + 5 minutes, published ``seconds`` after T0."""
     payload = {
         "type": "bin",
-        "symbol": "ZEPH",
+        "symbol": "X_ZEPH",
         "start": at(0),
         "end": at(300),
         "volume": 10_000,
@@ -225,7 +225,7 @@ def bin_line(seconds: float) -> dict[str, Any]:
         "spread": 0.02,
         "ts": at(seconds),
     }
-    return {"topic": "tracker/bins/ZEPH", "payload": payload, "ts": at(seconds)}
+    return {"topic": "tracker/bins/X_ZEPH", "payload": payload, "ts": at(seconds)}
 
 
 def control_line(command: str, seconds: float) -> dict[str, Any]:
@@ -547,7 +547,7 @@ def test_cli_profile_named_for_another_symbol_exits_2(tmp_path: Path) -> None:
 
     folder = tmp_path / "profiles"
     folder.mkdir()
-    (folder / "KALO.json").write_text(json.dumps(default_profile("ZEPH").to_mapping()))
+    (folder / "X_KALO.json").write_text(json.dumps(default_profile("X_ZEPH").to_mapping()))
     path = write(tmp_path, [order(0)])
     code = main(["replay", str(path), "--out", str(tmp_path / "out"), "--profiles", str(folder)])
     expected = 2
@@ -616,17 +616,17 @@ def test_cli_config_unknown_threshold_exits_2(
 
 
 def test_cli_profiles_folder_is_used(tmp_path: Path) -> None:
-    """With a profile for ZEPH in --profiles, the default-profile alert does not appear."""
+    """With a profile for X_ZEPH in --profiles, the default-profile alert does not appear."""
     from tracker.core.profiles import default_profile
 
     folder = tmp_path / "profiles"
     folder.mkdir()
-    (folder / "ZEPH.json").write_text(json.dumps(default_profile("ZEPH").to_mapping()))
+    (folder / "X_ZEPH.json").write_text(json.dumps(default_profile("X_ZEPH").to_mapping()))
     bin_line = {
-        "topic": "tracker/bins/ZEPH",
+        "topic": "tracker/bins/X_ZEPH",
         "payload": {
             "type": "bin",
-            "symbol": "ZEPH",
+            "symbol": "X_ZEPH",
             "start": at(0),
             "end": at(300),
             "volume": 10_000,

@@ -246,8 +246,8 @@ def test_every_order_has_its_section_charts_and_cost_table(golden: Report) -> No
 
 def test_progress_chart_holds_every_plan_version(golden: Report) -> None:
     """The progress SVG parses and holds the first plan, realized, market volume and one faint
-    path per re-plan (ZEPH-B1 was planned 78 times: 77 re-plans)."""
-    path = next(p for p in golden.charts if p.name == "ZEPH-B1-progress.svg")
+    path per re-plan (X_ZEPH-B1 was planned 78 times: 77 re-plans)."""
+    path = next(p for p in golden.charts if p.name == "X_ZEPH-B1-progress.svg")
     root = ET.parse(path).getroot()
     groups = {g.get("id"): g for g in root.iter(f"{SVG}g")}
     replans = groups["replans"].find(f"{SVG}path")
@@ -264,7 +264,7 @@ def test_no_outside_reference_and_no_script(golden: Report) -> None:
 
 
 def test_times_are_venue_local_with_the_zone_named(golden: Report) -> None:
-    """ZEPH-B1 starts 09:30 New York time (13:30 UTC on the wire); the zone is named."""
+    """X_ZEPH-B1 starts 09:30 New York time (13:30 UTC on the wire); the zone is named."""
     html = golden.html.read_text(encoding="utf-8")
     assert "2026-03-10 09:30 to 16:00 America/New_York" in html
     assert "Times are venue local time: America/New_York" in html
@@ -274,7 +274,7 @@ def test_an_output_folder_says_what_is_not_available(tmp_path: Path) -> None:
     """From the golden output folder: sections and the fill-rate finding, but no attribution."""
     report = build_report(GOLDEN_OUTPUTS, tmp_path)
     html = report.html.read_text(encoding="utf-8")
-    zeph = by_id(report)["ZEPH-B1"]
+    zeph = by_id(report)["X_ZEPH-B1"]
     assert (zeph.attribution, "Cost attribution: not available" in html) == (None, True)
     assert any("the router filled" in f.text.lower() for f in zeph.findings)
     assert len(report.orders) == 4

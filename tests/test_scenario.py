@@ -1,8 +1,8 @@
 """The invented demo day: its market, orders, router and fill model, and the closed loop.
 
-Everything here is invented (symbols ZEPH, KALO, MIRA on the made-up venue Harbour Lane Exchange).
-The router is driven by a plain per-bin target feed (a stand-in for the engine) so these checks do
-not depend on the engine's numbers; the closed-loop checks at the end use the real engine.
+Everything here is invented (symbols X_ZEPH, X_KALO, X_MIRA on the made-up venue Harbour Lane
+Exchange). The router is driven by a plain per-bin target feed (a stand-in for the engine) so these
+checks do not depend on the engine's numbers; the closed-loop checks at the end use the real engine.
 """
 
 from __future__ import annotations
@@ -106,7 +106,7 @@ def test_same_seed_same_day() -> None:
 
 def test_other_seed_other_market() -> None:
     """Another seed gives another market."""
-    assert Scenario(1).market["ZEPH"][10].volume != Scenario(2).market["ZEPH"][10].volume
+    assert Scenario(1).market["X_ZEPH"][10].volume != Scenario(2).market["X_ZEPH"][10].volume
 
 
 def test_lines_are_numbered_in_time_order(day: list[tuple[Record, Any]]) -> None:
@@ -120,7 +120,7 @@ def test_every_symbol_has_a_bin_message_per_bin(day: list[tuple[Record, Any]]) -
     """Each symbol publishes one bin per bin of the 78-bin session (common practice: 5-minute
     bins of a 6.5-hour session)."""
     counts = Counter(m.symbol for _, m in day if isinstance(m, BinMessage))
-    expected = {"ZEPH": 78, "KALO": 78, "MIRA": 78}
+    expected = {"X_ZEPH": 78, "X_KALO": 78, "X_MIRA": 78}
     assert expected == dict(counts)
 
 
@@ -134,7 +134,7 @@ def test_the_day_has_one_amend_and_one_cancel(day: list[tuple[Record, Any]]) -> 
 def test_the_day_has_a_halt_and_a_resume(day: list[tuple[Record, Any]]) -> None:
     """The desk halts one order and resumes it a quarter of an hour later."""
     commands = [(m.command, m.order_id) for _, m in day if isinstance(m, ControlMessage)]
-    expected = [("halt", "ZEPH-S2"), ("resume", "ZEPH-S2")]
+    expected = [("halt", "X_ZEPH-S2"), ("resume", "X_ZEPH-S2")]
     assert expected == commands
 
 
@@ -142,7 +142,7 @@ def test_the_day_has_five_malformed_messages(day: list[tuple[Record, Any]]) -> N
     """Four messages fail validation at the edge (plus a fill for an unknown order, which only
     the engine can reject)."""
     rejected = [exc.reason for _, exc in day if isinstance(exc, WireError)]
-    unknown = [m for _, m in day if isinstance(m, FillMessage) and m.order_id == "ORIN-B9"]
+    unknown = [m for _, m in day if isinstance(m, FillMessage) and m.order_id == "X_ORIN-B9"]
     expected = (4, 1)
     assert expected == (len(rejected), len(unknown))
 
@@ -157,7 +157,7 @@ def test_the_day_has_one_exact_redelivery(day: list[tuple[Record, Any]]) -> None
 
 
 def test_shock_cuts_volume_and_widens_spread() -> None:
-    """During the shock ZEPH trades far less and quotes far wider than the hour before."""
+    """During the shock X_ZEPH trades far less and quotes far wider than the hour before."""
     scenario = Scenario(7)
     bins = scenario.market[SHOCK.symbol]
     zone = scenario.session.zone
@@ -190,7 +190,12 @@ def test_fills_stay_within_the_bin_volume_cap(day: list[tuple[Record, Any]]) -> 
     """The router never takes more than its share of a bin's real volume."""
     scenario = Scenario(7)
     taken: Counter[tuple[str, datetime]] = Counter()
-    symbol = {"ZEPH-B1": "ZEPH", "ZEPH-S2": "ZEPH", "KALO-S1": "KALO", "MIRA-B1": "MIRA"}
+    symbol = {
+        "X_ZEPH-B1": "X_ZEPH",
+        "X_ZEPH-S2": "X_ZEPH",
+        "X_KALO-S1": "X_KALO",
+        "X_MIRA-B1": "X_MIRA",
+    }
     for fill in fills(day):
         if fill.order_id in symbol:
             start = scenario.session.bins(date(2026, 3, 10))[0][0]
@@ -211,7 +216,7 @@ def test_fills_never_exceed_the_order(day: list[tuple[Record, Any]]) -> None:
     total: Counter[str] = Counter()
     for fill in fills(day):
         total[fill.order_id] += fill.quantity
-    limits = {"ZEPH-B1": 120_000, "KALO-S1": 60_000, "MIRA-B1": 55_000, "ZEPH-S2": 30_000}
+    limits = {"X_ZEPH-B1": 120_000, "X_KALO-S1": 60_000, "X_MIRA-B1": 55_000, "X_ZEPH-S2": 30_000}
     over = [order for order, limit in limits.items() if total[order] > limit]
     expected: list[str] = []
     assert expected == over
@@ -229,8 +234,8 @@ def test_no_fill_after_the_cancel(day: list[tuple[Record, Any]]) -> None:
 def test_some_slices_miss_and_some_fill_partly(day: list[tuple[Record, Any]]) -> None:
     """The fill model gives both misses and partial fills (fewer shares than slices ask)."""
     ask = round(120_000 * 0.02) // 4
-    sizes = [f.quantity for f in fills(day) if f.order_id == "ZEPH-B1"]
-    slices = 4 * len([1 for _, m in day if isinstance(m, BinMessage) and m.symbol == "ZEPH"])
+    sizes = [f.quantity for f in fills(day) if f.order_id == "X_ZEPH-B1"]
+    slices = 4 * len([1 for _, m in day if isinstance(m, BinMessage) and m.symbol == "X_ZEPH"])
     expected = (True, True)
     assert expected == (len(sizes) < slices, any(size < ask for size in sizes))
 
@@ -246,7 +251,7 @@ def test_final_status_stops_the_router() -> None:
     scenario.on_output(status(order, "done", order.ts))
     records = scenario.inbound_until(start + BIN)
     expected: list[str] = []
-    assert expected == [r.topic for r in records if "fills/ZEPH-B1" in r.topic]
+    assert expected == [r.topic for r in records if "fills/X_ZEPH-B1" in r.topic]
 
 
 def status(order: OrderMessage, state: str, ts: datetime) -> StatusMessage:
@@ -325,7 +330,7 @@ def test_router_never_fills_more_than_the_bin_target(closed_loop: DayRun) -> Non
         payload = record.payload
         if not isinstance(payload, dict) or payload.get("type") != "fill":
             continue
-        if payload["fill_id"] in seen or payload["order_id"] == "ORIN-B9":
+        if payload["fill_id"] in seen or payload["order_id"] == "X_ORIN-B9":
             continue
         seen.add(payload["fill_id"])
         ts = datetime.fromisoformat(payload["ts"])
@@ -343,14 +348,14 @@ def test_closed_loop_rejects_exactly_the_bad_messages(closed_loop: DayRun) -> No
     an error but is kept, unassigned, in the summary."""
     topics = [e.topic for e in closed_loop.result.errors]
     expected = [
-        "tracker/fills/ZEPH-B1",
-        "tracker/fills/KALO-S1",
-        "tracker/fills/MIRA-B1",
-        "tracker/bins/KALO",
+        "tracker/fills/X_ZEPH-B1",
+        "tracker/fills/X_KALO-S1",
+        "tracker/fills/X_MIRA-B1",
+        "tracker/bins/X_KALO",
     ]
     assert expected == topics
     unassigned = closed_loop.result.summary["unassigned_fills"]
-    assert ["ORIN-B9"] == [row["order_id"] for row in unassigned]
+    assert ["X_ORIN-B9"] == [row["order_id"] for row in unassigned]
 
 
 def test_closed_loop_shows_the_shock_amend_and_cancel(closed_loop: DayRun) -> None:
@@ -360,8 +365,8 @@ def test_closed_loop_shows_the_shock_amend_and_cancel(closed_loop: DayRun) -> No
     expected = (True, "cancelled", 55_000)
     assert expected == (
         "volume_shock" in codes,
-        orders["KALO-S1"]["state"],
-        orders["MIRA-B1"]["quantity"],
+        orders["X_KALO-S1"]["state"],
+        orders["X_MIRA-B1"]["quantity"],
     )
 
 
@@ -402,7 +407,7 @@ def test_no_fill_while_halted(closed_loop: DayRun) -> None:
 
 def test_halt_and_resume_reach_the_engine(closed_loop: DayRun) -> None:
     """The halt and the resume of the day each raise their alert."""
-    codes = [a.code for a in closed_loop.result.alerts if a.order_id == "ZEPH-S2"]
+    codes = [a.code for a in closed_loop.result.alerts if a.order_id == "X_ZEPH-S2"]
     expected = (1, 1)
     assert expected == (codes.count("order_halted"), codes.count("order_resumed"))
 
@@ -419,4 +424,4 @@ def test_target_without_a_bin_withdraws_planned_slices() -> None:
     scenario.on_output(nothing)
     records = scenario.inbound_until(start + BIN)
     expected: list[str] = []
-    assert expected == [r.topic for r in records if "fills/ZEPH-B1" in r.topic]
+    assert expected == [r.topic for r in records if "fills/X_ZEPH-B1" in r.topic]

@@ -26,12 +26,12 @@ NEW_YORK = ZoneInfo("America/New_York")
 T0 = datetime(2026, 3, 10, 15, 0, tzinfo=UTC)
 
 
-def status(order_id: str = "ZEPH-B1", **changes: Any) -> bytes:
+def status(order_id: str = "X_ZEPH-B1", **changes: Any) -> bytes:
     """A status message as the daemon publishes it (wire contract v1), with changes."""
     message: dict[str, Any] = {
         "type": "status",
         "order_id": order_id,
-        "symbol": "ZEPH",
+        "symbol": "X_ZEPH",
         "side": "buy",
         "state": "working",
         "quantity": 120_000,
@@ -55,11 +55,11 @@ def status(order_id: str = "ZEPH-B1", **changes: Any) -> bytes:
     return json.dumps({k: v for k, v in message.items() if v is not ...}).encode()
 
 
-def target(order_id: str = "ZEPH-B1", **changes: Any) -> bytes:
+def target(order_id: str = "X_ZEPH-B1", **changes: Any) -> bytes:
     message: dict[str, Any] = {
         "type": "target",
         "order_id": order_id,
-        "symbol": "ZEPH",
+        "symbol": "X_ZEPH",
         "side": "buy",
         "bin_start": "2026-03-10T15:25:00Z",
         "bin_end": "2026-03-10T15:30:00Z",
@@ -75,13 +75,13 @@ def target(order_id: str = "ZEPH-B1", **changes: Any) -> bytes:
 
 
 def alert(
-    code: str, severity: str, state: str = "raised", order_id: str | None = "ZEPH-B1"
+    code: str, severity: str, state: str = "raised", order_id: str | None = "X_ZEPH-B1"
 ) -> bytes:
     return json.dumps(
         {
             "type": "alert",
             "order_id": order_id,
-            "symbol": "ZEPH",
+            "symbol": "X_ZEPH",
             "code": code,
             "severity": severity,
             "state": state,
@@ -112,8 +112,8 @@ def test_unknown_fields_are_ignored_and_missing_optional_fields_are_blank() -> N
         deviation_pct=...,
         average_price=...,
     )
-    board = board_with(("status/ZEPH-B1", payload))
-    view = board.orders["ZEPH-B1"]
+    board = board_with(("status/X_ZEPH-B1", payload))
+    view = board.orders["X_ZEPH-B1"]
     assert (45_175, 120_000, "working") == (view.filled, view.quantity, view.state)
     assert view.expected_cost_bps is None
     assert "" == bps(view.expected_cost_bps)
@@ -123,11 +123,11 @@ def test_unknown_fields_are_ignored_and_missing_optional_fields_are_blank() -> N
 def test_a_target_with_the_coming_fields_is_read() -> None:
     """A target that states its order's state, a rate, a cap and a reason is read, not refused."""
     payload = target(state="working", participation=0.08, max_participation=0.15, reason="plan")
-    board = board_with(("status/ZEPH-B1", status()), ("targets/ZEPH-B1", payload))
-    view = board.orders["ZEPH-B1"]
+    board = board_with(("status/X_ZEPH-B1", status()), ("targets/X_ZEPH-B1", payload))
+    view = board.orders["X_ZEPH-B1"]
     assert (2_500, 0.15) == (view.target.quantity if view.target else None, view.max_participation)
     assert (0.08, "plan") == (view.target_rate, view.target_reason)
-    alone = board_with(("targets/ZEPH-B1", payload)).orders["ZEPH-B1"]
+    alone = board_with(("targets/X_ZEPH-B1", payload)).orders["X_ZEPH-B1"]
     assert "working" == alone.state  # before any status, the target's state is shown
     assert "(cap 15 %)" == participation(view)  # the planned rate is not what was done
 
@@ -144,15 +144,15 @@ def test_a_target_with_the_coming_fields_is_read() -> None:
 )
 def test_a_malformed_message_costs_nothing_else(payload: bytes) -> None:
     """A payload that is not a JSON object, or a field of the wrong kind, breaks nothing."""
-    board = board_with(("status/ZEPH-B1", status()), ("status/ZEPH-B1", payload))
-    assert "ZEPH-B1" in board.orders
+    board = board_with(("status/X_ZEPH-B1", status()), ("status/X_ZEPH-B1", payload))
+    assert "X_ZEPH-B1" in board.orders
 
 
 def test_this_bins_filled_share_comes_from_the_target_and_the_status() -> None:
     """Filled in the bin = filled now - (cumulative target - bin target), per the contract."""
     # The target was made with 46,000 - 2,500 = 43,500 filled; 45,175 filled now: 1,675 in the bin.
-    board = board_with(("targets/ZEPH-B1", target()), ("status/ZEPH-B1", status()))
-    assert 1_675 == board.orders["ZEPH-B1"].bin_filled
+    board = board_with(("targets/X_ZEPH-B1", target()), ("status/X_ZEPH-B1", status()))
+    assert 1_675 == board.orders["X_ZEPH-B1"].bin_filled
 
 
 @pytest.mark.parametrize(
@@ -170,15 +170,15 @@ def test_cost_so_far_is_the_shortfall_against_arrival(
 
 def test_participation_is_the_orders_fills_over_the_bins_volume() -> None:
     """2,000 shares filled in a bin of 20,000 traded: 10 % (common practice: share of volume)."""
-    volume = {"type": "bin", "symbol": "ZEPH", "start": "2026-03-10T15:25:00Z"}
+    volume = {"type": "bin", "symbol": "X_ZEPH", "start": "2026-03-10T15:25:00Z"}
     volume |= {"end": "2026-03-10T15:30:00Z", "volume": 20_000}
     # Made at the 15:25 close with 43,500 filled; the next at the 15:30 close with 45,500 filled.
     board = board_with(
-        ("status/ZEPH-B1", status()),
-        ("targets/ZEPH-B1", target()),
-        ("bins/ZEPH", json.dumps(volume).encode()),
+        ("status/X_ZEPH-B1", status()),
+        ("targets/X_ZEPH-B1", target()),
+        ("bins/X_ZEPH", json.dumps(volume).encode()),
         (
-            "targets/ZEPH-B1",
+            "targets/X_ZEPH-B1",
             target(
                 bin_start="2026-03-10T15:30:00Z",
                 bin_end="2026-03-10T15:35:00Z",
@@ -187,7 +187,7 @@ def test_participation_is_the_orders_fills_over_the_bins_volume() -> None:
             ),
         ),
     )
-    assert 0.10 == pytest.approx(board.orders["ZEPH-B1"].participation)
+    assert 0.10 == pytest.approx(board.orders["X_ZEPH-B1"].participation)
 
 
 # -- attention ------------------------------------------------------------------------------------
@@ -229,9 +229,9 @@ def test_the_filter_keeps_a_symbol_prefix_and_a_state() -> None:
     board = board_with(
         ("status/Z1", status("Z1")),
         ("status/Z2", status("Z2", state="halted")),
-        ("status/K1", status("K1", symbol="KALO")),
+        ("status/K1", status("K1", symbol="X_KALO")),
     )
-    assert ["Z1", "Z2"] == sorted(v.order_id for v in rows(board, "order", Filter(symbol="ze")))
+    assert ["Z1", "Z2"] == sorted(v.order_id for v in rows(board, "order", Filter(symbol="x_ze")))
     assert ["Z2"] == [v.order_id for v in rows(board, "order", Filter(state="halted"))]
 
 
@@ -256,20 +256,20 @@ def test_data_stopped_means_no_status_or_bin_for_two_bins(
     quiet: float, state: str, expected: list[str]
 ) -> None:
     """Two 5-minute bins (seen on the bus) without a status or a bin, with an order working."""
-    board = board_with(("targets/ZEPH-B1", target()), ("status/ZEPH-B1", status(state=state)))
+    board = board_with(("targets/X_ZEPH-B1", target()), ("status/X_ZEPH-B1", status(state=state)))
     assert expected == [banner.kind for banner in board.banners(now=quiet)]
 
 
 def test_a_retained_status_is_not_fresh_data() -> None:
     """Statuses the broker kept from earlier do not count as data arriving now."""
     board = Board(ROOT, started=0.0)
-    board.take(f"{ROOT}/status/ZEPH-B1", status(), retained=True, now=700.0)
+    board.take(f"{ROOT}/status/X_ZEPH-B1", status(), retained=True, now=700.0)
     assert ["stale"] == [banner.kind for banner in board.banners(now=700.0)]
 
 
 def test_the_daemons_clock_is_its_latest_time_plus_the_time_since() -> None:
     """A daemon on a simulated clock: the view's control time follows it, not the wall clock."""
-    board = board_with(("status/ZEPH-B1", status()), now=10.0)
+    board = board_with(("status/X_ZEPH-B1", status()), now=10.0)
     wall = datetime(2030, 1, 1, tzinfo=UTC)
     expected = datetime(2026, 3, 10, 15, 25, 14, 155_000, tzinfo=UTC) + timedelta(seconds=5)
     assert expected == board.daemon_clock(15.0, wall)
@@ -278,7 +278,7 @@ def test_the_daemons_clock_is_its_latest_time_plus_the_time_since() -> None:
 # -- control ------------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("order_id", ["ZEPH-B1", None], ids=["one-order", "all-orders"])
+@pytest.mark.parametrize("order_id", ["X_ZEPH-B1", None], ids=["one-order", "all-orders"])
 def test_the_control_message_is_valid_under_the_wire_contract(order_id: str | None) -> None:
     """What the view sends passes the daemon's own decoder (tracker.edge.wire.decode)."""
     payload = control_payload("halt", order_id, T0)
@@ -319,9 +319,9 @@ def test_the_screen_shows_rows_alerts_health_and_words() -> None:
     """One frame: the order's row in words, the alert in the feed, the daemon's health."""
     board = board_with(
         ("health/t1", b'{"type":"health","status":"online","ts":"2026-03-10T15:00:00Z"}'),
-        ("targets/ZEPH-B1", target()),
-        ("status/ZEPH-B1", status()),
-        ("alerts/ZEPH-B1", alert("behind_plan", "warning")),
+        ("targets/X_ZEPH-B1", target()),
+        ("status/X_ZEPH-B1", status()),
+        ("alerts/X_ZEPH-B1", alert("behind_plan", "warning")),
     )
     link = LinkStatus("connected", "mqtt://127.0.0.1:1883")
     frame = frame_text(
@@ -385,6 +385,6 @@ def test_once_without_a_broker_says_so(capsys: pytest.CaptureFixture[str]) -> No
 
 
 def test_a_symbol_alert_on_its_own_topic_is_the_symbols_not_an_orders() -> None:
-    """An alert on {root}/alerts/symbol/ZEPH (order_id null) is filed under ZEPH, not an order."""
-    board = board_with(("alerts/symbol/ZEPH", alert("volume_shock", "warning", order_id=None)))
-    assert ([], ["volume_shock"]) == (list(board.orders), list(board.symbol_alerts["ZEPH"]))
+    """An alert on {root}/alerts/symbol/X_ZEPH (order_id null) is filed under the symbol."""
+    board = board_with(("alerts/symbol/X_ZEPH", alert("volume_shock", "warning", order_id=None)))
+    assert ([], ["volume_shock"]) == (list(board.orders), list(board.symbol_alerts["X_ZEPH"]))

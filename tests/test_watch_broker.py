@@ -34,7 +34,7 @@ from tests.brokers import (
 pytestmark = [pytest.mark.broker, pytest.mark.slow]
 
 ROOT = "desk"
-#: The first part of the invented day: three orders working, ZEPH-S2 not yet sent.
+#: The first part of the invented day: three orders working, X_ZEPH-S2 not yet sent.
 MORNING = 300
 REPO = Path(__file__).resolve().parent.parent
 
@@ -158,7 +158,7 @@ def test_the_view_shows_the_day_raises_halts_and_sees_the_daemon_go(
 ) -> None:
     """Rows with the broker's states and fills; a new alert; a halt sent from the view; offline."""
     expected = play_morning(mosquitto, daemon)
-    assert {"ZEPH-B1", "MIRA-B1", "KALO-S1"} == set(expected)
+    assert {"X_ZEPH-B1", "X_MIRA-B1", "X_KALO-S1"} == set(expected)
     tmux.start(watch_command(mosquitto.url, "--allow-control"))
     for order_id, status in expected.items():
         filled = f"{status['filled']:,} of {status['quantity']:,}"
@@ -198,9 +198,9 @@ def test_the_view_shows_the_day_raises_halts_and_sees_the_daemon_go(
     assert alert["severity"] in feed_line
     assert "raised" in feed_line
 
-    # Halt ZEPH-B1 from the view: filter on ZEPH (its only order now), h, y.
-    tmux.keys("/", "ZEPH", "Enter")
-    tmux.wait_for("showing symbol ZEPH*")
+    # Halt X_ZEPH-B1 from the view: filter on X_ZEPH (its only order now), h, y.
+    tmux.keys("/", "X_ZEPH", "Enter")
+    tmux.wait_for("showing symbol X_ZEPH*")
     next_target = subprocess.Popen(
         # -R: not a retained target from before (a daemon may retain targets for routers)
         [
@@ -208,7 +208,7 @@ def test_the_view_shows_the_day_raises_halts_and_sees_the_daemon_go(
             "-p",
             str(mosquitto.port),
             "-t",
-            f"{ROOT}/targets/ZEPH-B1",
+            f"{ROOT}/targets/X_ZEPH-B1",
             "-R",
             "-C",
             "1",
@@ -219,14 +219,14 @@ def test_the_view_shows_the_day_raises_halts_and_sees_the_daemon_go(
     try:
         time.sleep(0.5)  # let it subscribe
         tmux.keys("h")
-        tmux.wait_for("Send HALT for order ZEPH-B1")
+        tmux.wait_for("Send HALT for order X_ZEPH-B1")
         tmux.keys("y")
-        screen = tmux.wait_for("halt applied: ZEPH-B1 is halted")
+        screen = tmux.wait_for("halt applied: X_ZEPH-B1 is halted")
         target_text, _ = next_target.communicate(timeout=30)
     finally:
         next_target.kill()
-    assert "halted" in row(screen, "ZEPH-B1")
-    assert "halted" == statuses(mosquitto.port)["ZEPH-B1"]["state"]
+    assert "halted" in row(screen, "X_ZEPH-B1")
+    assert "halted" == statuses(mosquitto.port)["X_ZEPH-B1"]["state"]
     assert 0 == json.loads(target_text)["quantity"]
 
     # The daemon stops: its last will says offline, and the view says so across the top.
@@ -242,7 +242,7 @@ def test_the_view_reconnects_after_a_broker_restart(
     """The broker goes away: the view says it is reconnecting; it comes back: new data shows."""
 
     def publish_status(filled: int) -> None:
-        status = {"type": "status", "order_id": "ZEPH-B1", "symbol": "ZEPH", "side": "buy"}
+        status = {"type": "status", "order_id": "X_ZEPH-B1", "symbol": "X_ZEPH", "side": "buy"}
         status |= {"state": "working", "quantity": 10_000, "filled": filled}
         subprocess.run(
             [
@@ -253,7 +253,7 @@ def test_the_view_reconnects_after_a_broker_restart(
                 "-q",
                 "1",
                 "-t",
-                f"{ROOT}/status/ZEPH-B1",
+                f"{ROOT}/status/X_ZEPH-B1",
                 "-m",
                 json.dumps(status),
             ],
@@ -315,7 +315,7 @@ def test_once_connects_with_tls_and_a_password_as_run_does(tmp_path: Path) -> No
     with PrivateMosquitto(
         tmp_path / "tls", listener_options=options, password_file=passwords
     ) as broker:
-        status = {"type": "status", "order_id": "ZEPH-B1", "state": "working", "filled": 5}
+        status = {"type": "status", "order_id": "X_ZEPH-B1", "state": "working", "filled": 5}
         subprocess.run(
             [
                 "mosquitto_pub",
@@ -333,7 +333,7 @@ def test_once_connects_with_tls_and_a_password_as_run_does(tmp_path: Path) -> No
                 "-q",
                 "1",
                 "-t",
-                f"{ROOT}/status/ZEPH-B1",
+                f"{ROOT}/status/X_ZEPH-B1",
                 "-m",
                 json.dumps(status),
             ],

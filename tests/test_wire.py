@@ -41,8 +41,8 @@ TS = "2026-03-02T14:35:00Z"
 ORDER: dict[str, Any] = {
     "type": "order",
     "action": "new",
-    "order_id": "ZEPH-1",
-    "symbol": "ZEPH",
+    "order_id": "X_ZEPH-1",
+    "symbol": "X_ZEPH",
     "side": "buy",
     "quantity": 40_000,
     "start": "2026-03-02T14:30:00Z",
@@ -52,14 +52,14 @@ ORDER: dict[str, Any] = {
 FILL: dict[str, Any] = {
     "type": "fill",
     "fill_id": "f-1",
-    "order_id": "ZEPH-1",
+    "order_id": "X_ZEPH-1",
     "quantity": 500,
     "price": 20.5,
     "ts": TS,
 }
 BIN: dict[str, Any] = {
     "type": "bin",
-    "symbol": "ZEPH",
+    "symbol": "X_ZEPH",
     "start": "2026-03-02T14:30:00Z",
     "end": "2026-03-02T14:35:00Z",
     "volume": 12_000,
@@ -81,9 +81,9 @@ def with_(base: dict[str, Any], **changes: Any) -> str:
 
 
 VALID = [
-    ("tracker/orders/ZEPH-1", json.dumps(ORDER), OrderMessage),
-    ("tracker/fills/ZEPH-1", json.dumps(FILL), FillMessage),
-    ("tracker/bins/ZEPH", json.dumps(BIN), BinMessage),
+    ("tracker/orders/X_ZEPH-1", json.dumps(ORDER), OrderMessage),
+    ("tracker/fills/X_ZEPH-1", json.dumps(FILL), FillMessage),
+    ("tracker/bins/X_ZEPH", json.dumps(BIN), BinMessage),
     ("tracker/control", json.dumps(CONTROL), ControlMessage),
     ("tracker/tick", json.dumps({"type": "tick", "ts": TS}), Tick),
 ]
@@ -99,84 +99,86 @@ def test_valid_messages_decode_to_their_model(topic: str, payload: str, kind: ty
 
 def test_times_are_normalised_to_utc() -> None:
     """A time with a non-UTC offset is stored as the same instant in UTC."""
-    message = decode("tracker/fills/ZEPH-1", with_(FILL, ts="2026-03-02T09:35:00-05:00"))
+    message = decode("tracker/fills/X_ZEPH-1", with_(FILL, ts="2026-03-02T09:35:00-05:00"))
     assert datetime(2026, 3, 2, 14, 35, tzinfo=UTC) == message.ts
 
 
 def test_models_are_frozen() -> None:
     """Decoded messages cannot be changed afterwards."""
-    message = decode("tracker/fills/ZEPH-1", json.dumps(FILL))
+    message = decode("tracker/fills/X_ZEPH-1", json.dumps(FILL))
     with pytest.raises(AttributeError):  # frozen dataclass: FrozenInstanceError
         message.quantity = 1  # type: ignore[misc]
 
 
 def test_parsed_mapping_payload_is_accepted() -> None:
     """A payload already parsed into a mapping decodes like its JSON text."""
-    assert decode("tracker/fills/ZEPH-1", json.dumps(FILL)) == decode("tracker/fills/ZEPH-1", FILL)
+    assert decode("tracker/fills/X_ZEPH-1", json.dumps(FILL)) == decode(
+        "tracker/fills/X_ZEPH-1", FILL
+    )
 
 
 INVALID = [
-    ("tracker/fills/ZEPH-1", "{not json", "not valid JSON"),
-    ("tracker/fills/ZEPH-1", b"\xff\xfe", "not UTF-8"),
-    ("tracker/fills/ZEPH-1", "[1, 2]", "must be a JSON object"),
-    ("tracker/fills/ZEPH-1", with_(FILL, type=...), "type: is required"),
-    ("tracker/fills/ZEPH-1", with_(FILL, type="trade"), "unknown message type 'trade'"),
-    ("tracker/orders/ZEPH-1", json.dumps(FILL), "publish fill messages to tracker/fills/"),
-    ("tracker/fills/ZEPH-1", with_(FILL, quantity=-5), "quantity: must be greater than 0"),
-    ("tracker/fills/ZEPH-1", with_(FILL, quantity=0), "quantity: must be greater than 0"),
-    ("tracker/fills/ZEPH-1", with_(FILL, quantity=2.5), "whole shares"),
-    ("tracker/fills/ZEPH-1", with_(FILL, quantity="500"), "must be a JSON number"),
-    ("tracker/fills/ZEPH-1", with_(FILL, quantity=True), "must be a JSON number"),
-    ("tracker/fills/ZEPH-1", with_(FILL, quantity=float("nan")), "NaN is not valid JSON"),
-    ("tracker/fills/ZEPH-1", with_(FILL, price=float("inf")), "Infinity is not valid JSON"),
-    ("tracker/fills/ZEPH-1", with_(FILL, price=0), "price: must be greater than 0"),
-    ("tracker/fills/ZEPH-1", with_(FILL, ts="2026-03-02T14:35:00"), "must carry a UTC offset"),
-    ("tracker/fills/ZEPH-1", with_(FILL, ts="yesterday"), "ts: must be an ISO 8601 time"),
-    ("tracker/fills/ZEPH-1", with_(FILL, fill_id=...), "fill_id: is required"),
+    ("tracker/fills/X_ZEPH-1", "{not json", "not valid JSON"),
+    ("tracker/fills/X_ZEPH-1", b"\xff\xfe", "not UTF-8"),
+    ("tracker/fills/X_ZEPH-1", "[1, 2]", "must be a JSON object"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, type=...), "type: is required"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, type="trade"), "unknown message type 'trade'"),
+    ("tracker/orders/X_ZEPH-1", json.dumps(FILL), "publish fill messages to tracker/fills/"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, quantity=-5), "quantity: must be greater than 0"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, quantity=0), "quantity: must be greater than 0"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, quantity=2.5), "whole shares"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, quantity="500"), "must be a JSON number"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, quantity=True), "must be a JSON number"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, quantity=float("nan")), "NaN is not valid JSON"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, price=float("inf")), "Infinity is not valid JSON"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, price=0), "price: must be greater than 0"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, ts="2026-03-02T14:35:00"), "must carry a UTC offset"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, ts="yesterday"), "ts: must be an ISO 8601 time"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, fill_id=...), "fill_id: is required"),
     (
-        "tracker/fills/ZEPH-1",
+        "tracker/fills/X_ZEPH-1",
         json.dumps(
             {
                 "type": "fill_correction",
                 "action": "correct",
                 "fill_id": "F1",
-                "order_id": "ZEPH-1",
+                "order_id": "X_ZEPH-1",
                 "ts": TS,
             }
         ),
         "a correction needs the new quantity, the new price or both",
     ),
-    ("tracker/fills/ZEPH-2", json.dumps(FILL), "payload says 'ZEPH-1' but the topic says"),
-    ("tracker/fills/ZEPH-1", with_(FILL, order_id="ZEPH 1"), "order_id: must be 1 to 64"),
-    ("tracker/fills/ZEPH-1", with_(FILL, side="short"), "side: must be 'buy' or 'sell'"),
-    ("tracker/orders/ZEPH-1", with_(ORDER, side=...), "missing: side"),
-    ("tracker/orders/ZEPH-1", with_(ORDER, action="replace"), "action: must be"),
-    ("tracker/orders/ZEPH-1", with_(ORDER, end=ORDER["start"]), "end must be after start"),
-    ("tracker/orders/ZEPH-1", with_(ORDER, max_participation=1.5), "fraction in (0, 1]"),
-    ("tracker/orders/ZEPH-1", with_(ORDER, limit_price=-1), "limit_price: must be greater"),
-    ("tracker/orders/ZEPH-1", with_(ORDER, urgency="asap"), "urgency: must be"),
+    ("tracker/fills/X_ZEPH-2", json.dumps(FILL), "payload says 'X_ZEPH-1' but the topic says"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, order_id="X_ZEPH 1"), "order_id: must be 1 to 64"),
+    ("tracker/fills/X_ZEPH-1", with_(FILL, side="short"), "side: must be 'buy' or 'sell'"),
+    ("tracker/orders/X_ZEPH-1", with_(ORDER, side=...), "missing: side"),
+    ("tracker/orders/X_ZEPH-1", with_(ORDER, action="replace"), "action: must be"),
+    ("tracker/orders/X_ZEPH-1", with_(ORDER, end=ORDER["start"]), "end must be after start"),
+    ("tracker/orders/X_ZEPH-1", with_(ORDER, max_participation=1.5), "fraction in (0, 1]"),
+    ("tracker/orders/X_ZEPH-1", with_(ORDER, limit_price=-1), "limit_price: must be greater"),
+    ("tracker/orders/X_ZEPH-1", with_(ORDER, urgency="asap"), "urgency: must be"),
     (
-        "tracker/orders/ZEPH-1",
-        json.dumps({"type": "order", "action": "amend", "order_id": "ZEPH-1", "ts": TS}),
+        "tracker/orders/X_ZEPH-1",
+        json.dumps({"type": "order", "action": "amend", "order_id": "X_ZEPH-1", "ts": TS}),
         "an amend must change at least one of",
     ),
     (
-        "tracker/fills/ZEPH-1",
+        "tracker/fills/X_ZEPH-1",
         json.dumps(
-            {"type": "fill_correction", "action": "undo", "fill_id": "F1", "order_id": "ZEPH-1"}
+            {"type": "fill_correction", "action": "undo", "fill_id": "F1", "order_id": "X_ZEPH-1"}
             | {"ts": TS}
         ),
         "action: must be 'bust' or 'correct'",
     ),
-    ("tracker/bins/ZEPH", with_(BIN, high=20.0), "high (20.0) must be at least low"),
-    ("tracker/bins/ZEPH", with_(BIN, close=21.0), "close (21.0) must lie between"),
-    ("tracker/bins/ZEPH", with_(BIN, volume=-1), "volume: must be 0 or more"),
-    ("tracker/bins/ZEPH", with_(BIN, vwap=None), "vwap is required when volume > 0"),
-    ("tracker/bins/ZEPH", with_(BIN, spread=-0.01), "spread: must be 0 or more"),
+    ("tracker/bins/X_ZEPH", with_(BIN, high=20.0), "high (20.0) must be at least low"),
+    ("tracker/bins/X_ZEPH", with_(BIN, close=21.0), "close (21.0) must lie between"),
+    ("tracker/bins/X_ZEPH", with_(BIN, volume=-1), "volume: must be 0 or more"),
+    ("tracker/bins/X_ZEPH", with_(BIN, vwap=None), "vwap is required when volume > 0"),
+    ("tracker/bins/X_ZEPH", with_(BIN, spread=-0.01), "spread: must be 0 or more"),
     ("tracker/control", with_(CONTROL, command="pause"), "command: must be 'halt' or 'resume'"),
     ("tracker/bins", json.dumps(BIN), "is not an inbound topic"),
-    ("other/bins/ZEPH", json.dumps(BIN), "outside the root 'tracker'"),
-    ("tracker/targets/ZEPH-1", json.dumps(FILL), "is not an inbound topic"),
+    ("other/bins/X_ZEPH", json.dumps(BIN), "outside the root 'tracker'"),
+    ("tracker/targets/X_ZEPH-1", json.dumps(FILL), "is not an inbound topic"),
 ]
 
 
@@ -236,8 +238,8 @@ def test_invalid_message_raises_wire_error_with_reason(
 
 def test_unknown_fields_are_accepted_named_and_kept_by_a_fill() -> None:
     """Tolerant reading: fields beyond the contract cost nothing; a fill keeps them."""
-    payload = with_(FILL, venue="HLX", exec_id="E-7", liquidity="added")
-    message, unknown = decode_reading("tracker/fills/ZEPH-1", payload)
+    payload = with_(FILL, venue="X_HLX", exec_id="E-7", liquidity="added")
+    message, unknown = decode_reading("tracker/fills/X_ZEPH-1", payload)
     assert isinstance(message, FillMessage)
     expected = (("exec_id", "liquidity", "venue"), {"exec_id": "E-7", "liquidity": "added"})
     assert expected == (unknown, {k: message.extra[k] for k in ("exec_id", "liquidity")})
@@ -245,14 +247,14 @@ def test_unknown_fields_are_accepted_named_and_kept_by_a_fill() -> None:
 
 def test_cancel_that_echoes_the_order_decodes() -> None:
     """A cancel repeating the order's fields (symbol, side, quantity, start, end) is a cancel."""
-    message = decode("tracker/orders/ZEPH-1", with_(ORDER, action="cancel"))
+    message = decode("tracker/orders/X_ZEPH-1", with_(ORDER, action="cancel"))
     assert isinstance(message, OrderMessage)
-    assert ("cancel", "ZEPH-1") == (message.action, message.order_id)
+    assert ("cancel", "X_ZEPH-1") == (message.action, message.order_id)
 
 
 def test_custom_root_is_honoured() -> None:
     """Topics are checked against the configured root."""
-    assert isinstance(decode("desk7/fills/ZEPH-1", json.dumps(FILL), root="desk7"), FillMessage)
+    assert isinstance(decode("desk7/fills/X_ZEPH-1", json.dumps(FILL), root="desk7"), FillMessage)
 
 
 def test_amend_null_limit_removes_the_limit() -> None:
@@ -287,7 +289,7 @@ def test_topics_of_outbound_messages() -> None:
     ts = datetime(2026, 3, 2, 14, 35, tzinfo=UTC)
     target = TargetMessage(
         order_id="A",
-        symbol="ZEPH",
+        symbol="X_ZEPH",
         side="buy",
         bin_start=ts,
         bin_end=ts,
@@ -300,7 +302,7 @@ def test_topics_of_outbound_messages() -> None:
     )
     status = StatusMessage(
         order_id="A",
-        symbol="ZEPH",
+        symbol="X_ZEPH",
         side="buy",
         state="working",
         quantity=1,
@@ -322,7 +324,7 @@ def test_topics_of_outbound_messages() -> None:
     )
     order_alert = AlertMessage(order_id="A", code="c", severity="info", message="m", ts=ts)
     symbol_alert = AlertMessage(
-        order_id=None, symbol="ZEPH", code="c", severity="info", message="m", ts=ts
+        order_id=None, symbol="X_ZEPH", code="c", severity="info", message="m", ts=ts
     )
     engine_alert = AlertMessage(order_id=None, code="c", severity="info", message="m", ts=ts)
     error = ErrorMessage(reason="r", topic="t", payload="p", ts=ts)
@@ -331,7 +333,7 @@ def test_topics_of_outbound_messages() -> None:
         "r/targets/A",
         "r/status/A",
         "r/alerts/A",
-        "r/alerts/symbol/ZEPH",
+        "r/alerts/symbol/X_ZEPH",
         "r/alerts/engine/all",
         "r/errors",
         "r/acks/A",

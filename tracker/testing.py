@@ -6,13 +6,13 @@ Use them to test an integration without a broker::
     from tracker.testing import Recorder, order, fill, bin_message, tick
 
     recorder = Recorder(Engine())
-    recorder.feed(order("A-1", "ZEPH", "buy", 40_000, "2026-03-02T14:30:00Z",
+    recorder.feed(order("A-1", "X_ZEPH", "buy", 40_000, "2026-03-02T14:30:00Z",
                         "2026-03-02T21:00:00Z", ts="2026-03-02T14:00:00Z"))
     recorder.feed(tick("2026-03-02T14:30:00Z"))
     assert recorder.targets("A-1")[-1].quantity > 0
 
 The symbols and prices in the builders' examples are invented (a made-up venue, "Harbour Lane
-Exchange", HLX).
+Exchange", X_HLX).
 """
 
 from __future__ import annotations

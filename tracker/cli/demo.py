@@ -6,10 +6,10 @@ loopback port -- or uses ``--broker URL`` -- and on it:
 * the daemon (:class:`tracker.shell.daemon.Daemon`), exactly as ``tracker run`` runs it,
   journaling into ``OUT/journal.sqlite``, on a simulated clock that runs ``--speed`` times real
   time;
-* the scripted market and order router of :mod:`tracker.sim.scenario` (invented symbols ZEPH,
-  KALO and MIRA on the invented venue Harbour Lane Exchange, HLX): it publishes bins, orders and
-  fills when they fall due on that clock, and works the targets the daemon publishes (it reads them
-  from the broker like any router would).
+* the scripted market and order router of :mod:`tracker.sim.scenario` (invented symbols X_ZEPH,
+  X_KALO and X_MIRA on the invented venue Harbour Lane Exchange, X_HLX): it publishes bins, orders
+  and fills when they fall due on that clock, and works the targets the daemon publishes (it reads
+  them from the broker like any router would).
 
 While the day runs, a table of the working orders is shown. At the end the daemon stops as on
 SIGTERM, the journal is replayed into ``OUT/replay/`` (targets, alerts, status, errors and
@@ -36,10 +36,10 @@ from tracker.edge.records import payload_bytes
 from tracker.errors import InputError
 
 DESCRIPTION = """\
-Play one invented trading day (symbols ZEPH, KALO, MIRA on the invented venue Harbour Lane Exchange,
-HLX) through the live daemon over MQTT, at --speed times real time (default 390: the 6.5-hour day in
-about a minute). Needs no outside service: an embedded MQTT broker is started on a free loopback
-port unless --broker names one.
+Play one invented trading day (symbols X_ZEPH, X_KALO, X_MIRA on the invented venue Harbour Lane
+Exchange, X_HLX) through the live daemon over MQTT, at --speed times real time (default 390: the
+6.5-hour day in about a minute). Needs no outside service: an embedded MQTT broker is started on a
+free loopback port unless --broker names one.
 
 Writes OUT/journal.sqlite (the daemon's journal) and OUT/replay/ (targets.jsonl, alerts.jsonl,
 status.jsonl, errors.jsonl, summary.json: the journal replayed), replacing those of an earlier demo
@@ -469,7 +469,7 @@ class _OrderTable:
         from rich.table import Table
 
         table = Table(
-            title=f"tracker demo -- invented day on HLX (made up) -- {self.clock}",
+            title=f"tracker demo -- invented day on X_HLX (made up) -- {self.clock}",
             caption=f"{self.errors} messages rejected to the errors topic",
         )
         for name, justify in (

@@ -15,12 +15,12 @@ from tracker.errors import InputError
 DESCRIPTION = """\
 Run the engine through an invented trading day and record every inbound message as a replay file.
 
-Everything is made up: the symbols ZEPH, KALO and MIRA, the venue Harbour Lane Exchange (HLX), the
-market (from the invented generator), four parent orders, a simple router that works each target
-over its bin in a few child slices, and a fill model with misses and partial fills. At midday
-ZEPH's liquidity collapses for 45 minutes; one order is amended and one cancelled; a few malformed
-messages and one redelivered fill are mixed in. The loop is closed: the router acts on the engine's
-targets as they come.
+Everything is made up: the symbols X_ZEPH, X_KALO and X_MIRA, the venue Harbour Lane Exchange
+(X_HLX), the market (from the invented generator), four parent orders, a simple router that works
+each target over its bin in a few child slices, and a fill model with misses and partial fills. At
+midday X_ZEPH's liquidity collapses for 45 minutes; one order is amended and one cancelled; a few
+malformed messages and one redelivered fill are mixed in. The loop is closed: the router acts on the
+engine's targets as they come.
 
 FILE is a JSON Lines recording for `tracker replay FILE --out DIR`, which reproduces the engine's
 outputs of this run byte for byte (--outputs DIR writes them here too).

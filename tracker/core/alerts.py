@@ -509,6 +509,11 @@ def completion(*, quantity: float, shortfall: float, config: AlertConfig) -> Che
     )
 
 
+def _amount(what: str, value: float) -> str:
+    """A volume in whole shares, a spread in currency: never in scientific notation."""
+    return f"{value:,.0f} shares" if what == "volume" else f"{value:,.4f}"
+
+
 def _ratio_check(
     *,
     code: str,
@@ -531,8 +536,8 @@ def _ratio_check(
         breach=high or low,
         recovered=within,
         message=lambda: (
-            f"Observed {what} {observed:,.4g} is far {direction} the forecast {expected:,.4g} "
-            f"({shown} times)."
+            f"Observed {what} {_amount(what, observed)} is far {direction} the forecast "
+            f"{_amount(what, expected)} ({shown} times)."
         ),
         clear_message=lambda: f"{what.capitalize()} is back near its forecast ({shown} times).",
         details=lambda: {

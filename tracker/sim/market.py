@@ -1,7 +1,7 @@
 """An invented market for demos and tests: bin-by-bin history of made-up stocks.
 
 Everything this module produces is invented. The default stock trades on an invented venue, the
-Harbour Lane Exchange (HLX); symbols such as ZEPH, KALO or MIRA are made up. Nothing here is
+Harbour Lane Exchange (X_HLX); symbols such as X_ZEPH, X_KALO or X_MIRA are made up. Nothing here is
 estimated from any real market.
 
 Theory of operation
@@ -44,7 +44,7 @@ from tracker.errors import InputError
 FloatArray = npt.NDArray[np.float64]
 
 #: The invented venue of the demo data.
-VENUE = "Harbour Lane Exchange (HLX), an invented venue"
+VENUE = "Harbour Lane Exchange (X_HLX), an invented venue"
 #: Smallest spread (one tick), currency.
 TICK = 0.01
 
@@ -281,7 +281,7 @@ def simulate_history(
     """A synthetic history of an invented stock: ``days`` weekdays from ``first_day``.
 
     Args:
-        symbol: The invented symbol (e.g. ``"ZEPH"``).
+        symbol: The invented symbol (e.g. ``"X_ZEPH"``).
         days: Number of trading days (>= 1).
         seed: Seed of the random generator; the same seed gives the same history.
         session: The regular session.

@@ -1,7 +1,7 @@
 """The invented demo day: a closed loop of market, router and fills around the engine.
 
-Everything here is made up: the symbols ZEPH, KALO and MIRA, the venue Harbour Lane Exchange
-(HLX), their prices and volumes, the orders and the router. It exists to show the engine at work
+Everything here is made up: the symbols X_ZEPH, X_KALO and X_MIRA, the venue Harbour Lane Exchange
+(X_HLX), their prices and volumes, the orders and the router. It exists to show the engine at work
 and to record a replay file; it says nothing about any real market.
 
 Theory of operation
@@ -16,10 +16,11 @@ Only targets matter to it: they are what the order router works.
 What goes into the queue:
 
 * the market: one bin message per symbol at every bin close (plus one second of publication
-  latency), from :mod:`tracker.sim.market`'s invented generator; at midday ZEPH's liquidity
+  latency), from :mod:`tracker.sim.market`'s invented generator; at midday X_ZEPH's liquidity
   collapses for a while (:data:`SHOCK`): volume falls to a fifth, the spread triples;
-* the parent orders (:data:`ORDERS`) at their submission times, one amend (MIRA's quantity and end
-  move), one cancel (KALO's order stops early) and a quarter-hour halt of ZEPH-S2 (:data:`HALT`);
+* the parent orders (:data:`ORDERS`) at their submission times, one amend (X_MIRA's quantity and end
+  move), one cancel (X_KALO's order stops early) and a quarter-hour halt of X_ZEPH-S2
+  (:data:`HALT`);
 * fills: the router works each target over its bin in a few child slices. The fill model gives a
   slice nothing (a miss), part of what was asked, or all of it, at the bin's VWAP plus a fraction
   of the half spread against us, never more than a set share of the bin's real volume, never past
@@ -88,9 +89,9 @@ class SymbolSpec:
 
 #: The invented symbols of the demo day.
 SYMBOLS: tuple[SymbolSpec, ...] = (
-    SymbolSpec("ZEPH", 1_200_000, 42.10, 0.02),
-    SymbolSpec("KALO", 900_000, 18.55, 0.01),
-    SymbolSpec("MIRA", 700_000, 67.30, 0.03),
+    SymbolSpec("X_ZEPH", 1_200_000, 42.10, 0.02),
+    SymbolSpec("X_KALO", 900_000, 18.55, 0.01),
+    SymbolSpec("X_MIRA", 700_000, 67.30, 0.03),
 )
 
 
@@ -113,17 +114,17 @@ class ScenarioOrder:
 #: The parent orders of the demo day.
 ORDERS: tuple[ScenarioOrder, ...] = (
     ScenarioOrder(
-        "ZEPH-B1", "ZEPH", "buy", 120_000, time(9, 29), time(9, 30), time(16, 0), "medium", 0.15
+        "X_ZEPH-B1", "X_ZEPH", "buy", 120_000, time(9, 29), time(9, 30), time(16, 0), "medium", 0.15
     ),
     ScenarioOrder(
-        "KALO-S1", "KALO", "sell", 60_000, time(9, 58), time(10, 0), time(14, 30), "high", 0.20
+        "X_KALO-S1", "X_KALO", "sell", 60_000, time(9, 58), time(10, 0), time(14, 30), "high", 0.20
     ),
     ScenarioOrder(
-        "MIRA-B1", "MIRA", "buy", 40_000, time(9, 44), time(9, 45), time(13, 0), "low", 0.15
+        "X_MIRA-B1", "X_MIRA", "buy", 40_000, time(9, 44), time(9, 45), time(13, 0), "low", 0.15
     ),
     ScenarioOrder(
-        "ZEPH-S2",
-        "ZEPH",
+        "X_ZEPH-S2",
+        "X_ZEPH",
         "sell",
         30_000,
         time(12, 58),
@@ -135,14 +136,14 @@ ORDERS: tuple[ScenarioOrder, ...] = (
     ),
 )
 
-#: MIRA-B1 is amended at 11:00: more shares, one more hour.
-AMEND = ("MIRA-B1", time(11, 0), {"quantity": 55_000, "end": time(14, 0)})
+#: X_MIRA-B1 is amended at 11:00: more shares, one more hour.
+AMEND = ("X_MIRA-B1", time(11, 0), {"quantity": 55_000, "end": time(14, 0)})
 
-#: KALO-S1 is cancelled at 13:00, before its end.
-CANCEL = ("KALO-S1", time(13, 0))
+#: X_KALO-S1 is cancelled at 13:00, before its end.
+CANCEL = ("X_KALO-S1", time(13, 0))
 
-#: The desk halts ZEPH-S2 at 14:30 and resumes it at 14:45 (control messages).
-HALT = ("ZEPH-S2", time(14, 30), time(14, 45))
+#: The desk halts X_ZEPH-S2 at 14:30 and resumes it at 14:45 (control messages).
+HALT = ("X_ZEPH-S2", time(14, 30), time(14, 45))
 
 
 @dataclass(frozen=True, slots=True)
@@ -156,8 +157,8 @@ class Shock:
     spread_factor: float
 
 
-#: The midday liquidity shock on ZEPH.
-SHOCK = Shock("ZEPH", time(12, 0), time(12, 45), volume_factor=0.2, spread_factor=3.0)
+#: The midday liquidity shock on X_ZEPH.
+SHOCK = Shock("X_ZEPH", time(12, 0), time(12, 45), volume_factor=0.2, spread_factor=3.0)
 
 #: The invented market follows the shapes of the stated default profile
 #: (:func:`tracker.core.profiles.default_profile`), which the demo engine uses for want of a
@@ -485,18 +486,18 @@ class Scenario:
     def _schedule_malformed(self) -> None:
         topics = self.topics
         for clock, topic, make in (
-            (time(10, 12, 3), topics.fills("ZEPH-B1"), _truncated_fill),
-            (time(10, 47, 30), topics.fills("KALO-S1"), _negative_fill),
-            (time(11, 20, 10), topics.fills("MIRA-B1"), _unknown_type),
-            (time(12, 5, 0), topics.fills("ORIN-B9"), _unknown_order_fill),
-            (time(14, 10, 0), topics.bins("KALO"), self._misrouted_bin),
+            (time(10, 12, 3), topics.fills("X_ZEPH-B1"), _truncated_fill),
+            (time(10, 47, 30), topics.fills("X_KALO-S1"), _negative_fill),
+            (time(11, 20, 10), topics.fills("X_MIRA-B1"), _unknown_type),
+            (time(12, 5, 0), topics.fills("X_ORIN-B9"), _unknown_order_fill),
+            (time(14, 10, 0), topics.bins("X_KALO"), self._misrouted_bin),
         ):
             at = self._local(clock)
             self._push(at, topic, _bind(make, at))
         self._push_built(self._local(time(10, 31, 0)), self._redelivery)
 
     def _misrouted_bin(self, at: datetime) -> Mapping[str, Any]:
-        market_bin = self.market["MIRA"][0]
+        market_bin = self.market["X_MIRA"][0]
         return _bin_payload(market_bin, at)
 
     def _redelivery(self) -> tuple[str, Payload] | None:
@@ -532,14 +533,16 @@ def _bind(
 
 def _truncated_fill(at: datetime) -> str:
     # Raw text cut off mid-message, as a sender that crashed mid-write would leave it.
-    return '{"type": "fill", "fill_id": "ZEPH-B1-X1", "order_id": "ZEPH-B1", "quantity": 500, "pri'
+    return (
+        '{"type": "fill", "fill_id": "X_ZEPH-B1-X1", "order_id": "X_ZEPH-B1", "quantity": 500, "pri'
+    )
 
 
 def _negative_fill(at: datetime) -> Mapping[str, Any]:
     return {
         "type": "fill",
-        "fill_id": "KALO-S1-X2",
-        "order_id": "KALO-S1",
+        "fill_id": "X_KALO-S1-X2",
+        "order_id": "X_KALO-S1",
         "quantity": -400,
         "price": 18.4,
         "ts": _ms(at),
@@ -549,8 +552,8 @@ def _negative_fill(at: datetime) -> Mapping[str, Any]:
 def _unknown_type(at: datetime) -> Mapping[str, Any]:
     return {
         "type": "trade",
-        "fill_id": "MIRA-B1-X3",
-        "order_id": "MIRA-B1",
+        "fill_id": "X_MIRA-B1-X3",
+        "order_id": "X_MIRA-B1",
         "quantity": 300,
         "price": 67.5,
         "ts": _ms(at),
@@ -560,8 +563,8 @@ def _unknown_type(at: datetime) -> Mapping[str, Any]:
 def _unknown_order_fill(at: datetime) -> Mapping[str, Any]:
     return {
         "type": "fill",
-        "fill_id": "ORIN-B9-0001",
-        "order_id": "ORIN-B9",
+        "fill_id": "X_ORIN-B9-0001",
+        "order_id": "X_ORIN-B9",
         "quantity": 1_000,
         "price": 9.87,
         "ts": _ms(at),

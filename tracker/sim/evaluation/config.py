@@ -40,7 +40,7 @@ class MarketSpec:
     the standard deviation of the log day scale itself (days are drawn independently).
     """
 
-    symbol: str = "ZEPH"
+    symbol: str = "X_ZEPH"
     price: float = 42.0
     average_daily_volume: float = 2_000_000.0
     daily_volatility: float = 0.018
