@@ -31,6 +31,7 @@ from tracker.edge.wire import (
     decode_output,
     decode_reading,
     encode,
+    oversize_note,
     payload_text,
     to_json_object,
     topic_of,
@@ -411,3 +412,56 @@ def test_decode_output_refuses_an_inbound_message() -> None:
     """Only targets, status, alerts and errors are outbound messages."""
     with pytest.raises(WireError, match="not an outbound message type"):
         decode_output(json.dumps(FILL))
+
+
+@pytest.mark.parametrize(
+    ("field", "value", "expected"),
+    [
+        ("quantity", int("9" * 401), "a number of 401 digits"),
+        ("quantity", 1e300, "must be at most 1,000,000,000,000"),
+        ("quantity", 10**12 + 1, "must be at most 1,000,000,000,000"),
+        ("price", 1e13, "must be at most 1,000,000,000,000"),
+        ("price", -int("9" * 40), "a number of 40 digits"),
+    ],
+    ids=[
+        "401-digit-quantity",
+        "1e300-shares",
+        "just-above-the-bound",
+        "huge-price",
+        "huge-int-price",
+    ],
+)
+def test_numbers_beyond_the_bound_are_refused_naming_the_field(
+    field: str, value: float, expected: str
+) -> None:
+    """Every quantity, volume and price is at most 10^12 in size: a 401-digit integer or 1e300
+    shares is refused at the edge with the field named (it never reaches numpy)."""
+    payload = json.dumps({**FILL, field: value})
+    with pytest.raises(WireError) as info:
+        decode("tracker/fills/X_ZEPH-1", payload)
+    assert expected in info.value.reason
+    assert field in info.value.reason
+    assert len(info.value.reason) < 300
+
+
+def test_the_bound_itself_is_accepted() -> None:
+    """10^12 shares is still a number the contract takes."""
+    message = decode("tracker/fills/X_ZEPH-1", json.dumps({**FILL, "quantity": 10**12}))
+    assert 10**12 == message.quantity  # type: ignore[union-attr]
+
+
+def test_a_key_given_twice_is_refused() -> None:
+    """{"quantity": 1, "quantity": 100000} is refused: which one counts is anybody's guess."""
+    text = json.dumps(FILL)[:-1] + ', "quantity": 100000}'
+    with pytest.raises(WireError) as info:
+        decode("tracker/fills/X_ZEPH-1", text)
+    assert "quantity: the key appears twice" in info.value.reason
+
+
+def test_an_oversize_note_is_refused_as_too_large() -> None:
+    """The daemon's stand-in for a payload over its size limit is refused as "too large", not as
+    "not valid JSON"."""
+    note = oversize_note(5_000_000, 65_536, '{"type": "fill", ...')
+    with pytest.raises(WireError) as info:
+        decode("tracker/fills/X_ZEPH-1", note)
+    assert info.value.reason.startswith("too large: payload of 5000000 bytes is over the limit")

@@ -124,6 +124,23 @@ def _check_id(value: Any) -> str:
     return value
 
 
+#: The largest magnitude any quantity, volume or price may have (10^12). Beyond it a number is a
+#: typo or an attack, not a trade; and an integer this size still fits the 64 bits numpy uses.
+MAX_MAGNITUDE = 10**12
+
+
+def _shown(value: int | float) -> str:
+    """A number for an error message: a huge integer by its length, not its 400 digits."""
+    if isinstance(value, int) and abs(value) >= 10**15:
+        return f"a number of {len(str(abs(value)))} digits"
+    return repr(value)
+
+
+def _bounded(value: int | float) -> None:
+    if abs(value) > MAX_MAGNITUDE:
+        raise ValueError(f"must be at most {MAX_MAGNITUDE:,} in size; got {_shown(value)}")
+
+
 def _whole_shares(value: Any) -> int:
     if isinstance(value, bool) or not isinstance(value, int | float):
         raise ValueError(f"must be a JSON number of whole shares; got {type(value).__name__}")
@@ -132,12 +149,14 @@ def _whole_shares(value: Any) -> int:
             raise ValueError(f"must be a finite number of whole shares; got {value!r}")
         if not value.is_integer():
             raise ValueError(f"must be whole shares (an integer); got {value!r}")
+    _bounded(value)
     return int(value)
 
 
 def _finite_number(value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float):
         raise ValueError(f"must be a JSON number; got {type(value).__name__}")
+    _bounded(value)  # before float(): a 400-digit integer would overflow it
     number = float(value)
     if not math.isfinite(number):
         raise ValueError(f"must be a finite number; got {value!r}")
@@ -564,6 +583,33 @@ def _reject_constant(name: str) -> Any:
     raise ValueError(f"{name} is not valid JSON; send a finite number")
 
 
+class _DuplicateKey(ValueError):
+    pass
+
+
+def _unique_keys(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    """A JSON object, refusing a key given twice (which value would count is anybody's guess)."""
+    data: dict[str, Any] = {}
+    for key, value in pairs:
+        if key in data:
+            raise _DuplicateKey(key)
+        data[key] = value
+    return data
+
+
+#: How the daemon journals a payload it did not read because it was over its size limit (see
+#: :meth:`tracker.shell.daemon.Daemon`): the note is refused with itself as the reason.
+OVERSIZE_NOTE = "payload of {size} bytes is over the limit of {limit} bytes and was not read"
+
+
+def oversize_note(size: int, limit: int, head: str) -> bytes:
+    """The journal's stand-in for a payload over the size limit (never valid JSON)."""
+    return (
+        OVERSIZE_NOTE.format(size=size, limit=limit)
+        + f"; send smaller messages (it began: {head!r})"
+    ).encode("utf-8")
+
+
 def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, Any]:
     if isinstance(payload, Mapping):
         return dict(payload)
@@ -577,8 +623,14 @@ def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, An
             ) from None
     else:
         text = payload
+    if text.startswith("payload of ") and " is over the limit of " in text[:120]:
+        raise WireError(f"too large: {text[:300]}", topic=topic)
     try:
-        data = json.loads(text, parse_constant=_reject_constant)
+        data = json.loads(text, parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
+    except _DuplicateKey as exc:
+        raise WireError(
+            f"{exc}: the key appears twice in the payload; send each field once", topic=topic
+        ) from None
     except ValueError as exc:
         raise WireError(
             f"payload is not valid JSON ({exc}); send one JSON object", topic=topic
@@ -828,6 +880,7 @@ __all__ = [
     "DEFAULT_ROOT",
     "FLOAT_DECIMALS",
     "MAX_ERROR_PAYLOAD",
+    "MAX_MAGNITUDE",
     "WIRE_VERSION",
     "AckMessage",
     "AckPayload",

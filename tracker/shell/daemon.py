@@ -74,6 +74,7 @@ from tracker.edge.wire import (
     TargetMessage,
     Tick,
     encode,
+    oversize_note,
     topic_of,
 )
 from tracker.errors import InputError
@@ -619,12 +620,8 @@ class Daemon:
             "payload over the size limit", topic=delivery.topic, size=size, limit=limit
         )
         head = delivery.payload[:120].decode("utf-8", errors="replace")
-        # Not JSON on purpose: it is rejected (live and in replay) and its error record says why.
-        note = (
-            f"payload of {size} bytes is over the limit of {limit} bytes and was not read; "
-            f"send smaller messages (it began: {head!r})"
-        )
-        return note.encode("utf-8")
+        # Not JSON on purpose: it is refused as "too large" (live and in replay alike).
+        return oversize_note(size, limit, head)
 
     def _feed(self, record: Record) -> list[Outbound]:
         """Feed one record (recovery at start)."""
