@@ -295,8 +295,10 @@ def test_journal_deleted_while_running_stops_and_loses_nothing(
     first_journal = tmp_path / "first" / "journal.sqlite"
     second_journal = tmp_path / "second" / "journal.sqlite"
 
+    published: list[object] = []
+
     async def scenario() -> Exception | None:
-        async with Daemon(settings(first_journal)) as daemon:
+        async with Daemon(settings(first_journal), on_output=published.append) as daemon:
             task = asyncio.create_task(daemon.run())
             await asyncio.wait_for(daemon.bus.connected.wait(), 30)
             await publish_all(mosquitto.port, [_fill_message(root, 1)], client_id="pub1")
@@ -315,6 +317,8 @@ def test_journal_deleted_while_running_stops_and_loses_nothing(
     failure = asyncio.run(scenario())
     assert failure is not None and "deleted or replaced" in str(failure)
     assert [_fill_message(root, 2)] == journaled(second_journal, root)
+    alerts = [getattr(out, "code", None) for out in published]
+    assert ["journal_failed"] == [code for code in alerts if code == "journal_failed"]
 
 
 def test_no_ticks_are_journaled_while_nothing_waits_on_time(

@@ -62,6 +62,8 @@ fill_corrected             warning               a fill was corrected: inventory
                                                  recomputed
 cancel_mismatch            critical              a cancel named another symbol or side than its
                                                  order; the order was cancelled all the same
+journal_failed             critical              the daemon's journal cannot be written (deleted,
+                                                 replaced, disk full, I/O error): it stops
 =========================  ====================  ===================================================
 """
 
@@ -102,6 +104,7 @@ FILL_UNASSIGNED = "fill_unassigned"
 FILL_BUSTED = "fill_busted"
 FILL_CORRECTED = "fill_corrected"
 CANCEL_MISMATCH = "cancel_mismatch"
+JOURNAL_FAILED = "journal_failed"
 
 
 @dataclass(frozen=True, slots=True)
@@ -184,6 +187,11 @@ CODES: Mapping[str, Code] = {
         "critical",
         "a cancel named another symbol or side than its order; the order was cancelled all "
         "the same",
+    ),
+    JOURNAL_FAILED: Code(
+        "critical",
+        "the daemon's journal cannot be written (deleted, replaced, disk full, I/O error): "
+        "it stops",
     ),
 }
 
@@ -648,6 +656,7 @@ __all__ = [
     "FILL_UNKNOWN_ORDER",
     "FILL_WRONG_SIDE",
     "INTERNAL_ERROR",
+    "JOURNAL_FAILED",
     "LIMIT_BLOCKING",
     "MARKET_DATA_STALE",
     "ORDER_DONE",

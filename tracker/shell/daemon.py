@@ -62,6 +62,7 @@ from typing import IO, TYPE_CHECKING, Any, Self
 import aiomqtt
 import structlog
 
+from tracker.core import alerts as rules
 from tracker.core.formats import utc_text
 from tracker.core.topics import Topics
 from tracker.edge.intake import EngineLike, Intake
@@ -555,6 +556,19 @@ class Daemon:
         self.failure = exc
         self._journal_broken = True
         self.bus.stop_reading()
+        assert self._clock is not None
+        alert = rules.event(
+            rules.JOURNAL_FAILED,
+            f"The journal cannot be written ({exc}). The daemon stops taking messages and stops; "
+            "what it did not journal stays with the broker for the next start.",
+            order_id=None,
+            symbol=None,
+            ts=self._clock(),
+            details={"journal": str(self.settings.journal), "kind": type(exc).__name__},
+        )
+        self._queue_now(self._applied, [alert])  # published before the daemon goes offline
+        if self._on_output is not None:
+            self._on_output(alert)
         self.stop()
 
     async def _commit(self, batch: list[Delivery | _TickRequest]) -> list[Record]:
