@@ -2,8 +2,8 @@
 
 Each module named in :data:`COMMANDS` has ``register(subparsers)``, which adds its parser and sets
 ``handler`` to a function ``(args) -> int``. Errors in what the user gave us (:class:`InputError`)
-become one line on stderr and exit code 2; nothing else is caught here, so a bug shows its
-traceback.
+and a valid problem the solver could not solve (:class:`SolveError`) become one line on stderr and
+exit code 2; nothing else is caught here, so a bug shows its traceback.
 """
 
 from __future__ import annotations
