@@ -73,9 +73,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.set_defaults(handler=run)
 
 
-def add_daemon_arguments(parser: argparse.ArgumentParser) -> None:
-    """The daemon's flags (none has a default here: unset flags fall through to env and file)."""
-    broker = parser.add_argument_group("broker")
+def add_broker_arguments(broker: argparse._ArgumentGroup) -> None:
+    """The broker connection flags, shared by every command that talks to the daemon's broker
+    (none has a default here: unset flags fall through to the environment and the file)."""
     broker.add_argument(
         "--broker",
         metavar="URL",
@@ -91,6 +91,11 @@ def add_daemon_arguments(parser: argparse.ArgumentParser) -> None:
     broker.add_argument("--ca", metavar="FILE", help="TLS: CA bundle (PEM) to verify the broker")
     broker.add_argument("--cert", metavar="FILE", help="TLS: client certificate (PEM)")
     broker.add_argument("--key", metavar="FILE", help="TLS: the client certificate's key (PEM)")
+
+
+def add_daemon_arguments(parser: argparse.ArgumentParser) -> None:
+    """The daemon's flags (none has a default here: unset flags fall through to env and file)."""
+    add_broker_arguments(parser.add_argument_group("broker"))
     daemon = parser.add_argument_group("daemon")
     daemon.add_argument("--root", metavar="ROOT", help="MQTT topic root (default tracker)")
     daemon.add_argument("--journal", metavar="PATH", help="journal file (SQLite; created if new)")

@@ -67,21 +67,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         epilog=CAUTION,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
+    from tracker.cli.run import add_broker_arguments
+
     broker = parser.add_argument_group("broker (as tracker run)")
-    broker.add_argument(
-        "--broker",
-        metavar="URL",
-        help="mqtt://HOST:PORT, or mqtts://HOST:PORT for TLS (default mqtt://127.0.0.1:1883)",
-    )
-    broker.add_argument("--username", metavar="NAME", help="broker user name")
-    broker.add_argument(
-        "--password-file",
-        metavar="FILE",
-        help="file holding the broker password (or TRACKER_BROKER_PASSWORD)",
-    )
-    broker.add_argument("--ca", metavar="FILE", help="TLS: CA bundle (PEM) to verify the broker")
-    broker.add_argument("--cert", metavar="FILE", help="TLS: client certificate (PEM)")
-    broker.add_argument("--key", metavar="FILE", help="TLS: the client certificate's key (PEM)")
+    add_broker_arguments(broker)
     broker.add_argument("--root", metavar="ROOT", help="MQTT topic root (default tracker)")
     broker.add_argument(
         "--config", metavar="FILE", help="the TOML file of tracker run ([broker], [daemon] root)"
