@@ -201,6 +201,7 @@ class Daemon:
         self.settings = settings
         self._clock_source = clock
         self.root = settings.root
+        self.topics = Topics(settings.root)
         self._engine_given = engine
         self._on_output = on_output
         self._log = structlog.get_logger("tracker.shell.daemon").bind(instance=settings.instance)
@@ -228,7 +229,7 @@ class Daemon:
             subscriptions=inbound_topics(settings.root),
             inbox=self.inbox,  # type: ignore[arg-type]
             outbox=self.outbox,
-            health_topic=Topics(settings.root).health(settings.instance),
+            health_topic=self.topics.health(settings.instance),
             health=self.health,
             on_published=self._confirmed,
             heartbeat_seconds=settings.heartbeat_seconds,
@@ -578,7 +579,7 @@ class Daemon:
         for item in batch:
             if isinstance(item, _TickRequest):
                 tick = Tick(ts=_parse_ts(ts))
-                rows.append((Topics(self.root).tick, encode(tick), ts))
+                rows.append((self.topics.tick, encode(tick), ts))
             else:
                 rows.append((item.topic, self._limited(item), ts))
                 self.received += 1
@@ -609,7 +610,7 @@ class Daemon:
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
-        for run in _runs(records, Topics(self.root).bins("")):
+        for run in _runs(records, self.topics.bins("")):
             for record, outputs in zip(run, self._feed_run(run), strict=True):
                 seq = record.line
                 self._applied = seq
