@@ -257,6 +257,7 @@ class DaemonProcess:
         summary: Path | None = None,
         extra: tuple[str, ...] = (),
         env: dict[str, str] | None = None,
+        event_time: str | None = None,
     ) -> None:
         self.env = env
         self.folder = folder
@@ -287,6 +288,10 @@ class DaemonProcess:
             "json",
             *extra,
         ]
+        if event_time is not None:  # "message": a day published at once, faster than the clock
+            config = folder / "daemon.toml"
+            config.write_text(f'[engine]\nevent_time = "{event_time}"\n')
+            self.args += ["--config", str(config)]
         self.process: subprocess.Popen[bytes] | None = None
         self._log_handle: Any = None
 
@@ -411,10 +416,13 @@ def replay_by_topic(journal: Path, root: str) -> tuple[dict[str, list[bytes]], d
     """Replay a journal with a fresh engine: outputs by topic (encoded) and the summary."""
     from tracker.core.engine import Engine
     from tracker.edge.wire import encode, topic_of
-    from tracker.shell.journal import read_journal
+    from tracker.shell.journal import read_journal, read_setup
     from tracker.shell.replay import replay
+    from tracker.shell.setup import engine_of, timeline
 
-    result = replay(read_journal(journal), Engine(root=root), root)
+    setups = timeline(read_setup(journal))  # the settings the daemon ran with
+    engine = engine_of(setups[0][1]) if setups else Engine(root=root)
+    result = replay(read_journal(journal), engine, root)
     by_topic: dict[str, list[bytes]] = {}
     for message in [*result.targets, *result.alerts, *result.status, *result.errors, *result.acks]:
         by_topic.setdefault(topic_of(message, root), []).append(encode(message))

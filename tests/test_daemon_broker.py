@@ -75,6 +75,9 @@ def _settings(tmp_path: Path, port: int, **changes: object) -> Settings:
         "instance": "t1",
         "clock_start": datetime.fromisoformat(day_start()),
         "heartbeat_seconds": 1.0,
+        # The tests publish a recorded day at once, ahead of the simulated clock: the engine
+        # takes the messages' own ts (tests/test_time.py holds the receive-time default).
+        "engine": {"event_time": "message"},
     }
     values.update(changes)
     return Settings(**values)  # type: ignore[arg-type]

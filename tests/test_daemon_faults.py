@@ -143,6 +143,7 @@ def test_broker_restart_mid_day_loses_nothing(tmp_path: Path, mosquitto: Private
         root=root,
         instance="bounce",
         clock_start=datetime.fromisoformat(day_start()),
+        engine={"event_time": "message"},  # the day is published at once, ahead of the clock
         # Slow enough that the second half is published while the daemon is still away: it must
         # come from the session the broker saved and restored.
         reconnect_min_seconds=3.0,

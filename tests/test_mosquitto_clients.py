@@ -53,7 +53,9 @@ def tools() -> None:
 def setup(tmp_path: Path, tools: None) -> Iterator[tuple[PrivateMosquitto, DaemonProcess]]:
     """A private Mosquitto and a daemon subprocess, both stopped whatever the test does."""
     with PrivateMosquitto(tmp_path / "mosquitto") as broker:
-        daemon = DaemonProcess(tmp_path / "daemon", broker.url, root=ROOT, instance="cli")
+        daemon = DaemonProcess(
+            tmp_path / "daemon", broker.url, root=ROOT, instance="cli", event_time="message"
+        )
         daemon.start()
         try:
             daemon.wait_connected()

@@ -106,7 +106,9 @@ def tmux() -> Iterator[Tmux]:
 @pytest.fixture
 def daemon(tmp_path: Path, mosquitto: PrivateMosquitto) -> Iterator[DaemonProcess]:
     """``tracker run`` on the private broker, connected."""
-    process = DaemonProcess(tmp_path / "daemon", mosquitto.url, root=ROOT, instance="t1")
+    process = DaemonProcess(
+        tmp_path / "daemon", mosquitto.url, root=ROOT, instance="t1", event_time="message"
+    )
     process.start()
     try:
         process.wait_connected()

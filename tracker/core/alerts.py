@@ -64,6 +64,11 @@ cancel_mismatch            critical              a cancel named another symbol o
                                                  order; the order was cancelled all the same
 journal_failed             critical              the daemon's journal cannot be written (deleted,
                                                  replaced, disk full, I/O error): it stops
+clock_skew                 warning               a message's ts is outside the tolerance around
+                                                 its receive time; it was applied at its receive
+                                                 time
+source_gap                 critical              a source's sequence numbers skipped: messages
+                                                 between them never arrived
 =========================  ====================  ===================================================
 """
 
@@ -105,6 +110,8 @@ FILL_BUSTED = "fill_busted"
 FILL_CORRECTED = "fill_corrected"
 CANCEL_MISMATCH = "cancel_mismatch"
 JOURNAL_FAILED = "journal_failed"
+CLOCK_SKEW = "clock_skew"
+SOURCE_GAP = "source_gap"
 
 
 @dataclass(frozen=True, slots=True)
@@ -192,6 +199,15 @@ CODES: Mapping[str, Code] = {
         "critical",
         "the daemon's journal cannot be written (deleted, replaced, disk full, I/O error): "
         "it stops",
+    ),
+    CLOCK_SKEW: Code(
+        "warning",
+        "a message's ts is outside the tolerance around its receive time; it was applied at "
+        "its receive time",
+    ),
+    SOURCE_GAP: Code(
+        "critical",
+        "a source's sequence numbers skipped: messages between them never arrived",
     ),
 }
 

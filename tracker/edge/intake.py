@@ -41,6 +41,27 @@ Remarks (``info`` error records; the line is accepted all the same):
   The line's *time*, for derived ticks, is its recorded ``ts`` (when the shell received it), else
   the message's own ``ts``; time never moves backwards.
 
+Time: the receive time is the clock
+-----------------------------------
+A line's recorded ``ts`` is when the shell received it (the daemon stamps it from its own clock
+before journaling). With the engine's ``event_time = "receive"`` (the default,
+:class:`~tracker.core.engine.EngineConfig`), that receive time is the engine's clock: the message
+is handed over with its ``ts`` set to it, so no message's own stamp can move the clock, expire an
+order or date a day. The message's own ``ts`` is data, judged against the receive time first:
+
+* it (and a bin's ``end``) may be at most ``ts_ahead_seconds`` after the receive time (5 s: clocks
+  of two machines differ a little), and at most ``ts_behind_seconds`` before it (900 s; for fills
+  and fill corrections ``fill_ts_behind_seconds``, 3,600 s);
+* outside that, an order, amend, resume or bin is **refused** (the reason names the stamp, the
+  receive time and the setting), while a fill or fill correction (its shares count), a cancel and
+  a halt (safety actions always win) are **applied at the receive time** with a ``clock_skew``
+  warning alert -- once per order and kind; the summary counts every one (``clock_skew``).
+
+A line recorded without ``ts`` (a hand-made file) has no receive time: its message's own ``ts``
+is used, as with ``event_time = "message"``, which turns all of this off (for driving a daemon
+with a recorded day faster than its clock, as some tests do). The settings are journaled with the
+engine's, so a replay of a journal judges every line as the daemon did.
+
 Redelivery: why here
 --------------------
 The memory of accepted messages (to tell a redelivery from a new message) is kept here, at the
@@ -73,14 +94,19 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime, timedelta
 from typing import Any, Protocol
 
+from tracker.core.alerts import CLOCK_SKEW
+from tracker.core.alerts import event as rules_event
 from tracker.core.formats import utc_text
 from tracker.core.messages import (
     AckMessage,
+    BinMessage,
+    ControlMessage,
     ErrorMessage,
+    FillCorrectionMessage,
     FillMessage,
     Inbound,
     OrderMessage,
@@ -158,6 +184,10 @@ class Intake:
         self.redelivered = 0
         self.rejected = 0
         self.ticks_derived = 0
+        self.skewed = 0  # lines applied at their receive time with a clock_skew alert
+        self._skew_told: set[tuple[str | None, str]] = set()  # (order id, kind) alerted on
+        self._rules_of: object = None  # the settings _rules_now was read from
+        self._rules_now: TimeRules | None = None
 
     @property
     def now(self) -> datetime | None:
@@ -216,6 +246,12 @@ class Intake:
                 self.redelivered += 1
                 continue
             assert isinstance(record, Record)  # a BadLine never gets past _stage
+            judged = self._judge_time(record, message, recorded)
+            if isinstance(judged, list):  # refused for its time
+                results[index].extend(judged)
+                continue
+            message, skew = judged
+            results[index].extend(skew)
             kind = Topics(self.root).split_inbound(record.topic)
             where = kind[0] if kind is not None else record.topic
             for name in unknown:
@@ -238,6 +274,8 @@ class Intake:
             when = recorded if recorded is not None else _message_time(message)
             if recorded is not None:
                 self._recorded = recorded
+                if self._by_receipt(message):
+                    message = replace(message, ts=recorded)  # the clock is the receive time
             if when is not None and (self._last is None or when > self._last):
                 if self._next_tick is not None and when >= self._next_tick:
                     for tick in self._ticks_until(when):
@@ -283,6 +321,85 @@ class Intake:
         # to the engine and are not remembered (a long-running daemon makes one a second).
         key = None if isinstance(message, Tick) else _identity(record.topic, message)
         return message, key, recorded, unknown
+
+    def _rules(self) -> TimeRules | None:
+        """The engine's time tolerances, or ``None`` when its clock is the messages' own ts
+        (read from its settings, which a journal's later setup can change)."""
+        config = getattr(self.engine, "config", None)
+        if config is not self._rules_of:
+            self._rules_of = config
+            self._rules_now = None
+            if config is not None and getattr(config, "event_time", "message") == "receive":
+                self._rules_now = TimeRules(
+                    ahead=timedelta(seconds=config.ts_ahead_seconds),
+                    behind=timedelta(seconds=config.ts_behind_seconds),
+                    fill_behind=timedelta(seconds=config.fill_ts_behind_seconds),
+                )
+        return self._rules_now
+
+    def _by_receipt(self, message: Inbound) -> bool:
+        """Whether the engine takes ``message`` at its receive time (not its own ts)."""
+        return not isinstance(message, Tick) and self._rules() is not None
+
+    def _judge_time(
+        self, record: Record, message: Inbound, received: datetime | None
+    ) -> list[Outbound] | tuple[Inbound, list[Outbound]]:
+        """A message's own ``ts`` judged against its receive time (see "Time" in the module
+        docstring): the line's error when it is refused, else the message and any
+        ``clock_skew`` alert."""
+        rules = self._rules()
+        if rules is None or received is None or isinstance(message, Tick):
+            return message, []
+        fill_like = isinstance(message, FillMessage | FillCorrectionMessage)
+        safety = (isinstance(message, OrderMessage) and message.action == "cancel") or (
+            isinstance(message, ControlMessage) and message.command == "halt"
+        )
+        behind = rules.fill_behind if fill_like else rules.behind
+        stamps = [("ts", message.ts)]
+        if isinstance(message, BinMessage):
+            stamps.append(("end", message.end))
+        problem = None
+        for name, stamp in stamps:
+            if stamp > received + rules.ahead:
+                problem = (
+                    f"{name}: {utc_text(stamp)} is {_seconds(stamp - received)} after the message "
+                    f"was received ({utc_text(received)}); at most "
+                    f"{_seconds(rules.ahead)} ahead is allowed (ts_ahead_seconds)"
+                )
+                break
+            if stamp < received - behind:
+                setting = "fill_ts_behind_seconds" if fill_like else "ts_behind_seconds"
+                problem = (
+                    f"{name}: {utc_text(stamp)} is {_seconds(received - stamp)} before the "
+                    f"message was received ({utc_text(received)}); at most "
+                    f"{_seconds(behind)} behind is allowed ({setting})"
+                )
+                break
+        if problem is None:
+            return message, []
+        if not (fill_like or safety):
+            return self._reject(
+                record.line,
+                record.topic,
+                payload_text(record.payload),
+                f"{problem}. Check the sending machine's clock and send it again with the time "
+                "it was sent",
+                received,
+            )
+        self.skewed += 1
+        order_id = getattr(message, "order_id", None)
+        what = "fill" if fill_like else "cancel" if isinstance(message, OrderMessage) else "halt"
+        alert = rules_event(
+            CLOCK_SKEW,
+            f"A {what} was stamped outside the tolerance around its receive time ({problem}); "
+            "it was applied at its receive time all the same. Check the sending machine's "
+            "clock. Said once per order; the summary counts every such message (clock_skew).",
+            order_id=order_id,
+            symbol=None,
+            ts=received,
+            details={"message_ts": utc_text(message.ts), "received": utc_text(received)},
+        )
+        return message, [alert]
 
     def _remark(self, record: Record, reason: str, when: datetime | None) -> ErrorMessage:
         """An ``info`` error record about an accepted line."""
@@ -338,7 +455,30 @@ class Intake:
             "redelivered": self.redelivered,
             "rejected": self.rejected,
             "ticks_derived": self.ticks_derived,
+            "clock_skew": self.skewed,
         }
+
+
+@dataclass(frozen=True, slots=True)
+class TimeRules:
+    """How far a message's own ``ts`` may stray from its receive time (from the engine's
+    settings ``ts_ahead_seconds``, ``ts_behind_seconds`` and ``fill_ts_behind_seconds``)."""
+
+    ahead: timedelta
+    behind: timedelta
+    fill_behind: timedelta
+
+
+def _seconds(span: timedelta) -> str:
+    """A duration as a person reads it: ``4.0 s``, ``12 min``, ``3.2 h``, ``1,461 days``."""
+    seconds = span.total_seconds()
+    if seconds < 120:
+        return f"{seconds:g} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min"
+    if seconds < 172_800:
+        return f"{seconds / 3600:.1f} h"
+    return f"{seconds / 86_400:,.0f} days"
 
 
 def has_ticks(records: Iterable[Record | BadLine], root: str) -> bool:

@@ -87,7 +87,11 @@ def timeline(entries: Sequence[SetupEntry]) -> list[tuple[int, Setup]]:
                 if entry.kind == "root":
                     root = str(data)
                 elif entry.kind == "engine":
-                    config = EngineConfig.from_mapping(data or {})
+                    settings = dict(data or {})
+                    # Journals written before the receive time became the clock ran on the
+                    # messages' own ts: replay them as they ran.
+                    settings.setdefault("event_time", "message")
+                    config = EngineConfig.from_mapping(settings)
                 elif entry.kind == "profile":
                     if data is None:
                         profiles.pop(entry.name, None)

@@ -28,12 +28,28 @@ class EngineConfig(AlertConfig):
             for its order before it is given up as unassigned (with a critical alert).
         fill_parking_max: At most this many fills wait at once; beyond it the oldest is given
             up first.
+        event_time: Where the engine's clock comes from. ``"receive"`` (the default): the
+            receive time the shell stamps on each record (the daemon's clock, the journal's
+            ``ts``); a message's own ``ts`` is data, judged against it at the intake
+            (:mod:`tracker.edge.intake`) with the tolerances below. ``"message"``: the
+            message's own ``ts``, unchecked -- only for driving a daemon with a recorded day
+            faster than its clock (tests); one mis-stamped message can then move the clock.
+        ts_ahead_seconds: A message's ``ts`` (a bin's ``end`` too) may be at most this much
+            after its receive time: clocks of different machines differ by a little.
+        ts_behind_seconds: An order, control or bin message's ``ts`` (a bin's ``end``) may be at
+            most this much before its receive time.
+        fill_ts_behind_seconds: A fill (or fill correction) stamped more than this before its
+            receive time is still applied -- the shares count -- with a ``clock_skew`` alert.
     """
 
     expiry_grace_seconds: float = 0.0
     default_max_participation: float = 0.25
     fill_parking_seconds: float = 300.0
     fill_parking_max: int = 10_000
+    event_time: str = "receive"
+    ts_ahead_seconds: float = 5.0
+    ts_behind_seconds: float = 900.0
+    fill_ts_behind_seconds: float = 3600.0
 
     def __post_init__(self) -> None:
         super().__post_init__()
@@ -61,6 +77,20 @@ class EngineConfig(AlertConfig):
             raise InputError(
                 f"must be a number of seconds >= 0; got {wait!r}", field="fill_parking_seconds"
             )
+        if self.event_time not in ("receive", "message"):
+            raise InputError(
+                f"must be 'receive' (the shell's receive time, the default) or 'message' (the "
+                f"message's own ts, unchecked); got {self.event_time!r}",
+                field="event_time",
+            )
+        for name in ("ts_ahead_seconds", "ts_behind_seconds", "fill_ts_behind_seconds"):
+            seconds = getattr(self, name)
+            if (
+                isinstance(seconds, bool)
+                or not isinstance(seconds, int | float)
+                or not (math.isfinite(seconds) and seconds >= 0)
+            ):
+                raise InputError(f"must be a number of seconds >= 0; got {seconds!r}", field=name)
         most = self.fill_parking_max
         if isinstance(most, bool) or not isinstance(most, int) or most < 0:
             raise InputError(f"must be a whole number >= 0; got {most!r}", field="fill_parking_max")
