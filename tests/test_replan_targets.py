@@ -218,9 +218,15 @@ def test_an_order_behind_its_baseline_catches_up_over_a_few_bins() -> None:
 
 def test_a_router_that_fills_part_of_its_targets_works_above_the_cap_at_the_cap() -> None:
     """With the order's fill ratio r below 1, a target at the cap asks for the cap's shares
-    (quantity = max_quantity, the contract's bound) and a working rate of cap / r, so that a
-    router filling r of what it works fills the cap; it still executes at most the cap."""
-    recorder = _started(5_000_000)  # the caps cannot carry it: every target is the cap
+    (quantity = max_quantity, the contract's bound) and works the cap for a ratio of r^2, so
+    that a router filling r of what it works, less in its bad bins, still fills the cap; it
+    executes at most the cap all the same."""
+    engine = Engine()
+    recorder = Recorder(engine)
+    recorder.feed(
+        order("A", "X_ZEPH", "buy", 5_000_000, _at(0), _at(390), ts=_at(-30), max_participation=0.2)
+    )
+    recorder.feed(tick(_at(0)))  # the caps cannot carry the order: every target is the cap
     for index in range(8):
         target = _targets(recorder)[-1]
         start = OPEN + index * BIN
@@ -230,10 +236,12 @@ def test_a_router_that_fills_part_of_its_targets_works_above_the_cap_at_the_cap(
         recorder.feed(fill("A", f"F{index}", done, 20.0, ts=when))
         recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=volume, price=20.0))
     target = _targets(recorder)[-1]
-    ratio = target.max_participation / target.participation
+    state = engine._state
+    ratio = fill_ratio(state.orders["A"].fill_ratio, state.symbols["X_ZEPH"].fill_ratio)
+    assert 0.6 < ratio < 1.0  # learnt from bins filled at 0.6, shrunk toward 1
     assert target.quantity == target.max_quantity
-    assert 0.6 < ratio < 0.8  # learnt from 8 bins at 0.6, shrunk toward 1
-    assert target.participation == pytest.approx(working_rate(0.2, ratio))
+    assert target.participation == pytest.approx(working_rate(0.2, ratio * ratio))
+    assert target.participation > 0.2 / ratio
 
 
 @pytest.mark.parametrize(
