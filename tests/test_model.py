@@ -113,6 +113,43 @@ def test_mid_bin_start_scales_first_bin_volume() -> None:
     assert 0.2 * 0.4 * profile.expected_volume[5] == pytest.approx(problem.cap_array[0])
 
 
+def test_the_last_bin_s_cap_can_be_kept_in_reserve() -> None:
+    """last_bin_cap = 0.5 halves the horizon's last cap and leaves the others as they are."""
+    profile = default_profile("X_ZEPH")
+    problem = build_problem(
+        quantity=1.0,
+        first_bin=70,
+        end_bin=78,
+        forecast=forecast(profile, {}),
+        preferences=preferences(),
+        max_participation=0.2,
+        price=PRICE,
+        last_bin_cap=0.5,
+    )
+    expected = 0.2 * profile.expected_volume[70:78]
+    expected[-1] *= 0.5
+    np.testing.assert_allclose(expected, problem.cap_array)
+
+
+@pytest.mark.parametrize(
+    "bad", [0.0, -0.5, 1.5, math.nan], ids=["zero", "negative", "above-one", "nan"]
+)
+def test_a_last_bin_cap_outside_zero_to_one_is_refused_by_name(bad: float) -> None:
+    """last_bin_cap outside (0, 1] raises an InputError naming the field."""
+    with pytest.raises(InputError, match="in \\(0, 1\\]") as caught:
+        build_problem(
+            quantity=1.0,
+            first_bin=70,
+            end_bin=78,
+            forecast=forecast(default_profile("X_ZEPH"), {}),
+            preferences=preferences(),
+            max_participation=0.2,
+            price=PRICE,
+            last_bin_cap=bad,
+        )
+    assert "last_bin_cap" == caught.value.field
+
+
 def test_linear_law_on_flat_liquidity_is_almgren_chriss() -> None:
     """Linear impact, flat liquidity, no spread: the plan is x_j = X sinh(k(N-j)) / sinh(kN)."""
     # Almgren and Chriss (2000), J. Risk 3(2): discrete optimal trajectory with

@@ -14,8 +14,8 @@ import pytest
 
 from tracker.core.engine import Engine
 from tracker.core.engine.learning import PRIOR_BINS, FillRatio, WorkedBin, fill_ratio, learn
-from tracker.core.engine.planning import CATCH_UP
-from tracker.core.forecast import forecast
+from tracker.core.engine.planning import CATCH_UP_BINS, LAST_BIN_CAP, working_rate
+from tracker.core.forecast import ObservedBin, forecast
 from tracker.core.profiles import default_profile
 from tracker.edge.wire import TargetMessage
 from tracker.testing import Recorder, bin_message, fill, order, tick
@@ -133,6 +133,34 @@ def test_a_bin_filled_to_the_cap_is_not_counted() -> None:
     assert FillRatio() == order_ratio
 
 
+@pytest.mark.parametrize(
+    ("volume", "filled", "judged_against"),
+    [(10_000.0, 1_600, 2_000.0), (12_000.0, 2_300, 3_000.0)],
+    ids=["router-reading-the-shares", "router-reading-the-rate"],
+)
+def test_a_bin_worked_above_the_cap_is_judged_by_how_the_router_read_it(
+    volume: float, filled: int, judged_against: float
+) -> None:
+    """A target of 2,000 shares worked at 0.25 with a 0.2 cap: fills within the 2,000 shares are
+    judged against the shares (a router reading them never fills more; against the rate it would
+    seem to fill ever less as the rate grows), fills beyond them against the rate of the real
+    volume."""
+    worked = WorkedBin(
+        index=5,
+        quantity=2_000,
+        participation=0.25,
+        max_participation=0.2,
+        remaining=50_000,
+        filled_at=0,
+    )
+    order_ratio, _ = learn(FillRatio(), FillRatio(), worked, volume, filled)
+    assert (float(filled), judged_against, 1) == (
+        order_ratio.filled,
+        order_ratio.targeted,
+        order_ratio.bins,
+    )
+
+
 def test_targets_grow_when_fills_fall_short() -> None:
     """An order whose targets fill at 70 % asks for more than the same order filled in full at
     the same point of the plan (planned fills over the fill ratio)."""
@@ -153,10 +181,11 @@ def test_targets_grow_when_fills_fall_short() -> None:
     assert rates[1] > rates[0] * 1.1
 
 
-def test_an_order_behind_its_baseline_targets_part_of_the_gap_at_once() -> None:
+def test_an_order_behind_its_baseline_catches_up_over_a_few_bins() -> None:
     """Six bins at half the forecast volume, each target's rate filled in full on the real
-    volume (fill ratio 1): the order is behind its baseline, and the next target is at least
-    CATCH_UP of what it is behind by that bin's end, not all of it."""
+    volume (fill ratio 1): the order is behind its baseline, and the next target is at least the
+    baseline's shares for the bin plus a CATCH_UP_BINS th of what the order is behind (more than
+    the re-plan alone asks), not all of it."""
     engine = Engine()
     recorder = Recorder(engine)
     recorder.feed(
@@ -176,6 +205,79 @@ def test_an_order_behind_its_baseline_targets_part_of_the_gap_at_once() -> None:
         filled += done
         recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=real, price=20.0))
     target = _targets(recorder)[-1]
-    behind = baseline.filled_at + float(baseline.cumulative[6 - baseline.first_bin]) - filled
-    assert target.max_quantity is not None and CATCH_UP * behind < target.max_quantity
-    assert math.floor(CATCH_UP * behind) <= target.quantity < behind
+    before = baseline.filled_at + float(baseline.cumulative[5 - baseline.first_bin])
+    planned = baseline.filled_at + float(baseline.cumulative[6 - baseline.first_bin]) - before
+    behind = before - filled
+    floor = planned + behind / CATCH_UP_BINS
+    replan = engine.plans("A")[0]  # the latest plan first, then the baseline
+    assert 6 == replan.first_bin
+    assert float(replan.cumulative[0]) < floor  # the re-plan alone would spread the gap
+    assert target.max_quantity is not None and floor < target.max_quantity
+    assert math.floor(floor) <= target.quantity < planned + behind
+
+
+def test_a_router_that_fills_part_of_its_targets_works_above_the_cap_at_the_cap() -> None:
+    """With the order's fill ratio r below 1, a target at the cap asks for the cap's shares
+    (quantity = max_quantity, the contract's bound) and works the cap for a ratio of r^2, so
+    that a router filling r of what it works, less in its bad bins, still fills the cap; it
+    executes at most the cap all the same."""
+    engine = Engine()
+    recorder = Recorder(engine)
+    recorder.feed(
+        order("A", "X_ZEPH", "buy", 5_000_000, _at(0), _at(390), ts=_at(-30), max_participation=0.2)
+    )
+    recorder.feed(tick(_at(0)))  # the caps cannot carry the order: every target is the cap
+    for index in range(8):
+        target = _targets(recorder)[-1]
+        start = OPEN + index * BIN
+        volume = round(target.max_quantity / 0.2) if target.max_quantity else 10_000
+        done = math.floor(0.6 * (target.participation or 0.0) * volume)
+        when = (start + BIN - timedelta(seconds=1)).isoformat().replace("+00:00", "Z")
+        recorder.feed(fill("A", f"F{index}", done, 20.0, ts=when))
+        recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=volume, price=20.0))
+    target = _targets(recorder)[-1]
+    state = engine._state
+    ratio = fill_ratio(state.orders["A"].fill_ratio, state.symbols["X_ZEPH"].fill_ratio)
+    assert 0.6 < ratio < 1.0  # learnt from bins filled at 0.6, shrunk toward 1
+    assert target.quantity == target.max_quantity
+    assert target.participation == pytest.approx(working_rate(0.2, ratio * ratio))
+    assert target.participation > 0.2 / ratio
+
+
+@pytest.mark.parametrize(
+    ("cap", "ratio", "expected"),
+    [(0.2, 1.0, 0.2), (0.2, 0.8, 0.25), (0.5, 0.25, 1.0), (0.2, 1.0 / 3.0, 0.6)],
+    ids=["full-fills", "eighty-percent", "never-above-the-volume", "a-third"],
+)
+def test_the_working_rate_is_the_cap_over_the_fill_ratio(
+    cap: float, ratio: float, expected: float
+) -> None:
+    """cap / r, at most 1 (the whole volume) and never below the cap."""
+    assert expected == pytest.approx(working_rate(cap, ratio))
+
+
+def test_the_plan_keeps_half_the_cap_of_the_last_bin_in_reserve() -> None:
+    """An order that needs more than the caps of its last two bins minus half the last one
+    plans LAST_BIN_CAP of the last bin's cap there, and its target in the bin before is the cap
+    (capped shortfall against the reserve); the completion alert, judged on the full caps, stays
+    quiet."""
+    recorder = Recorder(Engine())
+    seen = {index: ObservedBin(12_000.0) for index in range(76)}
+    ahead = forecast(default_profile("X_ZEPH"), seen).volume[76:]  # what the engine forecasts
+    quantity = round(0.2 * (ahead[0] + 0.75 * ahead[1]))  # feasible, not with the reserve
+    recorder.feed(
+        order(
+            "A", "X_ZEPH", "buy", quantity, _at(380), _at(390), ts=_at(370), max_participation=0.2
+        )
+    )
+    for index in range(76):
+        start = OPEN + index * BIN
+        recorder.feed(bin_message("X_ZEPH", start, start + BIN, volume=12_000, price=20.0))
+    target = _targets(recorder)[-1]
+    codes = {getattr(m, "code", None) for m in recorder.outputs}
+    assert LAST_BIN_CAP == 0.5
+    assert (target.max_participation, target.max_quantity) == (
+        target.participation,
+        target.quantity,
+    )
+    assert "completion_infeasible" not in codes

@@ -199,6 +199,7 @@ def build_problem(
     price: float,
     first_fraction: float = 1.0,
     reference_quantity: float | None = None,
+    last_bin_cap: float = 1.0,
 ) -> Problem:
     """The canonical problem for the bins ``first_bin .. end_bin - 1`` of ``forecast``.
 
@@ -215,6 +216,9 @@ def build_problem(
             that bin's volume.
         reference_quantity: The parent order's size, for the scale of a penalty exponent other
             than 2 and of the completion penalty; defaults to ``quantity``.
+        last_bin_cap: Share of the cap the plan may count on in the horizon's last bin, in
+            (0, 1]: below 1 the plan keeps that bin's room in reserve for a close that trades
+            less than forecast (no later bin could absorb the shortfall).
 
     Returns:
         The :class:`~tracker.core.problem.Problem` with ``end_bin - first_bin`` bins.
@@ -238,6 +242,8 @@ def build_problem(
         )
     if not 0 < first_fraction <= 1:
         raise InputError(f"must be in (0, 1]; got {first_fraction!r}", field="first_fraction")
+    if not 0 < last_bin_cap <= 1:
+        raise InputError(f"must be in (0, 1]; got {last_bin_cap!r}", field="last_bin_cap")
     volume = np.maximum(forecast.volume[first_bin:end_bin], 1.0)
     if first_fraction != 1.0:
         volume = volume.copy()
@@ -256,6 +262,8 @@ def build_problem(
     else:
         terminal = float(preferences.completion_penalty) * 1e-4 * price * reference ** (1.0 - p)
     caps = None if max_participation is None else max_participation * volume
+    if caps is not None and last_bin_cap != 1.0:
+        caps[-1] *= last_bin_cap
     # Every value above is derived from checked inputs and forecasts (volume >= 1, price > 0):
     # skip the constructor's checks, a third of the time of this function.
     return Problem.from_arrays(

@@ -11,13 +11,27 @@ Targets a router can scale: each target carries, besides its shares at the forec
 ``participation`` rate they stand for (shares / the bin's forecast volume) and the cap as a rate
 (``max_participation``), so that a router applies them to the volume that really trades. In the
 order's last bin, and when the plan cannot complete under the caps (``capped_shortfall``), the
-rate is the cap: everything the cap of the real volume allows. A target is never less than
-:data:`CATCH_UP` of what the order is behind its baseline.
+target is the cap: everything the cap of the real volume allows, its shares ``max_quantity`` and
+its rate the cap worked for a fill ratio of ``r^2`` (:func:`working_rate`): a router filling
+``r`` of its targets on average fills less in its bad bins (70-100 %, 85 % on average, is as
+wide as it is short of 1), and there every share short of the cap is lost for good.
+
+A target is never less than the baseline plan's shares for its bin plus a :data:`CATCH_UP_BINS`
+th of what the order is behind the baseline when the bin starts: a shortfall is caught up over a
+few bins, not spread over the rest of the day (where it would add timing risk and leave too
+little room at the close) nor dumped into the next bin (the baseline's way, which pays more
+impact).
 
 Plans that expect to fall short: before an order is re-planned at a bin close, the bin's target is
 judged against what filled (:mod:`tracker.core.engine.learning`); with the order's fill ratio
-``r`` the problem caps each bin's fills at ``r x cap x forecast volume`` and the target asks for
-the planned fills over ``r``, never more than the cap.
+``r`` the target asks for the planned fills over ``r``. Its shares (``quantity``) never exceed
+the cap (``max_quantity``); its rate may: a router that fills ``r`` of what it works has to work
+up to ``cap / r`` (:func:`working_rate`) to get the cap's fills, and it executes never more than
+the cap of the real volume. So the plan counts on the full cap for its fills.
+
+The plan keeps a reserve at the close: it counts on :data:`LAST_BIN_CAP` of the cap in the order's
+last bin, where no later bin could absorb a close that trades less than forecast; the last bin's
+target is the cap all the same. The completion alert judges the full caps.
 
 When the last price is beyond an order's limit, the next bin's target is zero and the plan is
 re-solved over the bins after it. A re-plan that cannot be made (the solver fails, or a problem
@@ -48,15 +62,23 @@ from tracker.errors import InputError, TrackerError
 #: first bin of the symbol arrives.
 ASSUMED_SPREAD_BPS = 5.0
 
-#: The target of the bin ahead is at least this share of what the order is behind its baseline
-#: by the end of that bin. A re-plan from the realized inventory spreads a shortfall over the rest
-#: of the day (cheaper on average); catching part of it up at once keeps the order near the
-#: schedule the desk agreed to, so a day whose volume keeps falling short leaves fewer shares and
-#: less timing risk. Measured with ``tracker evaluate`` (300 days, seed 1, five scenarios): 0
-#: gives the lowest mean shortfall but a worse 95 % CVaR than the opening plan with full catch-up
-#: on half-volume, midday-collapse and partial-fill days; 1 matches that CVaR but gives up most of
-#: the mean's gain; 0.5 keeps a significant mean gain in every scenario (README).
-CATCH_UP = 0.5
+#: The target of the bin ahead is at least the baseline's shares for the bin plus what the order
+#: is behind the baseline divided by this: a shortfall is caught up over about this many bins.
+#: A re-plan from the realized inventory alone spreads a shortfall over the rest of the day:
+#: cheaper on average, but the order trails the baseline, which costs on the days the price runs
+#: away (95 % CVaR) and leaves too little room when the volume falls short late. Measured with
+#: ``tracker evaluate`` (100 and 300 days, seed 1, five scenarios; README): half the baseline's
+#: catch-up target as the floor (the earlier rule) kept a mean gain but a CVaR 1.8-2.7 bps worse on
+#: half-volume and partial-fill days; the full catch-up bettered the CVaR and lost the mean gain
+#: (+0.11 +- 0.39 bps on normal days, 100 days); four bins gives a mean at or below the
+#: baseline's in every scenario and a CVaR lower by 1.4-2.5 bps, tied on half-volume days.
+CATCH_UP_BINS = 4
+
+#: Share of the cap the plan counts on in the order's last bin (:func:`build_problem
+#: <tracker.core.formulation.build_problem>`'s ``last_bin_cap``): the close is the plan's last
+#: resort, so it keeps half of it in reserve. Measured (300 days, seed 1): on a day whose last two
+#: bins traded half their forecast, a plan that counted on their full cap left 1.1 % of the order.
+LAST_BIN_CAP = 0.5
 
 
 def horizon(step: Step, order: OrderState, sym: SymbolState, now: datetime) -> tuple[int, float]:
@@ -160,7 +182,6 @@ def plan_jobs(state: EngineState, step: Step) -> list[ReplanJob]:
             step.undo.symbol(sym)
             sym.start_day(order.day)
         learn_fills(step, order, sym)
-        ratio = fill_ratio(order, sym)
         now = state.now(step.ts)
         if sym.stale_at is None:  # watch the feed from when an order works, in session
             step.undo.symbol(sym)
@@ -178,12 +199,11 @@ def plan_jobs(state: EngineState, step: Step) -> list[ReplanJob]:
                     end_bin=order.end_bin,
                     forecast=sym.forecast,
                     preferences=order.prefs,
-                    max_participation=(
-                        None if order.max_participation is None else order.max_participation * ratio
-                    ),
+                    max_participation=order.max_participation,
                     price=price(order, sym),
                     first_fraction=fraction if plan_from == first else 1.0,
                     reference_quantity=float(order.quantity),
+                    last_bin_cap=LAST_BIN_CAP,
                 )
             except InputError as exc:  # never expected: the inputs were checked at the edge
                 step.emit(outputs.replan_failed(order, step.ts, str(exc)))
@@ -238,7 +258,7 @@ def _plan(job: ReplanJob, schedule: Schedule | None, plan_price: float, sym: Sym
             filled_at=order.filled,
             quantity=float(order.remaining),
             status=schedule.status,
-            shortfall=float(schedule.shortfall),
+            shortfall=_full_cap_shortfall(job, schedule),
             expected_cost=float(
                 cost.get("fixed_cost", 0.0)
                 + cost.get("temporary_impact", 0.0)
@@ -266,6 +286,35 @@ def _plan(job: ReplanJob, schedule: Schedule | None, plan_price: float, sym: Sym
     )
 
 
+def _full_cap_shortfall(job: ReplanJob, schedule: Schedule) -> float:
+    """The plan's shortfall under the full caps: the solver's, less the reserve the plan kept in
+    the last bin (:data:`LAST_BIN_CAP`)."""
+    shortfall = float(schedule.shortfall)
+    problem = job.problem
+    if shortfall <= 0 or problem is None or problem.caps is None:
+        return shortfall
+    reserve = float(problem.caps[-1]) * (1.0 / LAST_BIN_CAP - 1.0)
+    return max(shortfall - reserve, 0.0)
+
+
+def working_rate(cap: float, ratio: float) -> float:
+    """The rate a router works to fill the cap ``cap`` at the fill ratio ``ratio``: ``cap /
+    ratio``, never above the whole volume (1) nor below the cap."""
+    return max(cap, min(cap / ratio, 1.0))
+
+
+def catch_up(order: OrderState, first: int) -> float:
+    """The fills bin ``first`` should bring at least: the baseline's shares for the bin plus a
+    :data:`CATCH_UP_BINS` th of what the order is behind the baseline when the bin starts
+    (negative when ahead; nothing without a baseline)."""
+    baseline = order.baseline
+    if baseline is None:
+        return 0.0
+    start = baseline.expected_filled(first - 1 if first > 0 else None)
+    planned = baseline.expected_filled(first) - start
+    return planned + (start - order.filled) / CATCH_UP_BINS
+
+
 def _next_target(
     state: EngineState,
     step: Step,
@@ -276,10 +325,11 @@ def _next_target(
 ) -> TargetMessage | None:
     """The target of the bin ahead under the new plan (None: no bin of the order is left).
 
-    Shares at the forecast volume and the same as a rate of it (``participation``); the rate is
-    the cap in the order's last bin and when the plan cannot complete (module docstring). With a
-    fill ratio ``r`` below 1 the target asks for the planned fills over ``r``, never more than
-    the cap (a target never exceeds ``max_quantity``: the contract's promise to the router).
+    Shares at the forecast volume and the same as a rate of it (``participation``); the target
+    is the cap in the order's last bin and when the plan cannot complete (module docstring).
+    Otherwise the planned fills, at least :func:`catch_up`, over the fill ratio ``r``: the shares
+    never more than the cap (``max_quantity``: the contract's promise to the router), the rate
+    never more than :func:`working_rate`.
     """
     order, first = job.order, job.first
     if first >= sym.profile.session.n_bins or first >= order.end_bin:
@@ -289,23 +339,24 @@ def _next_target(
     if job.fraction != 1.0:
         volume = max(volume * job.fraction, 1.0)
     rate = order.max_participation
-    cap = rate * volume if rate is not None else None
     at_cap = False
     if job.blocked or schedule is None or job.problem is None:
         wanted = 0.0
     elif rate is not None and (schedule.status == CAPPED_SHORTFALL or first == order.end_bin - 1):
-        wanted, at_cap = math.inf, True
+        wanted, at_cap = float(order.remaining), True
     else:
-        wanted = float(schedule.trades[0]) / ratio
-        if order.baseline is not None:  # never less than part of the way back to the baseline
-            behind = order.baseline.expected_filled(first) - order.filled
-            wanted = max(wanted, CATCH_UP * behind / ratio)
-    max_quantity = None if cap is None else math.floor(cap + 1e-9)
-    quantity = min(wanted, float(order.remaining))
-    if max_quantity is not None:
-        quantity = min(quantity, float(max_quantity))
-    quantity = max(0, round(quantity))
-    participation = rate if at_cap else quantity / volume
+        wanted = max(float(schedule.trades[0]), catch_up(order, first)) / ratio
+    wanted = max(min(wanted, float(order.remaining)), 0.0)
+    max_quantity = None if rate is None else math.floor(rate * volume + 1e-9)
+    quantity = round(wanted if max_quantity is None else min(wanted, float(max_quantity)))
+    participation = quantity / volume
+    if rate is not None:
+        working = working_rate(rate, ratio)
+        if at_cap:  # every share the cap allows: worked for the router's bad bins
+            participation = working_rate(rate, ratio * ratio)
+        elif max_quantity is not None and wanted > max_quantity and working > rate:
+            # the cap's shares are the target; a router filling r < 1 of it works more
+            participation = min(wanted / volume, working)
     step.undo.order(order)
     previous = order.worked
     order.worked = learning.WorkedBin(
@@ -393,13 +444,17 @@ def _plan_alerts(
 
 __all__ = [
     "ASSUMED_SPREAD_BPS",
+    "CATCH_UP_BINS",
+    "LAST_BIN_CAP",
     "apply_replan",
     "beyond_limit",
+    "catch_up",
     "fill_ratio",
     "horizon",
     "learn_fills",
     "plan_jobs",
     "price",
     "solve_problems",
+    "working_rate",
     "zero_target",
 ]
