@@ -347,17 +347,24 @@ def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:
 
 
 def payload_text(payload: bytes | str | Mapping[str, Any]) -> str:
-    """The payload as text for an error record, truncated to :data:`MAX_ERROR_PAYLOAD` chars."""
+    """The payload as text for an error record: at most :data:`MAX_ERROR_PAYLOAD` characters of
+    it, followed, when it was longer, by a marker that says so and gives its whole size (bytes
+    for a raw payload, characters for text)."""
     if isinstance(payload, bytes):
-        text = payload.decode("utf-8", errors="replace")
+        # Only the head is decoded: a payload of megabytes costs no more than a short one.
+        text = payload[: 4 * MAX_ERROR_PAYLOAD].decode("utf-8", errors="replace")
+        size, unit = len(payload), "bytes"
     elif isinstance(payload, str):
-        text = payload
+        text, size, unit = payload, len(payload), "characters"
     else:
         try:
             text = json.dumps(payload, sort_keys=True, default=str, allow_nan=True)
         except (TypeError, ValueError):
             text = repr(payload)
-    return text[:MAX_ERROR_PAYLOAD]
+        size, unit = len(text), "characters"
+    if len(text) <= MAX_ERROR_PAYLOAD and size <= 4 * MAX_ERROR_PAYLOAD:
+        return text
+    return f"{text[:MAX_ERROR_PAYLOAD]}... [truncated: {size:,} {unit} in all]"
 
 
 __all__ = [
