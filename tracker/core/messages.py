@@ -308,7 +308,13 @@ def wire_fields(message: Message) -> tuple[str, ...]:
     return _WIRE_FIELDS[type(message)]
 
 
+#: Types written as they are (checked by exact type first: the common case, and no ABC check).
+_AS_IS = frozenset({str, int, bool, type(None)})
+
+
 def _plain(value: Any) -> Any:
+    if type(value) in _AS_IS:
+        return value
     if isinstance(value, datetime):
         return utc_text(value)
     if isinstance(value, float | Mapping | list | tuple):

@@ -529,12 +529,16 @@ class Daemon:
         batch_size = self.settings.batch_size
         while True:
             try:
-                first = await asyncio.wait_for(self.inbox.get(), timeout=0.25)
-            except TimeoutError:
-                if self._draining:
-                    await self._journaled.put(None)
-                    return
-                continue
+                # During a burst the next group is already waiting: no task, no timer for it.
+                first = self.inbox.get_nowait()
+            except asyncio.QueueEmpty:
+                try:
+                    first = await asyncio.wait_for(self.inbox.get(), timeout=0.25)
+                except TimeoutError:
+                    if self._draining:
+                        await self._journaled.put(None)
+                        return
+                    continue
             batch = [first]
             while len(batch) < batch_size:
                 try:
