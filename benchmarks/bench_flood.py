@@ -92,13 +92,13 @@ async def good_stream(
 
 
 def latencies(status: Counter, sent: dict[str, float]) -> list[float]:
-    """Per good fill: from its publication to the first status of its order after it."""
+    """Per good fill (in the order sent): from its publication to its order's next status."""
     out: dict[str, float] = {}
     for at, topic, _ in status.messages:
         order_id = topic.rsplit("/", 1)[1]
         if order_id in sent and order_id not in out and at >= sent[order_id]:
             out[order_id] = at - sent[order_id]
-    return list(out.values())
+    return [out[o] for o in sorted(out, key=lambda o: sent[o])]
 
 
 async def phase(
@@ -128,7 +128,7 @@ async def phase(
 
 async def part_flood(args: argparse.Namespace, folder: Path) -> None:
     orders = order_ids(args.orders)
-    with PrivateMosquitto(folder / "mosquitto-flood") as broker:
+    with PrivateMosquitto(folder / "mosquitto-flood", max_inflight=args.inflight) as broker:
         daemon = Daemon(folder, broker.url, args.repo)
         daemon.start()
         try:
@@ -152,6 +152,9 @@ async def part_flood(args: argparse.Namespace, folder: Path) -> None:
                 published_errors = len(errors.times)
         finally:
             daemon.stop()
+    if args.verbose:
+        print("no flood, ms:", " ".join(f"{1e3 * x:.0f}" for x in calm))
+        print("flood, ms:", " ".join(f"{1e3 * x:.0f}" for x in stormy))
     print(
         f"good fills, no flood: p50 {1e3 * pct(calm, 0.5):.0f} ms, p99 "
         f"{1e3 * pct(calm, 0.99):.0f} ms ({len(calm)} of {calm_count} fills)",
@@ -212,6 +215,10 @@ def main() -> None:
     parser.add_argument("--orders", type=int, default=400, help="good fills go one per order")
     parser.add_argument("--flood", type=int, default=10_000)
     parser.add_argument("--payload-mb", type=int, default=100)
+    parser.add_argument("--verbose", action="store_true", help="print every latency")
+    parser.add_argument(
+        "--inflight", type=int, help="Mosquitto max_inflight_messages (default: the shipped one)"
+    )
     parser.add_argument(
         "--repo", type=Path, default=HERE.parent, help="source tree of the daemon to run"
     )

@@ -104,7 +104,7 @@ class Daemon:
                 "--instance",
                 "bench",
                 "--clock-start",
-                iso(DAY - timedelta(minutes=2)),
+                iso(BURST_AT),  # the orders are working from the start; fills are stamped now
                 "--log-format",
                 "json",
                 "--log-level",
@@ -388,7 +388,9 @@ def main() -> None:
     parser.add_argument("--kill-rate", type=float, default=1_000.0, help="fills/s meanwhile")
     parser.add_argument("--down", type=float, default=5.0, help="seconds the daemon is down")
     parser.add_argument("--durability", choices=("full", "normal"), default="full")
-    parser.add_argument("--inflight", type=int, default=20, help="Mosquitto max_inflight_messages")
+    parser.add_argument(
+        "--inflight", type=int, help="Mosquitto max_inflight_messages (default: the shipped one)"
+    )
     parser.add_argument("--sequence", metavar="SOURCE", help="stamp fills with source and seq")
     parser.add_argument(
         "--repo", type=Path, default=HERE.parent, help="source tree of the daemon to run"

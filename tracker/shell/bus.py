@@ -44,6 +44,7 @@ import contextlib
 import functools
 import json
 import random
+import socket
 import ssl
 import uuid
 from collections.abc import Callable, Iterable, Sequence
@@ -436,6 +437,7 @@ class Bus:
         self._give_up.set()
 
     async def _serve(self, client: aiomqtt.Client) -> None:
+        _no_delay(client)
         filters = [*self.subscriptions, self.health_topic]
         await client.subscribe([(topic, 1) for topic in filters])
         await client.publish(self.health_topic, self._online(), qos=1, retain=True)
@@ -634,6 +636,20 @@ class Bus:
         while True:
             await asyncio.sleep(self.heartbeat_seconds)
             await client.publish(self.health_topic, self._online(), qos=1, retain=True)
+
+
+def _no_delay(client: aiomqtt.Client) -> None:
+    """Send small packets at once (TCP_NODELAY), as latency-bound messaging commonly does.
+
+    Without it, Nagle's algorithm holds a PUBACK or a status message back until the broker's
+    delayed acknowledgement of the previous packet (about 40 ms on Linux): good fills then came
+    back in steps of 20-40 ms even with nothing else to do (``benchmarks/bench_flood.py``).
+    """
+    sock = client._client.socket()
+    if not isinstance(sock, socket.socket) or sock.family not in (socket.AF_INET, socket.AF_INET6):
+        return  # a websocket or a test double: nothing to set
+    with contextlib.suppress(OSError):
+        sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 
 
 def _acknowledge(client: aiomqtt.Client, qos: int, mid: int) -> None:
