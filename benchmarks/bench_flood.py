@@ -40,9 +40,9 @@ sys.path.insert(0, str(HERE))
 sys.path.insert(0, str(HERE.parent))
 
 from bench_daemon import ROOT, Counter, blast, iso, order_ids, pct  # noqa: E402
-from bench_ingest import BURST_AT, Daemon, prepare, wait_online  # noqa: E402
+from bench_ingest import BURST_AT, Daemon, prepare, shipped, wait_online  # noqa: E402
 
-from tests.brokers import PrivateMosquitto, contract_lines  # noqa: E402
+from tests.brokers import PrivateMosquitto  # noqa: E402
 
 GOOD_EVERY = 0.020  # seconds between good fills
 
@@ -128,7 +128,9 @@ async def phase(
 
 async def part_flood(args: argparse.Namespace, folder: Path) -> None:
     orders = order_ids(args.orders)
-    with PrivateMosquitto(folder / "mosquitto-flood", max_inflight=args.inflight) as broker:
+    with PrivateMosquitto(
+        folder / "mosquitto-flood", max_inflight=args.inflight, contract=shipped(args)
+    ) as broker:
         daemon = Daemon(folder, broker.url, args.repo)
         daemon.start()
         try:
@@ -170,7 +172,7 @@ async def part_flood(args: argparse.Namespace, folder: Path) -> None:
 
 
 async def part_memory(args: argparse.Namespace, folder: Path) -> None:
-    contract = [line for line in contract_lines() if not line.startswith("max_packet_size")]
+    contract = [line for line in shipped(args) if not line.startswith("max_packet_size")]
     with PrivateMosquitto(folder / "mosquitto-memory", contract=contract) as broker:
         daemon = Daemon(folder, broker.url, args.repo)
         daemon.start()

@@ -68,6 +68,11 @@ from tests.brokers import PrivateMosquitto, contract_lines  # noqa: E402
 BURST_AT = DAY + timedelta(minutes=1)
 
 
+def shipped(args: argparse.Namespace) -> list[str]:
+    """The contract lines of the daemon's own tree (``--repo``): its broker as it ships it."""
+    return contract_lines(args.repo / "deploy" / "mosquitto.conf")
+
+
 class Daemon:
     """``python -m tracker run`` from a given source tree, in its own process."""
 
@@ -234,7 +239,9 @@ async def part_rate(args: argparse.Namespace, folder: Path) -> dict[str, float]:
     raw = fill_messages(orders, args.fills, 0, BURST_AT, root=RAW_ROOT)
     fills = stamped(fill_messages(orders, args.fills, 0, BURST_AT), args.sequence)
     figures: dict[str, float] = {}
-    with PrivateMosquitto(folder / "mosquitto-rate", max_inflight=args.inflight) as broker:
+    with PrivateMosquitto(
+        folder / "mosquitto-rate", max_inflight=args.inflight, contract=shipped(args)
+    ) as broker:
         daemon = Daemon(folder, broker.url, args.repo, args.durability)
         daemon.start()
         try:
@@ -360,7 +367,7 @@ async def kill_loss(args: argparse.Namespace, folder: Path, contract: list[str] 
 
 
 async def part_loss(args: argparse.Namespace, folder: Path) -> None:
-    for name, contract in (("shipped", contract_lines()), ("stock", [])):
+    for name, contract in (("shipped", shipped(args)), ("stock", [])):
         for what in (burst_loss, kill_loss):
             sub = folder / f"{name}-{what.__name__}"
             sub.mkdir()

@@ -21,13 +21,14 @@ Outbound: :class:`TargetMessage`, :class:`StatusMessage`, :class:`AlertMessage` 
 
 from __future__ import annotations
 
+import functools
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from datetime import datetime
 from typing import Any, ClassVar, Literal
 
-from tracker.core.formats import rounded, utc_text
+from tracker.core.formats import FLOAT_DECIMALS, rounded, utc_text
 
 Side = Literal["buy", "sell"]
 Severity = Literal["info", "warning", "critical"]
@@ -313,13 +314,28 @@ _AS_IS = frozenset({str, int, bool, type(None)})
 
 
 def _plain(value: Any) -> Any:
-    if type(value) in _AS_IS:
+    kind = type(value)
+    if kind in _AS_IS:
         return value
+    if kind is float:  # rounded(value), inline: an output carries a dozen floats
+        if value - value != 0.0:  # NaN or an infinity
+            return None
+        result = round(value, FLOAT_DECIMALS)
+        return result if result != 0 else 0.0
+    if kind is datetime:
+        return _utc_text(value)
     if isinstance(value, datetime):
         return utc_text(value)
     if isinstance(value, float | Mapping | list | tuple):
         return rounded(value)
     return value
+
+
+@functools.lru_cache(maxsize=4096)
+def _utc_text(moment: datetime) -> str:
+    """:func:`utc_text` remembered: the outputs of one journal group share their times. (Two
+    aware datetimes that are equal are the same instant, so they have the same UTC text.)"""
+    return utc_text(moment)
 
 
 def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:

@@ -34,6 +34,9 @@ asks it to stop reading, flush the outbox (within a timeout), publish ``offline`
 
 Manual acknowledgement uses paho's ``manual_ack`` through aiomqtt's inner client (aiomqtt 2.x has
 no public switch for it yet; see aiomqtt issue #345, "Application-controlled acknowledgements").
+For speed the reader also takes paho's ``on_message`` callback (and aiomqtt 2.x's private
+``_queue`` and ``_disconnected``), and the connection's socket is set to TCP_NODELAY: see
+:meth:`Bus._read` and :func:`_no_delay`.
 """
 
 from __future__ import annotations

@@ -545,12 +545,17 @@ class Daemon:
                     batch.append(self.inbox.get_nowait())
                 except asyncio.QueueEmpty:
                     break
+            del first  # the group is in ``batch``; it goes once journaled (see below)
             try:
                 records = await self._commit(batch)
             except JournalError as exc:
                 self._journal_failed(exc)
                 await self._journaled.put(None)
                 return
+            # Journaled: what was received is in ``records`` now (a payload over the size limit
+            # only as its short note), so the deliveries go -- a 100 MB payload is not held
+            # until the next message comes.
+            batch.clear()
             await self._journaled.put(records)
 
     def _journal_failed(self, exc: JournalError) -> None:
