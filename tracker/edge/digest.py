@@ -268,7 +268,8 @@ class ErrorDigest:
             f"{'the same reason' if name != _OTHER else 'other reasons'} ({lines}{times}) were "
             f"counted here instead of one error record each: the first {self.full_per_class} "
             f"of each topic kind and reason in {seconds:g} s are published in full, so that a "
-            f"flood of bad messages cannot delay good ones; the journal keeps every message. "
+            f"flood of bad messages cannot delay good ones; the journal (or recording) keeps every "
+            f"message. "
             f"The last one: {example.reason}"
         )
         return _capped(replace(example, reason=reason, line=held.last_line))
