@@ -67,7 +67,7 @@ def order_ids(count: int) -> list[str]:
 
 
 def symbol_of(order_id: str, count_symbols: int = 50) -> str:
-    return SYMBOLS[int(order_id[4:]) % count_symbols]
+    return SYMBOLS[int(order_id.rsplit("-", 1)[1]) % count_symbols]
 
 
 def order_message(order_id: str) -> tuple[str, bytes]:

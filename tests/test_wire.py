@@ -345,9 +345,15 @@ def test_topics_of_outbound_messages() -> None:
 
 
 def test_error_payload_is_truncated() -> None:
-    """Raw payloads kept for error records are cut to the documented length."""
-    expected = MAX_ERROR_PAYLOAD
-    assert expected == len(payload_text("x" * 5_000))
+    """Raw payloads kept for error records are cut to the documented length, and say so."""
+    expected = "x" * MAX_ERROR_PAYLOAD + "... [truncated: 5,000 characters in all]"
+    assert expected == payload_text("x" * 5_000)
+
+
+def test_error_payload_of_bytes_gives_the_size_in_bytes() -> None:
+    """A raw payload of 100 MB is cut without decoding it all, and its size is given in bytes."""
+    expected = "y" * MAX_ERROR_PAYLOAD + "... [truncated: 100,000,000 bytes in all]"
+    assert expected == payload_text(b"y" * 100_000_000)
 
 
 def test_amend_carries_the_fields_it_set() -> None:

@@ -28,8 +28,10 @@ taking messages, finish those in hand, flush, publish offline, exit 0.
 The broker must keep the daemon's session: persistence on, no limit on queued messages
 (max_queued_messages 0, max_queued_bytes 0) and a packet size limit (max_packet_size). A stock
 Mosquitto keeps only 1,000 messages for a client that is away or slow and drops the rest while
-their senders believe them delivered: fills are then lost. The repository's
-deploy/mosquitto.conf holds these settings, each with what breaks without it.
+their senders believe them delivered: fills are then lost. It also hands the daemon only 20
+unacknowledged messages at a time (max_inflight_messages 1000 lifts that) and delays small packets
+(set_tcp_nodelay true). The repository's deploy/mosquitto.conf holds these settings, each with
+what breaks without it.
 
 Every setting can also come from an environment variable (TRACKER_BROKER, TRACKER_ROOT,
 TRACKER_JOURNAL, TRACKER_PROFILES, TRACKER_INSTANCE, TRACKER_BROKER_USERNAME,

@@ -34,12 +34,15 @@ def rounded(value: Any, digits: int = FLOAT_DECIMALS) -> Any:
     A non-finite float becomes ``None``, ``-0.0`` becomes ``0.0``; mappings are returned as dicts
     with sorted keys, lists and tuples as lists; anything else is returned as it is.
     """
+    kind = type(value)
+    if kind is str or kind is int or kind is bool or value is None:
+        return value  # the common case, answered before the slower isinstance checks
     if isinstance(value, float):
         if not math.isfinite(value):
             return None
         result = round(value, digits)
         return 0.0 if result == 0 else result
-    if isinstance(value, Mapping):
+    if kind is dict or isinstance(value, Mapping):
         return {key: rounded(value[key], digits) for key in sorted(value)}
     if isinstance(value, list | tuple):
         return [rounded(item, digits) for item in value]

@@ -21,13 +21,14 @@ Outbound: :class:`TargetMessage`, :class:`StatusMessage`, :class:`AlertMessage` 
 
 from __future__ import annotations
 
+import functools
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from datetime import datetime
 from typing import Any, ClassVar, Literal
 
-from tracker.core.formats import rounded, utc_text
+from tracker.core.formats import FLOAT_DECIMALS, rounded, utc_text
 
 Side = Literal["buy", "sell"]
 Severity = Literal["info", "warning", "critical"]
@@ -308,12 +309,33 @@ def wire_fields(message: Message) -> tuple[str, ...]:
     return _WIRE_FIELDS[type(message)]
 
 
+#: Types written as they are (checked by exact type first: the common case, and no ABC check).
+_AS_IS = frozenset({str, int, bool, type(None)})
+
+
 def _plain(value: Any) -> Any:
+    kind = type(value)
+    if kind in _AS_IS:
+        return value
+    if kind is float:  # rounded(value), inline: an output carries a dozen floats
+        if value - value != 0.0:  # NaN or an infinity
+            return None
+        result = round(value, FLOAT_DECIMALS)
+        return result if result != 0 else 0.0
+    if kind is datetime:
+        return _utc_text(value)
     if isinstance(value, datetime):
         return utc_text(value)
     if isinstance(value, float | Mapping | list | tuple):
         return rounded(value)
     return value
+
+
+@functools.lru_cache(maxsize=4096)
+def _utc_text(moment: datetime) -> str:
+    """:func:`utc_text` remembered: the outputs of one journal group share their times. (Two
+    aware datetimes that are equal are the same instant, so they have the same UTC text.)"""
+    return utc_text(moment)
 
 
 def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:
@@ -347,17 +369,24 @@ def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:
 
 
 def payload_text(payload: bytes | str | Mapping[str, Any]) -> str:
-    """The payload as text for an error record, truncated to :data:`MAX_ERROR_PAYLOAD` chars."""
+    """The payload as text for an error record: at most :data:`MAX_ERROR_PAYLOAD` characters of
+    it, followed, when it was longer, by a marker that says so and gives its whole size (bytes
+    for a raw payload, characters for text)."""
     if isinstance(payload, bytes):
-        text = payload.decode("utf-8", errors="replace")
+        # Only the head is decoded: a payload of megabytes costs no more than a short one.
+        text = payload[: 4 * MAX_ERROR_PAYLOAD].decode("utf-8", errors="replace")
+        size, unit = len(payload), "bytes"
     elif isinstance(payload, str):
-        text = payload
+        text, size, unit = payload, len(payload), "characters"
     else:
         try:
             text = json.dumps(payload, sort_keys=True, default=str, allow_nan=True)
         except (TypeError, ValueError):
             text = repr(payload)
-    return text[:MAX_ERROR_PAYLOAD]
+        size, unit = len(text), "characters"
+    if len(text) <= MAX_ERROR_PAYLOAD and size <= 4 * MAX_ERROR_PAYLOAD:
+        return text
+    return f"{text[:MAX_ERROR_PAYLOAD]}... [truncated: {size:,} {unit} in all]"
 
 
 __all__ = [

@@ -38,11 +38,16 @@ Limits at the edge: a payload over ``max_payload_bytes`` is journaled as a short
 (not as JSON, so it is rejected, live and in replay alike, and its error record tells the sender
 what happened); ids are checked by :func:`tracker.edge.wire.decode` before any is used in a topic
 name; the inbox and the outbox are bounded and wait (back-pressure, logged and shown in the health
-message) rather than grow.
+message) rather than grow. A flood of bad messages costs at most ten error records (a publication
+and a log line each) per topic kind and reason in each ten seconds of receive time, plus one
+record with the count of the rest: the outputs of every record pass through
+:class:`tracker.edge.digest.ErrorDigest`, exactly as in a replay.
 
 Stopping (SIGTERM / SIGINT through :meth:`Daemon.stop`): stop taking messages, finish those in the
-inbox, wait for the outbox to be confirmed (``flush_seconds``), publish ``offline`` on the retained
-health topic, disconnect, write the summary, close the journal.
+inbox, journal and apply one more tick when the error digest holds records back (so their count
+is published, and a replay of the journal counts them at the same place), wait for the outbox to
+be confirmed (``flush_seconds``), publish ``offline`` on the retained health topic, disconnect,
+write the summary, close the journal.
 """
 
 from __future__ import annotations
@@ -65,6 +70,7 @@ import structlog
 from tracker.core import alerts as rules
 from tracker.core.formats import utc_text
 from tracker.core.topics import Topics
+from tracker.edge.digest import ErrorDigest
 from tracker.edge.intake import EngineLike, Intake
 from tracker.edge.records import Record
 from tracker.edge.wire import (
@@ -212,6 +218,7 @@ class Daemon:
         self._lock_file: IO[str] | None = None
         self._journal: Journal | None = None
         self._intake: Intake | None = None
+        self._digest = ErrorDigest(settings.root)  # thins out floods of error records
         self._clock: _Clock | None = None
         self._unconfirmed: dict[int, int] = {}  # journal seq -> outputs not yet confirmed
         self._applied = 0
@@ -474,6 +481,7 @@ class Daemon:
             self._draining = True
             await _within(journaler, STAGE_SECONDS, self._log, "journaling the inbox")
             await _within(applier, STAGE_SECONDS, self._log, "applying the journaled")
+            await self._close_digest(finished=not (journaler.cancelled() or applier.cancelled()))
             # 3. flush: wait for the broker to confirm every output
             if not await self.outbox.wait_empty(FLUSH_SECONDS):
                 self._log.warning(
@@ -521,24 +529,33 @@ class Daemon:
         batch_size = self.settings.batch_size
         while True:
             try:
-                first = await asyncio.wait_for(self.inbox.get(), timeout=0.25)
-            except TimeoutError:
-                if self._draining:
-                    await self._journaled.put(None)
-                    return
-                continue
+                # During a burst the next group is already waiting: no task, no timer for it.
+                first = self.inbox.get_nowait()
+            except asyncio.QueueEmpty:
+                try:
+                    first = await asyncio.wait_for(self.inbox.get(), timeout=0.25)
+                except TimeoutError:
+                    if self._draining:
+                        await self._journaled.put(None)
+                        return
+                    continue
             batch = [first]
             while len(batch) < batch_size:
                 try:
                     batch.append(self.inbox.get_nowait())
                 except asyncio.QueueEmpty:
                     break
+            del first  # the group is in ``batch``; it goes once journaled (see below)
             try:
                 records = await self._commit(batch)
             except JournalError as exc:
                 self._journal_failed(exc)
                 await self._journaled.put(None)
                 return
+            # Journaled: what was received is in ``records`` now (a payload over the size limit
+            # only as its short note), so the deliveries go -- a 100 MB payload is not held
+            # until the next message comes.
+            batch.clear()
             await self._journaled.put(records)
 
     def _journal_failed(self, exc: JournalError) -> None:
@@ -576,13 +593,14 @@ class Daemon:
         assert self._clock is not None
         ts = format_ts(self._clock())
         rows: list[tuple[str, bytes, str]] = []
+        deliveries = 0
         for item in batch:
             if isinstance(item, _TickRequest):
                 tick = Tick(ts=_parse_ts(ts))
                 rows.append((self.topics.tick, encode(tick), ts))
             else:
                 rows.append((item.topic, self._limited(item), ts))
-                self.received += 1
+                deliveries += 1
         # The commit (an fsync with durability "full") runs in a worker thread: meanwhile the
         # loop keeps reading, so the next group is larger when the disk is slow (group commit).
         seqs = await asyncio.to_thread(
@@ -592,6 +610,7 @@ class Daemon:
             logged_through=self._applied,
         )
         self.commits += 1
+        self.received += deliveries  # journaled: counted only now (tests wait on it)
         for item in batch:
             if isinstance(item, Delivery):
                 item.ack()
@@ -625,15 +644,39 @@ class Daemon:
                 await asyncio.sleep(0)
                 yielded = _time.perf_counter()
 
+    async def _close_digest(self, *, finished: bool) -> None:
+        """On a stop: publish what the error digest holds back, through a journaled tick.
+
+        The tick closes the digest's interval (see :mod:`tracker.edge.digest`); being journaled,
+        it closes it at the same place in a replay, and after a restart nothing is counted twice.
+        ``finished``: both stages ended on their own (a stage cancelled on its timeout may leave a
+        commit running in its thread: then nothing more is journaled).
+        """
+        if not self._digest.holding:
+            return
+        if self._journal_broken or not finished:
+            self._log.warning(
+                "error records held back by the digest are not published now; a replay of the "
+                "journal counts them",
+                **self._digest.counts(),
+            )
+            return
+        try:
+            records = await self._commit([_TICK])
+        except JournalError as exc:
+            self._journal_failed(exc)
+            return
+        await self._apply(records)
+
     def _limited(self, delivery: Delivery) -> bytes:
-        """The payload to journal: as received, or a note when it is over the size limit."""
+        """The payload to journal: as received, or a note when it is over the size limit.
+
+        Not logged here: its error record says so (and the error digest keeps a flood of them
+        from costing a log line each)."""
         limit = self.settings.max_payload_bytes
         size = len(delivery.payload)
         if size <= limit:
             return delivery.payload
-        self._log.warning(
-            "payload over the size limit", topic=delivery.topic, size=size, limit=limit
-        )
         head = delivery.payload[:120].decode("utf-8", errors="replace")
         # Not JSON on purpose: it is refused as "too large" (live and in replay alike).
         return oversize_note(size, limit, head)
@@ -675,6 +718,10 @@ class Daemon:
                     record.topic, payload, reason, _parse_ts(record.ts or "")
                 )
                 results.append([dataclasses.replace(error, line=record.line)])
+        # Error records thinned out per topic kind, reason and interval of receive time, exactly
+        # as a replay of the journal does (a flood of bad messages must not delay good ones).
+        digest = self._digest
+        results = [digest.admit(record, out) for record, out in zip(run, results, strict=True)]
         for record, outputs in zip(run, results, strict=True):
             self._report(record, outputs)
         return results

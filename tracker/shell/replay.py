@@ -1,7 +1,9 @@
 """Replay: run the engine on a whole recording, deterministically, and write what it said.
 
 :func:`replay` feeds every record of a recording through :class:`~tracker.edge.intake.Intake` (the
-same admission the live daemon uses) and collects the outputs; :func:`write_outputs` writes them.
+same admission the live daemon uses) and :class:`~tracker.edge.digest.ErrorDigest` (which thins a
+flood of error records out into counts, as the daemon does) and collects the outputs;
+:func:`write_outputs` writes them.
 Determinism: nothing here reads the clock or iterates over an unordered container, so the same input
 gives the same outputs, and :func:`write_outputs` writes them byte for byte the same.
 """
@@ -18,6 +20,7 @@ from typing import Any
 
 from tracker.core.formats import utc_text
 from tracker.core.topics import DEFAULT_ROOT
+from tracker.edge.digest import ErrorDigest
 from tracker.edge.intake import DEFAULT_TICK_SECONDS, EngineLike, Intake, has_ticks
 from tracker.edge.recordings import BadLine, parse_ts_or_none, read_jsonl
 from tracker.edge.records import Record
@@ -53,8 +56,9 @@ class ReplayResult:
 
     Attributes:
         targets, alerts, status, errors, acks: The engine's outputs by kind (errors also hold
-            the lines the intake rejected and its remarks), each ErrorMessage with ``line`` set;
-            acks the one reply to each order message.
+            the lines the intake rejected and its remarks, thinned out by the error digest into
+            summaries during a flood), each ErrorMessage with ``line`` set; acks the one reply to
+            each order message.
         summary: :meth:`Engine.summary` after the last line, plus a ``replay`` block of counts.
     """
 
@@ -122,6 +126,7 @@ def replay(
         tick_seconds=tick_seconds,
         check_time=check_time,
     )
+    digest = ErrorDigest(root)
     result = ReplayResult()
     chunk = 2048
     # What a chunk leaves behind (the engine's state, the outputs) lives until the replay ends,
@@ -138,12 +143,10 @@ def replay(
                 cut = next((i for i, line in enumerate(block) if line.line > pending[0][0]), None)
                 if cut is None:
                     break
-                for outputs in intake.feed_many(block[:cut]):
-                    result.add(outputs)
+                _feed(intake, digest, block[:cut], result)
                 pending.pop(0)[1]()
                 block = block[cut:]
-            for outputs in intake.feed_many(block):
-                result.add(outputs)
+            _feed(intake, digest, block, result)
             if freeze:
                 gc.freeze()
             if progress is not None and start + chunk < len(lines):
@@ -151,10 +154,19 @@ def replay(
     finally:
         if freeze:
             gc.unfreeze()
+    result.add(digest.close())  # what the last interval held back
     if progress is not None:
         progress(len(lines))
     result.summary = finish_summary(engine, intake)
     return result
+
+
+def _feed(
+    intake: Intake, digest: ErrorDigest, block: Sequence[Record | BadLine], result: ReplayResult
+) -> None:
+    """Feed lines to the intake and file what the digest lets through of their outputs."""
+    for record, outputs in zip(block, intake.feed_many(block), strict=True):
+        result.add(digest.admit(record, outputs))
 
 
 def sort_by_time(lines: list[Record | BadLine]) -> list[Record | BadLine]:
