@@ -24,6 +24,8 @@ Every setting can come from three places; the first that gives it wins:
        tick_seconds = 1.0                    # staleness timer; 0 turns it off
        max_payload_bytes = 65536
        queue_size = 1000
+       snapshot_records = 10000              # a snapshot of the state every so many records
+       snapshot_seconds = 900                # ... or this often (seconds) when records came
 
        [engine]                              # thresholds, passed to EngineConfig.from_mapping
        ...
@@ -102,6 +104,8 @@ _DAEMON_KEYS = frozenset(
         "clock_start",
         "clock_speed",
         "summary",
+        "snapshot_records",
+        "snapshot_seconds",
     }
 )
 
@@ -182,6 +186,10 @@ class Settings:
             ``clock_speed`` times real time. ``None``: the wall clock (UTC).
         engine: The ``[engine]`` table, for :meth:`EngineConfig.from_mapping`.
         summary: Where to write ``summary.json`` on a clean stop (``None``: not written).
+        snapshot_records: Store a snapshot of the engine's state in the journal after every so
+            many journal records (0: never), so that a restart replays at most about that many.
+        snapshot_seconds: Also store one when this many wall-clock seconds have passed since the
+            last and records came meanwhile (0: only by count). A clean stop stores one too.
     """
 
     journal: Path
@@ -201,6 +209,8 @@ class Settings:
     clock_speed: float = 1.0
     engine: Mapping[str, Any] = field(default_factory=dict)
     summary: Path | None = None
+    snapshot_records: int = 10_000
+    snapshot_seconds: float = 900.0
 
     @property
     def client_id(self) -> str:
@@ -502,4 +512,10 @@ def load_settings(
         clock_speed=number("clock_speed", defaults.clock_speed, minimum=1e-6),
         engine=dict(file_data.get("engine", {})),
         summary=None if summary is None else _path(summary, "daemon.summary"),
+        snapshot_records=number(
+            "snapshot_records", defaults.snapshot_records, minimum=1, integer=True, allow_zero=True
+        ),
+        snapshot_seconds=number(
+            "snapshot_seconds", defaults.snapshot_seconds, minimum=1, allow_zero=True
+        ),
     )

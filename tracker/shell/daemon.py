@@ -79,9 +79,10 @@ from tracker.edge.wire import (
     topic_of,
 )
 from tracker.errors import InputError
+from tracker.shell import snapshot
 from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
 from tracker.shell.config import Settings
-from tracker.shell.journal import Journal, JournalError
+from tracker.shell.journal import Journal, JournalError, SnapshotInfo
 from tracker.shell.replay import dumps_summary, finish_summary
 from tracker.shell.setup import Setup, apply, entries_of, removed_profiles, timeline
 
@@ -242,6 +243,10 @@ class Daemon:
         self.failure: InputError | None = None
         self._journal_broken = False
         self._logged_through = 0  # journal seq up to which outputs were logged before a restart
+        #: The journal seq of the snapshot the state was restored from (``None``: none used).
+        self.restored_from: int | None = None
+        self._snapshot_seq = 0  # the journal seq of the latest snapshot (restored or stored)
+        self._snapshot_taken = _time.monotonic()
 
     # -- lifecycle -------------------------------------------------------------------------------
 
@@ -261,14 +266,16 @@ class Daemon:
                 else build_engine(self.settings)
             )
             self.engine: EngineLike = engine
-            # The profiles this run was given (the engine may be switched to journaled ones).
+            # What this run was given (the engine is switched to the journaled setup, or
+            # replaced by a snapshot's, while it recovers; then to this, if it differs).
             self._profiles = dict(getattr(engine, "profiles", {}))
+            self._config = getattr(engine, "config", None)
             self._intake = Intake(engine, root=self.root, derive_ticks=False)
             floor = _parse_ts(self._journal.last_ts) if self._journal.last_ts else None
             self._clock = _Clock(self.settings, floor, self._clock_source)
-            later = self._journaled_setup(engine)
-            self._recover(later)
-            self._describe_setup(engine)
+            described = self._journaled_setup(engine)
+            self._recover(described)
+            self._describe_setup()
         except BaseException:
             self._close_journal()
             self._unlock()
@@ -284,6 +291,12 @@ class Daemon:
         try:
             if self._journal is not None and not self._journal_broken:
                 self._journal.mark_published(self.published_through, logged=self._applied)
+                fresh = self._applied > self._snapshot_seq
+                if self._snapshots_on and self.stopped_cleanly and fresh:
+                    try:  # the next start then replays nothing
+                        self._store_snapshot("stop")
+                    except JournalError as error:
+                        self._log.warning("snapshot not stored", error=str(error))
             if exc_type is None and self.settings.summary is not None:
                 self.write_summary(self.settings.summary)
         finally:
@@ -379,15 +392,20 @@ class Daemon:
 
     # -- recovery --------------------------------------------------------------------------------
 
-    def _journaled_setup(self, engine: EngineLike) -> list[tuple[int, Setup]]:
-        """Put the engine in the setup the journal started with; return its later setups.
+    def _journaled_setup(self, engine: EngineLike) -> list[tuple[int, Setup, int]]:
+        """The setups the journal describes, checked against this run's root.
+
+        Returns:
+            ``(after_seq, setup, last entry id)`` per setup, oldest first; empty for an engine
+            of a test that cannot say what it runs with.
 
         Raises:
             InputError: the journal was written under another topic root.
         """
         if not hasattr(engine, "reconfigure"):
             return []  # an engine of a test that cannot say what it runs with
-        described = timeline(self.journal.setup())
+        entries = self.journal.setup()
+        described = timeline(entries)
         if not described:
             return []
         first = described[0][1]
@@ -398,32 +416,42 @@ class Daemon:
                 "--journal",
                 field="root",
             )
-        apply(engine, first)
-        return described[1:]
+        return [
+            (after, setup, max(entry.id for entry in entries if entry.after_seq <= after))
+            for after, setup in described
+        ]
 
-    def _describe_setup(self, engine: EngineLike) -> None:
-        """Journal what this run uses (only what changed), and run on with it from here."""
-        config = getattr(engine, "config", None)
-        if not hasattr(engine, "reconfigure") or config is None:
+    def _describe_setup(self) -> None:
+        """Journal what this run was given (only what changed), and run on with it from here."""
+        config = self._config
+        if not hasattr(self.engine, "reconfigure") or config is None:
             return
         assert self._clock is not None
         current = Setup(self.root, config, self._profiles)
         entries = entries_of(current) + removed_profiles(self.journal.setup(), current)
         if self.journal.describe(entries, format_ts(self._clock())):
-            apply(engine, current)
+            apply(self.engine, current)
 
-    def _recover(self, later: list[tuple[int, Setup]] | None = None) -> None:
-        """Replay the journal into the engine; queue outputs not known to be published.
+    def _recover(self, described: list[tuple[int, Setup, int]] | None = None) -> None:
+        """Rebuild the state: the newest usable snapshot, then the journal's records after it
+        (all of them without one); queue the outputs not known to be published.
 
-        ``later``: setups the journal records after its first, applied at their places.
+        ``described``: the journal's setups (:meth:`_journaled_setup`), each applied at its
+        place unless the snapshot already holds it.
         """
         assert self._intake is not None
         mark = self.journal.published_through
         self._persisted_mark = mark
         # What was applied before (published, or marked logged) was logged then: not again.
         self._logged_through = max(mark, self.journal.logged_through)
-        pending = list(later or [])
-        for record in self.journal.records():
+        pending = list(described or [])
+        start = self._restore(pending)
+        if start is None:
+            start = self.journal.base_seq
+            if pending:
+                apply(self.engine, pending.pop(0)[1])
+        self._applied = start
+        for record in self.journal.records(after=start):
             while pending and record.line > pending[0][0]:
                 apply(self.engine, pending.pop(0)[1])
             outputs = self._feed(record)
@@ -432,13 +460,93 @@ class Daemon:
                 self.republished += len(outputs)
                 self._queue_now(record.line, outputs)
             self._applied = record.line
-        if self.recovered:
+        for _, later, _ in pending:  # described after the last record: in force from here
+            apply(self.engine, later)
+        if self.recovered or self.restored_from is not None:
             self._log.info(
                 "recovered from journal",
+                snapshot=self.restored_from,
                 records=self.recovered,
                 republish=self.republished,
                 last_seq=self._applied,
             )
+
+    def _restore(self, pending: list[tuple[int, Setup, int]]) -> int | None:
+        """Load the newest usable snapshot into the daemon; return the record it follows.
+
+        A snapshot is usable when it was taken at or before the published-through mark (the
+        outputs of later records must be published again, so those records are replayed) and
+        when it loads (:mod:`tracker.shell.snapshot`); one that does not is logged and skipped.
+        ``pending`` loses the setups the snapshot already holds.
+
+        Returns:
+            The journal seq the restored state follows; ``None``: no snapshot was used.
+        """
+        if not self._snapshots_on or not pending:
+            return None
+        for info in self.journal.usable_snapshots():
+            try:
+                intake = snapshot.load(
+                    self.journal.snapshot_state(info.id), format=info.format, sha256=info.sha256
+                )
+            except snapshot.SnapshotUnusable as exc:
+                self._log.warning(
+                    "snapshot not used; trying an earlier one, else replaying the whole journal",
+                    snapshot_id=info.id,
+                    after_seq=info.after_seq,
+                    kind=info.kind,
+                    reason=exc.reason,
+                )
+                continue
+            self._intake = intake
+            self.engine = intake.engine
+            self.restored_from = self._snapshot_seq = info.after_seq
+            pending[:] = [item for item in pending if item[2] > info.setup_id]
+            return info.after_seq
+        return None
+
+    # -- snapshots -------------------------------------------------------------------------------
+
+    @property
+    def _snapshots_on(self) -> bool:
+        """Snapshots are taken and used for the engine the settings build (not one given)."""
+        return self.settings.snapshot_records > 0 and self._engine_given is None
+
+    def _snapshot_due(self) -> bool:
+        if not self._snapshots_on or self._applied <= self._snapshot_seq:
+            return False
+        if self._applied - self._snapshot_seq >= self.settings.snapshot_records:
+            return True
+        seconds = self.settings.snapshot_seconds
+        return seconds > 0 and _time.monotonic() - self._snapshot_taken >= seconds
+
+    async def _snapshot(self, kind: str) -> None:
+        """Store a snapshot of the state after the records applied so far.
+
+        Called by the apply stage between groups, so nothing changes the state meanwhile; the
+        pickling, compressing and writing run in a worker thread, so the bus goes on publishing
+        and stage 1 on journaling (a snapshot of a busy day's state takes a second or two).
+        """
+        assert self._intake is not None
+        try:
+            info = await asyncio.to_thread(self._store_snapshot, kind)
+        except JournalError as exc:  # a snapshot is an optimisation: the journal still holds all
+            self._log.warning("snapshot not stored", error=str(exc), after_seq=self._applied)
+        else:
+            self._log.info("snapshot stored", after_seq=info.after_seq, kind=kind, bytes=info.size)
+        self._snapshot_seq = self._applied
+        self._snapshot_taken = _time.monotonic()
+
+    def _store_snapshot(self, kind: str) -> SnapshotInfo:
+        assert self._intake is not None and self._clock is not None
+        return self.journal.save_snapshot(
+            after_seq=self._applied,
+            setup_id=self.journal.setup_id,
+            kind=kind,
+            format=snapshot.format_tag(),
+            state=snapshot.dump(self._intake),
+            ts=format_ts(self._clock()),
+        )
 
     def _queue_now(self, seq: int, outputs: Iterable[Outbound]) -> None:
         items = [item for out in outputs for item in self._outgoings(seq, out)]
@@ -607,6 +715,8 @@ class Daemon:
             if group is None:
                 return
             await self._apply(group)
+            if self._snapshot_due():
+                await self._snapshot("interval")
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
