@@ -7,6 +7,7 @@ import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
 from tracker.core.topics import DEFAULT_ROOT
 
@@ -32,6 +33,13 @@ A journal describes itself (the daemon's root, engine settings and profiles, and
 them during the day): replayed with no other flag, it reproduces what the daemon published,
 message for message. --root, --config or --profiles that disagree with the journal are refused,
 unless --what-if asks to replay with them instead (the summary then says so under "what_if").
+
+A journal is replayed from its first record. --from-snapshot starts instead from the newest
+snapshot of the state the daemon stored in it (or the newest at or before record SEQ) and replays
+only the records after it: DIR then holds the outputs of those records, the very bytes a replay
+from the first record gives for them, and the same summary.json. A snapshot is loaded only when
+it was written by this very tracker (same version and source); a journal is the daemon's own
+file: open only journals you trust (a snapshot is a Python pickle).
 """
 
 
@@ -89,6 +97,14 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "records (labelled as a what-if in summary.json) instead of refusing them",
     )
     parser.add_argument(
+        "--from-snapshot",
+        nargs="?",
+        const="latest",
+        metavar="SEQ",
+        help="journal only: start from the newest snapshot of the state stored in it (or the "
+        "newest at or before record SEQ) and replay only the records after it",
+    )
+    parser.add_argument(
         "--progress",
         action=argparse.BooleanOptionalAction,
         default=None,
@@ -99,10 +115,13 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 def run(args: argparse.Namespace) -> int:
     """Replay INPUT into DIR; print a one-line account; return 0."""
+    from tracker.edge.recordings import BadLine
+    from tracker.edge.records import Record
     from tracker.shell.config import validate_root
     from tracker.shell.files import load_engine_config, load_profiles
+    from tracker.shell.journal import read_journal, read_setup
     from tracker.shell.replay import read_input, replay, write_outputs
-    from tracker.shell.setup import plan_replay
+    from tracker.shell.setup import later_changes, plan_replay
 
     config, config_root = load_engine_config(Path(args.config)) if args.config else (None, None)
     given_root = args.root or config_root
@@ -117,8 +136,15 @@ def run(args: argparse.Namespace) -> int:
         what_if=args.what_if,
         default_root=DEFAULT_ROOT,
     )
-    records = list(read_input(path))
     engine, root, changes, what_if = plan.engine, plan.root, plan.changes, plan.what_if
+    intake = None
+    if args.from_snapshot is not None:
+        restored = _restored(args, path, what_if is not None)
+        intake, engine = restored.intake, restored.intake.engine
+        changes = later_changes(read_setup(path), engine, restored.setup_id)
+        records: list[Record | BadLine] = list(read_journal(path, after=restored.after_seq))
+    else:
+        records = list(read_input(path))
     show = stderr_is_terminal() if args.progress is None else bool(args.progress)
     with _progress_bar(len(records), show) as advance:
         result = replay(
@@ -129,11 +155,14 @@ def run(args: argparse.Namespace) -> int:
             sort=args.sort,
             changes=changes,
             progress=advance,
+            intake=intake,
         )
     if what_if is not None:
         result.summary["what_if"] = what_if
     write_outputs(result, Path(args.out))
     counts = result.summary.get("replay", {})
+    if intake is not None:
+        print(f"from the snapshot after record {restored.after_seq}: {len(records)} records")
     print(
         f"replayed {counts.get('lines', 0)} lines: {counts.get('accepted', 0)} accepted, "
         f"{counts.get('rejected', 0)} rejected, {counts.get('redelivered', 0)} redelivered; "
@@ -141,6 +170,34 @@ def run(args: argparse.Namespace) -> int:
         f"{len(result.errors)} errors -> {args.out}"
     )
     return 0
+
+
+def _restored(args: argparse.Namespace, path: Path, what_if: bool) -> Any:
+    """The snapshot --from-snapshot asks for (:func:`tracker.shell.replay.restore`)."""
+    from tracker.errors import InputError
+    from tracker.shell.replay import is_journal, restore
+
+    if not is_journal(path):
+        raise InputError(
+            "only a journal holds snapshots; replay a JSON Lines recording from its first line",
+            field="--from-snapshot",
+        )
+    if what_if or args.sort:
+        raise InputError(
+            "a snapshot holds the state as the journal's setup made it, in the journal's order: "
+            "replay from the first record to use --what-if or --sort",
+            field="--from-snapshot",
+        )
+    at = None
+    if args.from_snapshot != "latest":
+        try:
+            at = int(args.from_snapshot)
+        except ValueError:
+            raise InputError(
+                f"must be a record number (or nothing, for the newest); got {args.from_snapshot!r}",
+                field="--from-snapshot",
+            ) from None
+    return restore(path, at=at)
 
 
 @contextmanager

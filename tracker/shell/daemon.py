@@ -84,7 +84,7 @@ from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
 from tracker.shell.config import Settings
 from tracker.shell.journal import Journal, JournalError, SnapshotInfo
 from tracker.shell.replay import dumps_summary, finish_summary
-from tracker.shell.setup import Setup, apply, entries_of, removed_profiles, timeline
+from tracker.shell.setup import Setup, apply, entries_of, removed_profiles, timeline_ids
 
 if TYPE_CHECKING:
     from tracker.core.engine import Engine
@@ -404,8 +404,7 @@ class Daemon:
         """
         if not hasattr(engine, "reconfigure"):
             return []  # an engine of a test that cannot say what it runs with
-        entries = self.journal.setup()
-        described = timeline(entries)
+        described = timeline_ids(self.journal.setup())
         if not described:
             return []
         first = described[0][1]
@@ -416,10 +415,7 @@ class Daemon:
                 "--journal",
                 field="root",
             )
-        return [
-            (after, setup, max(entry.id for entry in entries if entry.after_seq <= after))
-            for after, setup in described
-        ]
+        return described
 
     def _describe_setup(self) -> None:
         """Journal what this run was given (only what changed), and run on with it from here."""

@@ -90,6 +90,7 @@ def replay(
     sort: bool = False,
     changes: Sequence[tuple[int, Callable[[], None]]] = (),
     progress: Callable[[int], None] | None = None,
+    intake: Intake | None = None,
 ) -> ReplayResult:
     """Run an engine over a whole recording.
 
@@ -108,6 +109,9 @@ def replay(
         changes: ``(after, change)`` pairs: ``change()`` is called before the first line
             numbered above ``after`` (a journal's later setups, :mod:`tracker.shell.setup`).
         progress: Called with the number of lines done, every few thousand lines and at the end.
+        intake: Go on from this intake (and its engine, which must be ``engine``): the state a
+            snapshot holds (:func:`restore`); ``records`` are then the journal's records after
+            it. ``None``: a fresh intake for ``engine``.
 
     Returns:
         The outputs and the summary.
@@ -115,13 +119,14 @@ def replay(
     lines = list(records)
     if sort:
         lines = sort_by_time(lines)
-    intake = Intake(
-        engine,
-        root=root,
-        derive_ticks=not has_ticks(lines, root),
-        tick_seconds=tick_seconds,
-        check_time=check_time,
-    )
+    if intake is None:
+        intake = Intake(
+            engine,
+            root=root,
+            derive_ticks=not has_ticks(lines, root),
+            tick_seconds=tick_seconds,
+            check_time=check_time,
+        )
     result = ReplayResult()
     chunk = 2048
     # What a chunk leaves behind (the engine's state, the outputs) lives until the replay ends,
@@ -155,6 +160,51 @@ def replay(
         progress(len(lines))
     result.summary = finish_summary(engine, intake)
     return result
+
+
+@dataclass(frozen=True)
+class Restored:
+    """The state a journal's snapshot holds, to replay the records after it.
+
+    Attributes:
+        intake: The intake, holding the engine (:attr:`Intake.engine`).
+        after_seq: The last journal record applied to it.
+        setup_id: The last setup entry in force in it (:func:`tracker.shell.setup.later_changes`).
+    """
+
+    intake: Intake
+    after_seq: int
+    setup_id: int
+
+
+def restore(path: str | Path, *, at: int | None = None, field: str = "--from-snapshot") -> Restored:
+    """The newest snapshot of a journal that loads (taken at or before record ``at``, if given).
+
+    Raises:
+        InputError: No snapshot of the journal loads (each one's reason is given).
+    """
+    from tracker.shell import snapshot
+    from tracker.shell.journal import read_snapshot_state, read_snapshots
+
+    reasons: list[str] = []
+    for info in read_snapshots(path):
+        if at is not None and info.after_seq > at:
+            continue
+        try:
+            intake = snapshot.load(
+                read_snapshot_state(path, info.id), format=info.format, sha256=info.sha256
+            )
+        except snapshot.SnapshotUnusable as exc:
+            reasons.append(f"the one after record {info.after_seq}: {exc.reason}")
+            continue
+        return Restored(intake, info.after_seq, info.setup_id)
+    where = "" if at is None else f" at or before record {at}"
+    why = f" ({'; '.join(reasons)})" if reasons else ""
+    raise InputError(
+        f"{path} has no snapshot{where} that this tracker can use{why}; replay it from its first "
+        "record instead",
+        field=field,
+    )
 
 
 def sort_by_time(lines: list[Record | BadLine]) -> list[Record | BadLine]:
