@@ -174,7 +174,7 @@ async def _serve_until_published(
 
 
 @pytest.mark.parametrize(
-    ("snapshot_records", "restored"), [(0, False), (10_000, True)], ids=["replay", "snapshot"]
+    ("snapshot_records", "restored"), [(0, False), (2_500, True)], ids=["replay", "snapshot"]
 )
 def test_restart_rebuilds_state_from_the_journal(
     tmp_path: Path, mosquitto: PrivateMosquitto, snapshot_records: int, restored: bool

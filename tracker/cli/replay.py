@@ -34,7 +34,8 @@ them during the day): replayed with no other flag, it reproduces what the daemon
 message for message. --root, --config or --profiles that disagree with the journal are refused,
 unless --what-if asks to replay with them instead (the summary then says so under "what_if").
 
-A journal is replayed from its first record. --from-snapshot starts instead from the newest
+A journal is replayed from its first record; a new day's journal (the daemon keeps one per day)
+from the day before's state it carries as a snapshot. --from-snapshot starts instead from the newest
 snapshot of the state the daemon stored in it (or the newest at or before record SEQ) and replays
 only the records after it: DIR then holds the outputs of those records, the very bytes a replay
 from the first record gives for them, and the same summary.json. A snapshot is loaded only when
@@ -138,6 +139,9 @@ def run(args: argparse.Namespace) -> int:
     )
     engine, root, changes, what_if = plan.engine, plan.root, plan.changes, plan.what_if
     intake = None
+    carried = _carried(path)
+    if args.from_snapshot is None and carried:
+        args.from_snapshot = str(carried)  # a new day's journal starts from the day before's state
     if args.from_snapshot is not None:
         restored = _restored(args, path, what_if is not None)
         intake, engine = restored.intake, restored.intake.engine
@@ -172,6 +176,15 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _carried(path: Path) -> int:
+    """The record a new day's journal goes on from (0: a journal that starts afresh, or not a
+    journal)."""
+    from tracker.shell.journal import read_base_seq
+    from tracker.shell.replay import is_journal
+
+    return read_base_seq(path) if is_journal(path) else 0
+
+
 def _restored(args: argparse.Namespace, path: Path, what_if: bool) -> Any:
     """The snapshot --from-snapshot asks for (:func:`tracker.shell.replay.restore`)."""
     from tracker.errors import InputError
@@ -197,7 +210,24 @@ def _restored(args: argparse.Namespace, path: Path, what_if: bool) -> Any:
                 f"must be a record number (or nothing, for the newest); got {args.from_snapshot!r}",
                 field="--from-snapshot",
             ) from None
-    return restore(path, at=at)
+    carried = _carried(path)
+    if at is not None and at < carried:
+        raise InputError(
+            f"{path} starts after record {carried} (a new day's journal); give a record from "
+            f"{carried} on",
+            field="--from-snapshot",
+        )
+    try:
+        return restore(path, at=at)
+    except InputError as exc:
+        if not carried:
+            raise
+        raise InputError(
+            f"{path} goes on from the day before's state, carried as a snapshot after record "
+            f"{carried}, and that cannot be used here ({exc}); replay it with the tracker version "
+            "that wrote it",
+            field="--from-snapshot",
+        ) from exc
 
 
 @contextmanager

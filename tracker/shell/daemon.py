@@ -54,10 +54,11 @@ import fcntl
 import os
 import time as _time
 from collections.abc import Callable, Iterable, Iterator
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from types import TracebackType
 from typing import IO, TYPE_CHECKING, Any, Self
+from zoneinfo import ZoneInfo
 
 import aiomqtt
 import structlog
@@ -247,6 +248,10 @@ class Daemon:
         self.restored_from: int | None = None
         self._snapshot_seq = 0  # the journal seq of the latest snapshot (restored or stored)
         self._snapshot_taken = _time.monotonic()
+        self._journal_day: date | None = None  # the day the journal holds (rotate_journal)
+        self._switching = asyncio.Lock()  # a snapshot or a rotation at a time
+        #: The journals closed by a rotation in this run (their dated paths).
+        self.rotated: list[Path] = []
 
     # -- lifecycle -------------------------------------------------------------------------------
 
@@ -254,6 +259,7 @@ class Daemon:
         self._lock()
         try:
             await self._check_instance()
+            self._finish_rotation()
             self._journal = Journal(self.settings.journal, durability=self.settings.durability)
             if self._journal.quarantined:
                 self._log.warning(
@@ -276,6 +282,9 @@ class Daemon:
             described = self._journaled_setup(engine)
             self._recover(described)
             self._describe_setup()
+            first = next(iter(self._journal.records(after=self._journal.base_seq)), None)
+            if first is not None and first.ts is not None:
+                self._journal_day = self._day_of(_parse_ts(first.ts))
         except BaseException:
             self._close_journal()
             self._unlock()
@@ -444,6 +453,14 @@ class Daemon:
         start = self._restore(pending)
         if start is None:
             start = self.journal.base_seq
+            if start > 0:  # a new day's journal: its records need the day before's state
+                raise InputError(
+                    f"{self.settings.journal} goes on from the day before's state, which it "
+                    "carries as a snapshot this tracker cannot use (see the log: written by other "
+                    f"code, or damaged); the days before are in {self.journal.previous}. Start "
+                    "the tracker version that wrote it, or move the journal away to start afresh",
+                    field="journal",
+                )
             if pending:
                 apply(self.engine, pending.pop(0)[1])
         self._applied = start
@@ -501,6 +518,105 @@ class Daemon:
             return info.after_seq
         return None
 
+    # -- one journal per day ---------------------------------------------------------------------
+
+    def _day_of(self, moment: datetime) -> date:
+        return moment.astimezone(ZoneInfo(self.settings.day_timezone)).date()
+
+    def _dated(self, day: date) -> Path:
+        """Where the journal of ``day`` is kept: ``STEM-YYYY-MM-DD.SUFFIX`` beside the path."""
+        path = Path(self.settings.journal)
+        dated = path.with_name(f"{path.stem}-{day.isoformat()}{path.suffix}")
+        number = 2
+        while dated.exists():  # a day journaled twice (clock set back): never overwrite
+            dated = path.with_name(f"{path.stem}-{day.isoformat()}-{number}{path.suffix}")
+            number += 1
+        return dated
+
+    def _finish_rotation(self) -> None:
+        """Finish or undo a rotation a crash interrupted (see :meth:`_rotate`)."""
+        path = Path(self.settings.journal)
+        fresh = path.with_name(path.name + ".new")
+        if not fresh.exists():
+            return
+        if path.exists():  # the crash came before the day's journal was put aside: not rotated
+            for part in ("", "-wal", "-shm"):
+                Path(f"{fresh}{part}").unlink(missing_ok=True)
+            self._log.warning("an unfinished journal rotation was undone", path=str(fresh))
+            return
+        os.replace(fresh, path)  # after it: the new day's journal takes the path
+        self._log.warning("an unfinished journal rotation was completed", path=str(path))
+
+    async def _rotate(self, now: datetime) -> None:
+        """Close the day's journal, keep it under its dated name, and go on in a new one that
+        starts with the setup and a ``carried`` snapshot of the state.
+
+        Everything journaled must first be applied and its outputs confirmed (the new journal
+        cannot republish the old one's); otherwise the rotation waits for a later group. Crash
+        safety: the new journal is written complete as ``PATH.new`` first, then the old one is
+        renamed to its dated name, then ``PATH.new`` to ``PATH``; a start finds and finishes (or
+        undoes) a rotation cut short between the renames.
+        """
+        assert self._intake is not None and self._journal_day is not None
+        waited = _time.monotonic() + 5.0
+        while self._applied < self.journal.last_seq or self._unconfirmed:
+            if _time.monotonic() > waited:
+                self._log.info(
+                    "journal rotation postponed: outputs not yet confirmed",
+                    unconfirmed=len(self._unconfirmed),
+                )
+                return
+            await asyncio.sleep(0.02)
+        async with self._switching:
+            await asyncio.to_thread(self._switch_journal, now)
+
+    def _switch_journal(self, now: datetime) -> None:
+        assert self._intake is not None and self._journal_day is not None
+        path = Path(self.settings.journal)
+        old = self.journal
+        base = old.last_seq
+        dated = self._dated(self._journal_day)
+        fresh = path.with_name(path.name + ".new")
+        for part in ("", "-wal", "-shm"):
+            Path(f"{fresh}{part}").unlink(missing_ok=True)
+        ts = format_ts(now)
+        state = snapshot.dump(self._intake)
+        config = getattr(self.engine, "config", None)
+        with Journal(
+            fresh, durability=self.settings.durability, base_seq=base, previous=dated.name
+        ) as new:
+            if config is not None:
+                profiles = dict(getattr(self.engine, "profiles", {}))
+                new.describe(entries_of(Setup(self.root, config, profiles)), ts)
+            new.save_snapshot(
+                after_seq=base,
+                setup_id=new.setup_id,
+                kind="carried",
+                format=snapshot.format_tag(),
+                state=state,
+                ts=ts,
+            )
+        old.mark_published(self.published_through, logged=self._applied)
+        old.close()
+        self._journal = None
+        os.replace(path, dated)
+        for part in ("-wal", "-shm"):
+            if Path(f"{path}{part}").exists():
+                os.replace(f"{path}{part}", f"{dated}{part}")
+        os.replace(fresh, path)
+        self._journal = Journal(path, durability=self.settings.durability)
+        self._log.info(
+            "journal rotated: a new day",
+            closed=str(dated),
+            day=self._journal_day.isoformat(),
+            carried_after_seq=base,
+            carried_bytes=len(state),
+        )
+        self.rotated.append(dated)
+        self._journal_day = self._day_of(now)
+        self._snapshot_seq = base
+        self._snapshot_taken = _time.monotonic()
+
     # -- snapshots -------------------------------------------------------------------------------
 
     @property
@@ -525,7 +641,8 @@ class Daemon:
         """
         assert self._intake is not None
         try:
-            info = await asyncio.to_thread(self._store_snapshot, kind)
+            async with self._switching:
+                info = await asyncio.to_thread(self._store_snapshot, kind)
         except JournalError as exc:  # a snapshot is an optimisation: the journal still holds all
             self._log.warning("snapshot not stored", error=str(exc), after_seq=self._applied)
         else:
@@ -678,7 +795,14 @@ class Daemon:
 
     async def _commit(self, batch: list[Delivery | _TickRequest]) -> list[Record]:
         assert self._clock is not None
-        ts = format_ts(self._clock())
+        now = self._clock()
+        if self.settings.rotate_journal:
+            day = self._day_of(now)
+            if self._journal_day is None:
+                self._journal_day = day
+            elif day > self._journal_day:
+                await self._rotate(now)
+        ts = format_ts(now)
         rows: list[tuple[str, bytes, str]] = []
         for item in batch:
             if isinstance(item, _TickRequest):

@@ -279,13 +279,19 @@ class Journal:
         durability: "full" (fsync every commit) or "normal" (see the module docstring).
         base_seq: For a new file: the sequence number its first record follows (a new day's
             journal goes on from the day before's last record). Ignored for an existing file.
+        previous: For a new day's file: the name of the day before's journal (same folder).
 
     Raises:
         JournalError: The file is not a journal, has another format, or is damaged.
     """
 
     def __init__(
-        self, path: str | Path, *, durability: Durability = "full", base_seq: int = 0
+        self,
+        path: str | Path,
+        *,
+        durability: Durability = "full",
+        base_seq: int = 0,
+        previous: str | None = None,
     ) -> None:
         if durability not in ("full", "normal"):
             raise InputError(
@@ -313,6 +319,10 @@ class Journal:
                 )
                 if base_seq:
                     self._set_meta("base_seq", base_seq)
+                if previous is not None:
+                    self._db.execute(
+                        "INSERT INTO meta(key, value) VALUES ('previous', ?)", (previous,)
+                    )
             _check_format(self._db, self.path)
             self._db.executescript(_QUARANTINE)
             self._db.executescript(_SETUP)
@@ -553,6 +563,12 @@ class Journal:
         """Sequence number up to which the daemon's outputs were confirmed published (0: none;
         a new day's journal starts at its ``base_seq``)."""
         return _meta_int(self._db, "published_through") or self.base_seq
+
+    @property
+    def previous(self) -> str | None:
+        """The name of the day before's journal (``None``: this one does not carry a day)."""
+        row = self._db.execute("SELECT value FROM meta WHERE key = 'previous'").fetchone()
+        return str(row[0]) if row else None
 
     @property
     def logged_through(self) -> int:
