@@ -176,21 +176,28 @@ async def _serve_until_published(
         await asyncio.wait_for(task, 60)
 
 
+@pytest.mark.parametrize(
+    ("snapshot_records", "restored"), [(0, False), (2_500, True)], ids=["replay", "snapshot"]
+)
 def test_restart_rebuilds_state_from_the_journal(
-    tmp_path: Path, mosquitto: PrivateMosquitto
+    tmp_path: Path, mosquitto: PrivateMosquitto, snapshot_records: int, restored: bool
 ) -> None:
-    """A second start replays the journal: the fills of the first run are still counted."""
-    settings = _settings(tmp_path, mosquitto.port)
+    """A second start replays the journal (or loads the snapshot the clean stop stored, and
+    replays nothing): the fills of the first run are still counted."""
+    settings = _settings(tmp_path, mosquitto.port, snapshot_records=snapshot_records)
 
-    async def scenario() -> tuple[int, dict[str, object]]:
+    async def scenario() -> tuple[int, int | None, int, dict[str, object]]:
         async with Daemon(settings) as daemon:
             await _serve_until_published(daemon, mosquitto.port, [_order(), _fill(1), _fill(2)])
+            applied = daemon.published_through
         async with Daemon(settings) as daemon:
-            return daemon.recovered, daemon.summary()
+            return applied, daemon.restored_from, daemon.recovered, daemon.summary()
 
-    recovered, summary = asyncio.run(scenario())
+    applied, restored_from, recovered, summary = asyncio.run(scenario())
     filled = {o["order_id"]: o["filled"] for o in summary["orders"]}  # type: ignore[attr-defined]
-    assert recovered >= 3
+    assert (applied if restored else None) == restored_from
+    assert (0 if restored else applied) == recovered
+    assert applied >= 4  # the start tick, the order and two fills
     assert {"X_ZEPH-T1": 200} == filled
 
 

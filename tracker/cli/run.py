@@ -22,8 +22,13 @@ Topics (ROOT defaults to "tracker"):
   out  ROOT/targets/ORDER_ID ROOT/alerts/ORDER_ID ROOT/status/ORDER_ID (retained)  ROOT/errors
        ROOT/health/INSTANCE (retained; "offline" as last will)
 
-On start the daemon replays its journal and carries on where it stopped. SIGTERM or SIGINT: stop
-taking messages, finish those in hand, flush, publish offline, exit 0.
+On start the daemon loads the newest snapshot of its state stored in the journal ([daemon]
+snapshot_records, default every 2,500 records, and at a clean stop), replays the records after it,
+and carries on where it stopped. SIGTERM or SIGINT: stop taking messages, finish those in hand,
+flush, publish offline, exit 0. One journal per day ([daemon] rotate_journal, day_timezone): the
+first record of a new day opens a new journal at PATH carrying the state; the day before's is kept
+as STEM-YYYY-MM-DD.SUFFIX beside it. A snapshot is a Python pickle: the journal is the daemon's
+private file.
 
 The broker must keep the daemon's session: persistence on, no limit on queued messages
 (max_queued_messages 0, max_queued_bytes 0) and a packet size limit (max_packet_size). A stock

@@ -116,6 +116,7 @@ from tracker.core.messages import (
     wire_fields,
 )
 from tracker.core.topics import DEFAULT_ROOT, Topics
+from tracker.edge.digest import ErrorDigest
 from tracker.edge.recordings import BadLine, parse_ts, parse_ts_or_none
 from tracker.edge.records import Record
 from tracker.edge.wire import WireError, decode_reading
@@ -164,6 +165,7 @@ class Intake:
         derive_ticks: bool = True,
         tick_seconds: float = DEFAULT_TICK_SECONDS,
         check_time: bool = True,
+        digest: ErrorDigest | None = None,
     ) -> None:
         if not (math.isfinite(tick_seconds) and tick_seconds > 0):
             raise InputError(
@@ -184,6 +186,9 @@ class Intake:
         self.redelivered = 0
         self.rejected = 0
         self.ticks_derived = 0
+        #: Thins out floods of error records (:mod:`tracker.edge.digest`); kept here so that
+        #: every shell thins them alike and a snapshot of the intake holds its counts.
+        self.digest = digest if digest is not None else ErrorDigest(root)
         self.skewed = 0  # lines applied at their receive time with a clock_skew alert
         self._skew_told: set[tuple[str | None, str]] = set()  # (order id, kind) alerted on
         self._rules_of: object = None  # the settings _rules_now was read from
@@ -288,7 +293,12 @@ class Intake:
             if key is not None:
                 pending_keys.add(key)
         flush()
-        return results
+        return [self.digest.admit(r, out) for r, out in zip(records, results, strict=True)]
+
+    def close(self) -> list[Outbound]:
+        """The error digest's summaries of what its open interval held back (at the end of a
+        recording; the daemon closes it with a journaled tick instead)."""
+        return self.digest.close()
 
     def _stage(
         self, record: Record | BadLine

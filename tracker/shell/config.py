@@ -24,6 +24,10 @@ Every setting can come from three places; the first that gives it wins:
        tick_seconds = 1.0                    # staleness timer; 0 turns it off
        max_payload_bytes = 65536
        queue_size = 1000
+       snapshot_records = 2500               # a snapshot of the state every so many records
+       snapshot_seconds = 900                # ... or this often (seconds) when records came
+       rotate_journal = true                 # one journal per day (the day before's kept dated)
+       day_timezone = "America/New_York"     # whose midnight ends the day
 
        [engine]                              # thresholds, passed to EngineConfig.from_mapping
        ...
@@ -102,6 +106,10 @@ _DAEMON_KEYS = frozenset(
         "clock_start",
         "clock_speed",
         "summary",
+        "snapshot_records",
+        "snapshot_seconds",
+        "rotate_journal",
+        "day_timezone",
     }
 )
 
@@ -182,6 +190,15 @@ class Settings:
             ``clock_speed`` times real time. ``None``: the wall clock (UTC).
         engine: The ``[engine]`` table, for :meth:`EngineConfig.from_mapping`.
         summary: Where to write ``summary.json`` on a clean stop (``None``: not written).
+        snapshot_records: Store a snapshot of the engine's state in the journal after every so
+            many journal records (0: never), so that a restart replays at most about that many.
+        snapshot_seconds: Also store one when this many wall-clock seconds have passed since the
+            last and records came meanwhile (0: only by count). A clean stop stores one too.
+        rotate_journal: One journal per day: the first record of a new day (by the calendar of
+            ``day_timezone``) goes into a new journal at the configured path, which starts from
+            the state carried over as a snapshot; the day before's is kept as
+            ``STEM-YYYY-MM-DD.SUFFIX`` beside it.
+        day_timezone: The IANA time zone whose midnight ends a day.
     """
 
     journal: Path
@@ -201,6 +218,10 @@ class Settings:
     clock_speed: float = 1.0
     engine: Mapping[str, Any] = field(default_factory=dict)
     summary: Path | None = None
+    snapshot_records: int = 2_500
+    snapshot_seconds: float = 900.0
+    rotate_journal: bool = True
+    day_timezone: str = "America/New_York"
 
     @property
     def client_id(self) -> str:
@@ -502,4 +523,35 @@ def load_settings(
         clock_speed=number("clock_speed", defaults.clock_speed, minimum=1e-6),
         engine=dict(file_data.get("engine", {})),
         summary=None if summary is None else _path(summary, "daemon.summary"),
+        snapshot_records=number(
+            "snapshot_records", defaults.snapshot_records, minimum=1, integer=True, allow_zero=True
+        ),
+        snapshot_seconds=number(
+            "snapshot_seconds", defaults.snapshot_seconds, minimum=1, allow_zero=True
+        ),
+        rotate_journal=_flag(get("daemon.rotate_journal"), "daemon.rotate_journal", True),
+        day_timezone=_zone(get("daemon.day_timezone") or defaults.day_timezone),
     )
+
+
+def _flag(value: Any, field: str, default: bool) -> bool:
+    if value is None:
+        return default
+    if isinstance(value, bool):
+        return value
+    if isinstance(value, str) and value.lower() in ("true", "false", "1", "0", "yes", "no"):
+        return value.lower() in ("true", "1", "yes")
+    raise InputError(f"must be true or false; got {value!r}", field=field)
+
+
+def _zone(value: Any) -> str:
+    from zoneinfo import ZoneInfo
+
+    try:
+        ZoneInfo(str(value))
+    except (ValueError, KeyError) as exc:
+        raise InputError(
+            f"must be an IANA time zone such as America/New_York; got {value!r}",
+            field="daemon.day_timezone",
+        ) from exc
+    return str(value)

@@ -59,10 +59,11 @@ import fcntl
 import os
 import time as _time
 from collections.abc import Callable, Iterable, Iterator
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from types import TracebackType
 from typing import IO, TYPE_CHECKING, Any, Self
+from zoneinfo import ZoneInfo
 
 import aiomqtt
 import structlog
@@ -70,7 +71,6 @@ import structlog
 from tracker.core import alerts as rules
 from tracker.core.formats import utc_text
 from tracker.core.topics import Topics
-from tracker.edge.digest import ErrorDigest
 from tracker.edge.intake import EngineLike, Intake
 from tracker.edge.records import Record
 from tracker.edge.wire import (
@@ -85,11 +85,12 @@ from tracker.edge.wire import (
     topic_of,
 )
 from tracker.errors import InputError
+from tracker.shell import snapshot
 from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
 from tracker.shell.config import Settings
-from tracker.shell.journal import Journal, JournalError
+from tracker.shell.journal import Journal, JournalError, SnapshotInfo
 from tracker.shell.replay import dumps_summary, finish_summary
-from tracker.shell.setup import Setup, apply, entries_of, removed_profiles, timeline
+from tracker.shell.setup import Setup, apply, entries_of, removed_profiles, timeline_ids
 
 if TYPE_CHECKING:
     from tracker.core.engine import Engine
@@ -218,7 +219,6 @@ class Daemon:
         self._lock_file: IO[str] | None = None
         self._journal: Journal | None = None
         self._intake: Intake | None = None
-        self._digest = ErrorDigest(settings.root)  # thins out floods of error records
         self._clock: _Clock | None = None
         self._unconfirmed: dict[int, int] = {}  # journal seq -> outputs not yet confirmed
         self._applied = 0
@@ -249,6 +249,14 @@ class Daemon:
         self.failure: InputError | None = None
         self._journal_broken = False
         self._logged_through = 0  # journal seq up to which outputs were logged before a restart
+        #: The journal seq of the snapshot the state was restored from (``None``: none used).
+        self.restored_from: int | None = None
+        self._snapshot_seq = 0  # the journal seq of the latest snapshot (restored or stored)
+        self._snapshot_taken = _time.monotonic()
+        self._journal_day: date | None = None  # the day the journal holds (rotate_journal)
+        self._switching = asyncio.Lock()  # a snapshot or a rotation at a time
+        #: The journals closed by a rotation in this run (their dated paths).
+        self.rotated: list[Path] = []
 
     # -- lifecycle -------------------------------------------------------------------------------
 
@@ -256,6 +264,7 @@ class Daemon:
         self._lock()
         try:
             await self._check_instance()
+            self._finish_rotation()
             self._journal = Journal(self.settings.journal, durability=self.settings.durability)
             if self._journal.quarantined:
                 self._log.warning(
@@ -268,14 +277,19 @@ class Daemon:
                 else build_engine(self.settings)
             )
             self.engine: EngineLike = engine
-            # The profiles this run was given (the engine may be switched to journaled ones).
+            # What this run was given (the engine is switched to the journaled setup, or
+            # replaced by a snapshot's, while it recovers; then to this, if it differs).
             self._profiles = dict(getattr(engine, "profiles", {}))
+            self._config = getattr(engine, "config", None)
             self._intake = Intake(engine, root=self.root, derive_ticks=False)
             floor = _parse_ts(self._journal.last_ts) if self._journal.last_ts else None
             self._clock = _Clock(self.settings, floor, self._clock_source)
-            later = self._journaled_setup(engine)
-            self._recover(later)
-            self._describe_setup(engine)
+            described = self._journaled_setup(engine)
+            self._recover(described)
+            self._describe_setup()
+            first = next(iter(self._journal.records(after=self._journal.base_seq)), None)
+            if first is not None and first.ts is not None:
+                self._journal_day = self._day_of(_parse_ts(first.ts))
         except BaseException:
             self._close_journal()
             self._unlock()
@@ -291,6 +305,12 @@ class Daemon:
         try:
             if self._journal is not None and not self._journal_broken:
                 self._journal.mark_published(self.published_through, logged=self._applied)
+                fresh = self._applied > self._snapshot_seq
+                if self._snapshots_on and self.stopped_cleanly and fresh:
+                    try:  # the next start then replays nothing
+                        self._store_snapshot("stop")
+                    except JournalError as error:
+                        self._log.warning("snapshot not stored", error=str(error))
             if exc_type is None and self.settings.summary is not None:
                 self.write_summary(self.settings.summary)
         finally:
@@ -386,15 +406,19 @@ class Daemon:
 
     # -- recovery --------------------------------------------------------------------------------
 
-    def _journaled_setup(self, engine: EngineLike) -> list[tuple[int, Setup]]:
-        """Put the engine in the setup the journal started with; return its later setups.
+    def _journaled_setup(self, engine: EngineLike) -> list[tuple[int, Setup, int]]:
+        """The setups the journal describes, checked against this run's root.
+
+        Returns:
+            ``(after_seq, setup, last entry id)`` per setup, oldest first; empty for an engine
+            of a test that cannot say what it runs with.
 
         Raises:
             InputError: the journal was written under another topic root.
         """
         if not hasattr(engine, "reconfigure"):
             return []  # an engine of a test that cannot say what it runs with
-        described = timeline(self.journal.setup())
+        described = timeline_ids(self.journal.setup())
         if not described:
             return []
         first = described[0][1]
@@ -405,32 +429,47 @@ class Daemon:
                 "--journal",
                 field="root",
             )
-        apply(engine, first)
-        return described[1:]
+        return described
 
-    def _describe_setup(self, engine: EngineLike) -> None:
-        """Journal what this run uses (only what changed), and run on with it from here."""
-        config = getattr(engine, "config", None)
-        if not hasattr(engine, "reconfigure") or config is None:
+    def _describe_setup(self) -> None:
+        """Journal what this run was given (only what changed), and run on with it from here."""
+        config = self._config
+        if not hasattr(self.engine, "reconfigure") or config is None:
             return
         assert self._clock is not None
         current = Setup(self.root, config, self._profiles)
         entries = entries_of(current) + removed_profiles(self.journal.setup(), current)
         if self.journal.describe(entries, format_ts(self._clock())):
-            apply(engine, current)
+            apply(self.engine, current)
 
-    def _recover(self, later: list[tuple[int, Setup]] | None = None) -> None:
-        """Replay the journal into the engine; queue outputs not known to be published.
+    def _recover(self, described: list[tuple[int, Setup, int]] | None = None) -> None:
+        """Rebuild the state: the newest usable snapshot, then the journal's records after it
+        (all of them without one); queue the outputs not known to be published.
 
-        ``later``: setups the journal records after its first, applied at their places.
+        ``described``: the journal's setups (:meth:`_journaled_setup`), each applied at its
+        place unless the snapshot already holds it.
         """
         assert self._intake is not None
         mark = self.journal.published_through
         self._persisted_mark = mark
         # What was applied before (published, or marked logged) was logged then: not again.
         self._logged_through = max(mark, self.journal.logged_through)
-        pending = list(later or [])
-        for record in self.journal.records():
+        pending = list(described or [])
+        start = self._restore(pending)
+        if start is None:
+            start = self.journal.base_seq
+            if start > 0:  # a new day's journal: its records need the day before's state
+                raise InputError(
+                    f"{self.settings.journal} goes on from the day before's state, which it "
+                    "carries as a snapshot this tracker cannot use (see the log: written by other "
+                    f"code, or damaged); the days before are in {self.journal.previous}. Start "
+                    "the tracker version that wrote it, or move the journal away to start afresh",
+                    field="journal",
+                )
+            if pending:
+                apply(self.engine, pending.pop(0)[1])
+        self._applied = start
+        for record in self.journal.records(after=start):
             while pending and record.line > pending[0][0]:
                 apply(self.engine, pending.pop(0)[1])
             outputs = self._feed(record)
@@ -439,13 +478,193 @@ class Daemon:
                 self.republished += len(outputs)
                 self._queue_now(record.line, outputs)
             self._applied = record.line
-        if self.recovered:
+        for _, later, _ in pending:  # described after the last record: in force from here
+            apply(self.engine, later)
+        if self.recovered or self.restored_from is not None:
             self._log.info(
                 "recovered from journal",
+                snapshot=self.restored_from,
                 records=self.recovered,
                 republish=self.republished,
                 last_seq=self._applied,
             )
+
+    def _restore(self, pending: list[tuple[int, Setup, int]]) -> int | None:
+        """Load the newest usable snapshot into the daemon; return the record it follows.
+
+        A snapshot is usable when it was taken at or before the published-through mark (the
+        outputs of later records must be published again, so those records are replayed) and
+        when it loads (:mod:`tracker.shell.snapshot`); one that does not is logged and skipped.
+        ``pending`` loses the setups the snapshot already holds.
+
+        Returns:
+            The journal seq the restored state follows; ``None``: no snapshot was used.
+        """
+        if not self._snapshots_on or not pending:
+            return None
+        for info in self.journal.usable_snapshots():
+            try:
+                intake = snapshot.load(
+                    self.journal.snapshot_state(info.id), format=info.format, sha256=info.sha256
+                )
+            except snapshot.SnapshotUnusable as exc:
+                self._log.warning(
+                    "snapshot not used; trying an earlier one, else replaying the whole journal",
+                    snapshot_id=info.id,
+                    after_seq=info.after_seq,
+                    kind=info.kind,
+                    reason=exc.reason,
+                )
+                continue
+            self._intake = intake
+            self.engine = intake.engine
+            self.restored_from = self._snapshot_seq = info.after_seq
+            pending[:] = [item for item in pending if item[2] > info.setup_id]
+            return info.after_seq
+        return None
+
+    # -- one journal per day ---------------------------------------------------------------------
+
+    def _day_of(self, moment: datetime) -> date:
+        return moment.astimezone(ZoneInfo(self.settings.day_timezone)).date()
+
+    def _dated(self, day: date) -> Path:
+        """Where the journal of ``day`` is kept: ``STEM-YYYY-MM-DD.SUFFIX`` beside the path."""
+        path = Path(self.settings.journal)
+        dated = path.with_name(f"{path.stem}-{day.isoformat()}{path.suffix}")
+        number = 2
+        while dated.exists():  # a day journaled twice (clock set back): never overwrite
+            dated = path.with_name(f"{path.stem}-{day.isoformat()}-{number}{path.suffix}")
+            number += 1
+        return dated
+
+    def _finish_rotation(self) -> None:
+        """Finish or undo a rotation a crash interrupted (see :meth:`_rotate`)."""
+        path = Path(self.settings.journal)
+        fresh = path.with_name(path.name + ".new")
+        if not fresh.exists():
+            return
+        if path.exists():  # the crash came before the day's journal was put aside: not rotated
+            for part in ("", "-wal", "-shm"):
+                Path(f"{fresh}{part}").unlink(missing_ok=True)
+            self._log.warning("an unfinished journal rotation was undone", path=str(fresh))
+            return
+        os.replace(fresh, path)  # after it: the new day's journal takes the path
+        self._log.warning("an unfinished journal rotation was completed", path=str(path))
+
+    async def _rotate(self, now: datetime) -> None:
+        """Close the day's journal, keep it under its dated name, and go on in a new one that
+        starts with the setup and a ``carried`` snapshot of the state.
+
+        Everything journaled must first be applied and its outputs confirmed (the new journal
+        cannot republish the old one's); otherwise the rotation waits for a later group. Crash
+        safety: the new journal is written complete as ``PATH.new`` first, then the old one is
+        renamed to its dated name, then ``PATH.new`` to ``PATH``; a start finds and finishes (or
+        undoes) a rotation cut short between the renames.
+        """
+        assert self._intake is not None and self._journal_day is not None
+        waited = _time.monotonic() + 5.0
+        while self._applied < self.journal.last_seq or self._unconfirmed:
+            if _time.monotonic() > waited:
+                self._log.info(
+                    "journal rotation postponed: outputs not yet confirmed",
+                    unconfirmed=len(self._unconfirmed),
+                )
+                return
+            await asyncio.sleep(0.02)
+        async with self._switching:
+            await asyncio.to_thread(self._switch_journal, now)
+
+    def _switch_journal(self, now: datetime) -> None:
+        assert self._intake is not None and self._journal_day is not None
+        path = Path(self.settings.journal)
+        old = self.journal
+        base = old.last_seq
+        dated = self._dated(self._journal_day)
+        fresh = path.with_name(path.name + ".new")
+        for part in ("", "-wal", "-shm"):
+            Path(f"{fresh}{part}").unlink(missing_ok=True)
+        ts = format_ts(now)
+        state = snapshot.dump(self._intake)
+        config = getattr(self.engine, "config", None)
+        with Journal(
+            fresh, durability=self.settings.durability, base_seq=base, previous=dated.name
+        ) as new:
+            if config is not None:
+                profiles = dict(getattr(self.engine, "profiles", {}))
+                new.describe(entries_of(Setup(self.root, config, profiles)), ts)
+            new.save_snapshot(
+                after_seq=base,
+                setup_id=new.setup_id,
+                kind="carried",
+                format=snapshot.format_tag(),
+                state=state,
+                ts=ts,
+            )
+        old.mark_published(self.published_through, logged=self._applied)
+        old.close()
+        self._journal = None
+        os.replace(path, dated)
+        for part in ("-wal", "-shm"):
+            if Path(f"{path}{part}").exists():
+                os.replace(f"{path}{part}", f"{dated}{part}")
+        os.replace(fresh, path)
+        self._journal = Journal(path, durability=self.settings.durability)
+        self._log.info(
+            "journal rotated: a new day",
+            closed=str(dated),
+            day=self._journal_day.isoformat(),
+            carried_after_seq=base,
+            carried_bytes=len(state),
+        )
+        self.rotated.append(dated)
+        self._journal_day = self._day_of(now)
+        self._snapshot_seq = base
+        self._snapshot_taken = _time.monotonic()
+
+    # -- snapshots -------------------------------------------------------------------------------
+
+    @property
+    def _snapshots_on(self) -> bool:
+        """Snapshots are taken and used for the engine the settings build (not one given)."""
+        return self.settings.snapshot_records > 0 and self._engine_given is None
+
+    def _snapshot_due(self) -> bool:
+        if not self._snapshots_on or self._applied <= self._snapshot_seq:
+            return False
+        if self._applied - self._snapshot_seq >= self.settings.snapshot_records:
+            return True
+        seconds = self.settings.snapshot_seconds
+        return seconds > 0 and _time.monotonic() - self._snapshot_taken >= seconds
+
+    async def _snapshot(self, kind: str) -> None:
+        """Store a snapshot of the state after the records applied so far.
+
+        Called by the apply stage between groups, so nothing changes the state meanwhile; the
+        pickling, compressing and writing run in a worker thread, so the bus goes on publishing
+        and stage 1 on journaling (a snapshot of a busy day's state takes a second or two).
+        """
+        assert self._intake is not None
+        try:
+            async with self._switching:
+                info = await asyncio.to_thread(self._store_snapshot, kind)
+        except JournalError as exc:  # a snapshot is an optimisation: the journal still holds all
+            self._log.warning("snapshot not stored", error=str(exc), after_seq=self._applied)
+        else:
+            self._log.info("snapshot stored", after_seq=info.after_seq, kind=kind, bytes=info.size)
+        self._snapshot_seq = self._applied
+        self._snapshot_taken = _time.monotonic()
+
+    def _store_snapshot(self, kind: str) -> SnapshotInfo:
+        assert self._intake is not None and self._clock is not None
+        return self.journal.save_snapshot(
+            after_seq=self._applied,
+            setup_id=self.journal.setup_id,
+            kind=kind,
+            format=snapshot.format_tag(),
+            state=snapshot.dump(self._intake),
+            ts=format_ts(self._clock()),
+        )
 
     def _queue_now(self, seq: int, outputs: Iterable[Outbound]) -> None:
         items = [item for out in outputs for item in self._outgoings(seq, out)]
@@ -591,7 +810,14 @@ class Daemon:
 
     async def _commit(self, batch: list[Delivery | _TickRequest]) -> list[Record]:
         assert self._clock is not None
-        ts = format_ts(self._clock())
+        now = self._clock()
+        if self.settings.rotate_journal:
+            day = self._day_of(now)
+            if self._journal_day is None:
+                self._journal_day = day
+            elif day > self._journal_day:
+                await self._rotate(now)
+        ts = format_ts(now)
         rows: list[tuple[str, bytes, str]] = []
         deliveries = 0
         for item in batch:
@@ -626,6 +852,8 @@ class Daemon:
             if group is None:
                 return
             await self._apply(group)
+            if self._snapshot_due():
+                await self._snapshot("interval")
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
@@ -652,13 +880,13 @@ class Daemon:
         ``finished``: both stages ended on their own (a stage cancelled on its timeout may leave a
         commit running in its thread: then nothing more is journaled).
         """
-        if not self._digest.holding:
+        if self._intake is None or not self._intake.digest.holding:
             return
         if self._journal_broken or not finished:
             self._log.warning(
                 "error records held back by the digest are not published now; a replay of the "
                 "journal counts them",
-                **self._digest.counts(),
+                **self._intake.digest.counts(),
             )
             return
         try:
@@ -718,10 +946,9 @@ class Daemon:
                     record.topic, payload, reason, _parse_ts(record.ts or "")
                 )
                 results.append([dataclasses.replace(error, line=record.line)])
-        # Error records thinned out per topic kind, reason and interval of receive time, exactly
-        # as a replay of the journal does (a flood of bad messages must not delay good ones).
-        digest = self._digest
-        results = [digest.admit(record, out) for record, out in zip(run, results, strict=True)]
+            # The intake's error digest thins these out as it does its own.
+            digest = self._intake.digest
+            results = [digest.admit(record, out) for record, out in zip(run, results, strict=True)]
         for record, outputs in zip(run, results, strict=True):
             self._report(record, outputs)
         return results

@@ -58,9 +58,11 @@ The journal guards itself while it is written:
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import hashlib
 import os
 import sqlite3
+import threading
 import zlib
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
@@ -73,20 +75,30 @@ from tracker.errors import InputError
 
 __all__ = [
     "FORMAT_VERSION",
+    "READABLE_FORMATS",
     "Durability",
     "Journal",
     "JournalError",
     "JournalLost",
     "JournalWriteError",
     "SetupEntry",
+    "SnapshotInfo",
     "published_through",
+    "read_base_seq",
     "read_journal",
     "read_setup",
+    "read_snapshot_state",
+    "read_snapshots",
     "record_crc",
 ]
 
-#: Version of the journal's table layout; written into ``meta`` and checked on open.
-FORMAT_VERSION = 1
+#: Version of the journal's table layout; written into ``meta`` and checked on open. Format 2
+#: journals may start from a carried snapshot (the day before's state, see the module docstring);
+#: format 1 journals (no snapshots yet) are read and written as they are.
+FORMAT_VERSION = 2
+
+#: The formats this tracker reads.
+READABLE_FORMATS = frozenset({1, 2})
 
 Durability = Literal["full", "normal"]
 
@@ -116,6 +128,21 @@ CREATE TABLE IF NOT EXISTS quarantine (
 );
 """
 
+
+#: Snapshots of the engine and its intake (added to older journals when opened; see the module
+#: docstring and :mod:`tracker.shell.snapshot`).
+_SNAPSHOT = """
+CREATE TABLE IF NOT EXISTS snapshot (
+    id INTEGER PRIMARY KEY,
+    after_seq INTEGER NOT NULL,
+    setup_id INTEGER NOT NULL,
+    kind TEXT NOT NULL,
+    format TEXT NOT NULL,
+    sha256 TEXT NOT NULL,
+    state BLOB NOT NULL,
+    ts TEXT NOT NULL
+);
+"""
 
 #: What the daemon ran with (added to older journals when opened; see the module docstring).
 _SETUP = """
@@ -149,6 +176,33 @@ class SetupEntry:
     name: str
     sha256: str
     content: bytes
+    ts: str
+    id: int = 0  # its row in the ``setup`` table (0: not written yet)
+
+
+@dataclass(frozen=True, slots=True)
+class SnapshotInfo:
+    """One stored snapshot, without its state (see :meth:`Journal.snapshot_state`).
+
+    Attributes:
+        id: Its row in the ``snapshot`` table.
+        after_seq: The last journal record applied to the state it holds.
+        setup_id: The last ``setup`` entry in force in that state (0: none).
+        kind: ``interval`` (taken every so many records), ``stop`` (at a clean stop) or
+            ``carried`` (the day before's state, which a new day's journal starts from).
+        format: What wrote it (:func:`tracker.shell.snapshot.format_tag`).
+        sha256: SHA-256 of the state, hex.
+        size: Bytes of the state.
+        ts: When the daemon took it (its clock).
+    """
+
+    id: int
+    after_seq: int
+    setup_id: int
+    kind: str
+    format: str
+    sha256: str
+    size: int
     ts: str
 
 
@@ -206,9 +260,10 @@ def _check_format(connection: sqlite3.Connection, path: Path) -> None:
         )
     row = connection.execute("SELECT value FROM meta WHERE key = 'format'").fetchone()
     version = int(row[0]) if row is not None else None
-    if version != FORMAT_VERSION:
+    if version not in READABLE_FORMATS:
+        readable = " and ".join(str(v) for v in sorted(READABLE_FORMATS))
         raise JournalError(
-            f"{path} is a journal of format {version}; this tracker reads format {FORMAT_VERSION}; "
+            f"{path} is a journal of format {version}; this tracker reads formats {readable}; "
             "use the tracker version that wrote it"
         )
 
@@ -222,12 +277,22 @@ class Journal:
     Args:
         path: The journal file.
         durability: "full" (fsync every commit) or "normal" (see the module docstring).
+        base_seq: For a new file: the sequence number its first record follows (a new day's
+            journal goes on from the day before's last record). Ignored for an existing file.
+        previous: For a new day's file: the name of the day before's journal (same folder).
 
     Raises:
         JournalError: The file is not a journal, has another format, or is damaged.
     """
 
-    def __init__(self, path: str | Path, *, durability: Durability = "full") -> None:
+    def __init__(
+        self,
+        path: str | Path,
+        *,
+        durability: Durability = "full",
+        base_seq: int = 0,
+        previous: str | None = None,
+    ) -> None:
         if durability not in ("full", "normal"):
             raise InputError(
                 f"must be 'full' or 'normal', got {durability!r}", field="journal.durability"
@@ -241,6 +306,8 @@ class Journal:
             except OSError as exc:
                 raise JournalError(f"cannot create {self.path.parent}: {exc.strerror}") from exc
         self._db = _connect(self.path, readonly=False)
+        # The daemon writes from worker threads: its journal commits and, beside them, a snapshot.
+        self._lock = threading.Lock()
         try:
             self._db.execute("PRAGMA journal_mode=WAL")
             self._db.execute(f"PRAGMA synchronous={durability.upper()}")
@@ -250,20 +317,28 @@ class Journal:
                     "INSERT OR IGNORE INTO meta(key, value) VALUES ('format', ?)",
                     (str(FORMAT_VERSION),),
                 )
+                if base_seq:
+                    self._set_meta("base_seq", base_seq)
+                if previous is not None:
+                    self._db.execute(
+                        "INSERT INTO meta(key, value) VALUES ('previous', ?)", (previous,)
+                    )
             _check_format(self._db, self.path)
             self._db.executescript(_QUARANTINE)
             self._db.executescript(_SETUP)
+            self._db.executescript(_SNAPSHOT)
             self.quarantined = self._quarantine_damaged_tail()
             row = self._db.execute(
                 "SELECT seq, ts FROM journal ORDER BY seq DESC LIMIT 1"
             ).fetchone()
+            self.base_seq: int = _meta_int(self._db, "base_seq")
         except sqlite3.Error as exc:
             self._db.close()
             raise JournalError(f"cannot use {self.path}: {exc}") from exc
         except JournalError:
             self._db.close()
             raise
-        self.last_seq: int = row[0] if row else 0
+        self.last_seq: int = row[0] if row else self.base_seq
         self.last_ts: str | None = row[1] if row else None
         self._identity = _identity(self.path)
 
@@ -336,14 +411,15 @@ class Journal:
         seqs: list[int] = []
         try:
             with self._transaction():
+                # Numbered explicitly: a new day's journal goes on from the day before's numbers.
+                seq = self.last_seq
                 for topic, payload, ts in rows:
                     payload = bytes(payload)
-                    cursor = self._db.execute(
-                        "INSERT INTO journal(topic, payload, ts, crc) VALUES (?, ?, ?, ?)",
-                        (topic, payload, ts, record_crc(topic, payload, ts)),
+                    seq += 1
+                    self._db.execute(
+                        "INSERT INTO journal(seq, topic, payload, ts, crc) VALUES (?, ?, ?, ?, ?)",
+                        (seq, topic, payload, ts, record_crc(topic, payload, ts)),
                     )
-                    seq = cursor.lastrowid
-                    assert seq is not None
                     seqs.append(seq)
                 if published_through is not None:
                     self._set_published_through(published_through)
@@ -378,8 +454,8 @@ class Journal:
                 written.append(SetupEntry(self.last_seq, kind, name, digest, content, ts))
         if written:
             with self._transaction():
-                for entry in written:
-                    self._db.execute(
+                for index, entry in enumerate(written):
+                    cursor = self._db.execute(
                         "INSERT INTO setup(after_seq, kind, name, sha256, content, ts) "
                         "VALUES (?, ?, ?, ?, ?, ?)",
                         (
@@ -391,11 +467,69 @@ class Journal:
                             entry.ts,
                         ),
                     )
+                    written[index] = dataclasses.replace(entry, id=cursor.lastrowid or 0)
         return written
 
     def setup(self) -> list[SetupEntry]:
         """The journal's self-description, oldest first (empty for a journal without one)."""
         return _setup_rows(self._db)
+
+    @property
+    def setup_id(self) -> int:
+        """The id of the latest setup entry (0: none): what a snapshot taken now was run with."""
+        row = self._db.execute("SELECT MAX(id) FROM setup").fetchone()
+        return int(row[0] or 0)
+
+    # -- snapshots -------------------------------------------------------------------------------
+
+    def save_snapshot(
+        self, *, after_seq: int, setup_id: int, kind: str, format: str, state: bytes, ts: str
+    ) -> SnapshotInfo:
+        """Store a snapshot and drop those no restart needs any more, in one transaction.
+
+        Kept: the newest; the two newest that a restart may use (taken at or before the
+        published-through mark: see :meth:`usable_snapshots`); a ``carried`` one (a new day's
+        journal starts from it). The rest are deleted.
+
+        Raises:
+            JournalWriteError: The snapshot could not be written (nothing was changed).
+        """
+        digest = hashlib.sha256(state).hexdigest()
+        try:
+            with self._transaction():
+                cursor = self._db.execute(
+                    "INSERT INTO snapshot(after_seq, setup_id, kind, format, sha256, state, ts) "
+                    "VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    (after_seq, setup_id, kind, format, digest, state, ts),
+                )
+                snapshot_id = cursor.lastrowid or 0
+                mark = _meta_int(self._db, "published_through")
+                self._db.execute(
+                    "DELETE FROM snapshot WHERE kind != 'carried' AND id != ? AND id NOT IN "
+                    "(SELECT id FROM snapshot WHERE after_seq <= ? "
+                    "ORDER BY after_seq DESC, id DESC LIMIT 2)",
+                    (snapshot_id, mark),
+                )
+        except sqlite3.Error as exc:
+            raise JournalWriteError(
+                f"cannot write a snapshot to {self.path}: {exc}; the journal itself is unchanged"
+            ) from exc
+        return SnapshotInfo(snapshot_id, after_seq, setup_id, kind, format, digest, len(state), ts)
+
+    def snapshots(self) -> list[SnapshotInfo]:
+        """The stored snapshots, newest first."""
+        return _snapshot_rows(self._db)
+
+    def usable_snapshots(self) -> list[SnapshotInfo]:
+        """The snapshots a restart may start from, newest first: those taken at or before the
+        published-through mark (the outputs of the records after it must be published again,
+        so they must be replayed)."""
+        mark = self.published_through
+        return [info for info in self.snapshots() if info.after_seq <= mark]
+
+    def snapshot_state(self, snapshot_id: int) -> bytes:
+        """The state a snapshot holds (as stored; :mod:`tracker.shell.snapshot` checks it)."""
+        return _snapshot_state(self._db, self.path, snapshot_id)
 
     def mark_published(self, seq: int, logged: int | None = None) -> None:
         """Record that the outputs of every record up to ``seq`` have been published (and,
@@ -420,21 +554,26 @@ class Journal:
         )
 
     def _transaction(self) -> _Transaction:
-        return _Transaction(self._db)
+        return _Transaction(self._db, self._lock)
 
     # -- reading ---------------------------------------------------------------------------------
 
     @property
     def published_through(self) -> int:
-        """Sequence number up to which the daemon's outputs were confirmed published (0: none)."""
-        row = self._db.execute("SELECT value FROM meta WHERE key = 'published_through'").fetchone()
-        return int(row[0]) if row else 0
+        """Sequence number up to which the daemon's outputs were confirmed published (0: none;
+        a new day's journal starts at its ``base_seq``)."""
+        return _meta_int(self._db, "published_through") or self.base_seq
+
+    @property
+    def previous(self) -> str | None:
+        """The name of the day before's journal (``None``: this one does not carry a day)."""
+        row = self._db.execute("SELECT value FROM meta WHERE key = 'previous'").fetchone()
+        return str(row[0]) if row else None
 
     @property
     def logged_through(self) -> int:
         """Sequence number up to which the daemon applied and logged the records (0: none)."""
-        row = self._db.execute("SELECT value FROM meta WHERE key = 'logged_through'").fetchone()
-        return int(row[0]) if row else 0
+        return _meta_int(self._db, "logged_through")
 
     def records(self, after: int = 0) -> Iterator[Record]:
         """The records with a sequence number above ``after``, in order (CRC-checked)."""
@@ -466,13 +605,20 @@ class Journal:
 
 
 class _Transaction:
-    """BEGIN IMMEDIATE ... COMMIT, or ROLLBACK on error (the connection is in autocommit mode)."""
+    """BEGIN IMMEDIATE ... COMMIT, or ROLLBACK on error (the connection is in autocommit mode),
+    holding the journal's lock (one transaction at a time, whichever thread asks)."""
 
-    def __init__(self, db: sqlite3.Connection) -> None:
+    def __init__(self, db: sqlite3.Connection, lock: threading.Lock) -> None:
         self._db = db
+        self._lock = lock
 
     def __enter__(self) -> None:
-        self._db.execute("BEGIN IMMEDIATE")
+        self._lock.acquire()
+        try:
+            self._db.execute("BEGIN IMMEDIATE")
+        except BaseException:
+            self._lock.release()
+            raise
 
     def __exit__(
         self,
@@ -480,11 +626,14 @@ class _Transaction:
         exc: BaseException | None,
         tb: TracebackType | None,
     ) -> None:
-        if exc_type is None:
-            self._db.execute("COMMIT")
-        else:
-            with contextlib.suppress(sqlite3.Error):  # a failed commit may have rolled back
-                self._db.execute("ROLLBACK")
+        try:
+            if exc_type is None:
+                self._db.execute("COMMIT")
+            else:
+                with contextlib.suppress(sqlite3.Error):  # a failed commit may have rolled back
+                    self._db.execute("ROLLBACK")
+        finally:
+            self._lock.release()
 
 
 def _identity(path: Path) -> tuple[int, int] | None:
@@ -550,12 +699,35 @@ def _setup_rows(db: sqlite3.Connection) -> list[SetupEntry]:
     if "setup" not in tables:
         return []
     rows = db.execute(
-        "SELECT after_seq, kind, name, sha256, content, ts FROM setup ORDER BY id"
+        "SELECT after_seq, kind, name, sha256, content, ts, id FROM setup ORDER BY id"
     ).fetchall()
     return [
-        SetupEntry(after_seq, kind, name, sha256, bytes(content), ts)
-        for after_seq, kind, name, sha256, content, ts in rows
+        SetupEntry(after_seq, kind, name, sha256, bytes(content), ts, id)
+        for after_seq, kind, name, sha256, content, ts, id in rows
     ]
+
+
+def _meta_int(db: sqlite3.Connection, key: str) -> int:
+    row = db.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+    return int(row[0]) if row else 0
+
+
+def _snapshot_rows(db: sqlite3.Connection) -> list[SnapshotInfo]:
+    tables = {row[0] for row in db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+    if "snapshot" not in tables:
+        return []
+    rows = db.execute(
+        "SELECT id, after_seq, setup_id, kind, format, sha256, LENGTH(state), ts FROM snapshot "
+        "ORDER BY after_seq DESC, id DESC"
+    ).fetchall()
+    return [SnapshotInfo(*row) for row in rows]
+
+
+def _snapshot_state(db: sqlite3.Connection, path: Path, snapshot_id: int) -> bytes:
+    row = db.execute("SELECT state FROM snapshot WHERE id = ?", (snapshot_id,)).fetchone()
+    if row is None:
+        raise JournalError(f"{path} has no snapshot {snapshot_id}")
+    return bytes(row[0])
 
 
 def read_setup(path: str | Path) -> list[SetupEntry]:
@@ -584,7 +756,53 @@ def read_setup(path: str | Path) -> list[SetupEntry]:
     return entries
 
 
-def read_journal(path: str | Path) -> Iterator[Record]:
+def read_snapshots(path: str | Path) -> list[SnapshotInfo]:
+    """A journal's snapshots (newest first), read without opening it for writing.
+
+    Raises:
+        JournalError: The file is missing or not a journal.
+    """
+    with _reading(path) as (db, _):
+        return _snapshot_rows(db)
+
+
+def read_snapshot_state(path: str | Path, snapshot_id: int) -> bytes:
+    """The state one snapshot holds, read without opening the journal for writing.
+
+    Raises:
+        JournalError: The file is missing, not a journal, or has no such snapshot.
+    """
+    with _reading(path) as (db, checked):
+        return _snapshot_state(db, checked, snapshot_id)
+
+
+def read_base_seq(path: str | Path) -> int:
+    """The sequence number a journal's first record follows (0, or the day before's last record
+    for a new day's journal), read without opening it for writing.
+
+    Raises:
+        JournalError: The file is missing or not a journal.
+    """
+    with _reading(path) as (db, _):
+        return _meta_int(db, "base_seq")
+
+
+@contextlib.contextmanager
+def _reading(path: str | Path) -> Iterator[tuple[sqlite3.Connection, Path]]:
+    path = Path(path)
+    if not path.is_file():
+        raise JournalError(f"{path} does not exist; give the journal file written by 'tracker run'")
+    db = _connect(path, readonly=True)
+    try:
+        _check_format(db, path)
+        yield db, path
+    except sqlite3.Error as exc:
+        raise JournalError(f"cannot read {path}: {exc}") from exc
+    finally:
+        db.close()
+
+
+def read_journal(path: str | Path, after: int = 0) -> Iterator[Record]:
     """Read a journal written by the daemon, record by record, for replay or export.
 
     The file is opened read-only (a crashed writer's WAL is recovered, not modified), so it can be
@@ -592,6 +810,7 @@ def read_journal(path: str | Path) -> Iterator[Record]:
 
     Args:
         path: The journal file.
+        after: Only the records numbered above this (a replay from a snapshot).
 
     Yields:
         :class:`tracker.edge.records.Record` per journal row: ``line`` is the sequence number,
@@ -608,7 +827,7 @@ def read_journal(path: str | Path) -> Iterator[Record]:
         _check_format(db, path)
         # One read transaction: a consistent snapshot even while a writer appends.
         db.execute("BEGIN")
-        yield from _iter_records(db, path, 0)
+        yield from _iter_records(db, path, after)
     except sqlite3.Error as exc:
         raise JournalError(f"cannot read {path}: {exc}") from exc
     finally:

@@ -20,7 +20,6 @@ from typing import Any
 
 from tracker.core.formats import utc_text
 from tracker.core.topics import DEFAULT_ROOT
-from tracker.edge.digest import ErrorDigest
 from tracker.edge.intake import DEFAULT_TICK_SECONDS, EngineLike, Intake, has_ticks
 from tracker.edge.recordings import BadLine, parse_ts_or_none, read_jsonl
 from tracker.edge.records import Record
@@ -94,6 +93,7 @@ def replay(
     sort: bool = False,
     changes: Sequence[tuple[int, Callable[[], None]]] = (),
     progress: Callable[[int], None] | None = None,
+    intake: Intake | None = None,
 ) -> ReplayResult:
     """Run an engine over a whole recording.
 
@@ -112,6 +112,9 @@ def replay(
         changes: ``(after, change)`` pairs: ``change()`` is called before the first line
             numbered above ``after`` (a journal's later setups, :mod:`tracker.shell.setup`).
         progress: Called with the number of lines done, every few thousand lines and at the end.
+        intake: Go on from this intake (and its engine, which must be ``engine``): the state a
+            snapshot holds (:func:`restore`); ``records`` are then the journal's records after
+            it. ``None``: a fresh intake for ``engine``.
 
     Returns:
         The outputs and the summary.
@@ -119,14 +122,14 @@ def replay(
     lines = list(records)
     if sort:
         lines = sort_by_time(lines)
-    intake = Intake(
-        engine,
-        root=root,
-        derive_ticks=not has_ticks(lines, root),
-        tick_seconds=tick_seconds,
-        check_time=check_time,
-    )
-    digest = ErrorDigest(root)
+    if intake is None:
+        intake = Intake(
+            engine,
+            root=root,
+            derive_ticks=not has_ticks(lines, root),
+            tick_seconds=tick_seconds,
+            check_time=check_time,
+        )
     result = ReplayResult()
     chunk = 2048
     # What a chunk leaves behind (the engine's state, the outputs) lives until the replay ends,
@@ -143,10 +146,10 @@ def replay(
                 cut = next((i for i, line in enumerate(block) if line.line > pending[0][0]), None)
                 if cut is None:
                     break
-                _feed(intake, digest, block[:cut], result)
+                _feed(intake, block[:cut], result)
                 pending.pop(0)[1]()
                 block = block[cut:]
-            _feed(intake, digest, block, result)
+            _feed(intake, block, result)
             if freeze:
                 gc.freeze()
             if progress is not None and start + chunk < len(lines):
@@ -154,19 +157,62 @@ def replay(
     finally:
         if freeze:
             gc.unfreeze()
-    result.add(digest.close())  # what the last interval held back
+    result.add(intake.close())  # what the error digest's last interval held back
     if progress is not None:
         progress(len(lines))
     result.summary = finish_summary(engine, intake)
     return result
 
 
-def _feed(
-    intake: Intake, digest: ErrorDigest, block: Sequence[Record | BadLine], result: ReplayResult
-) -> None:
-    """Feed lines to the intake and file what the digest lets through of their outputs."""
-    for record, outputs in zip(block, intake.feed_many(block), strict=True):
-        result.add(digest.admit(record, outputs))
+@dataclass(frozen=True)
+class Restored:
+    """The state a journal's snapshot holds, to replay the records after it.
+
+    Attributes:
+        intake: The intake, holding the engine (:attr:`Intake.engine`).
+        after_seq: The last journal record applied to it.
+        setup_id: The last setup entry in force in it (:func:`tracker.shell.setup.later_changes`).
+    """
+
+    intake: Intake
+    after_seq: int
+    setup_id: int
+
+
+def restore(path: str | Path, *, at: int | None = None, field: str = "--from-snapshot") -> Restored:
+    """The newest snapshot of a journal that loads (taken at or before record ``at``, if given).
+
+    Raises:
+        InputError: No snapshot of the journal loads (each one's reason is given).
+    """
+    from tracker.shell import snapshot
+    from tracker.shell.journal import read_snapshot_state, read_snapshots
+
+    reasons: list[str] = []
+    for info in read_snapshots(path):
+        if at is not None and info.after_seq > at:
+            continue
+        try:
+            intake = snapshot.load(
+                read_snapshot_state(path, info.id), format=info.format, sha256=info.sha256
+            )
+        except snapshot.SnapshotUnusable as exc:
+            reasons.append(f"the one after record {info.after_seq}: {exc.reason}")
+            continue
+        return Restored(intake, info.after_seq, info.setup_id)
+    where = "" if at is None else f" at or before record {at}"
+    why = f" ({'; '.join(reasons)})" if reasons else ""
+    raise InputError(
+        f"{path} has no snapshot{where} that this tracker can use{why}; replay it from its first "
+        "record instead",
+        field=field,
+    )
+
+
+def _feed(intake: Intake, block: Sequence[Record | BadLine], result: ReplayResult) -> None:
+    """Feed lines to the intake and file their outputs (errors thinned out by its digest)."""
+    for outputs in intake.feed_many(block):
+        result.add(outputs)
 
 
 def sort_by_time(lines: list[Record | BadLine]) -> list[Record | BadLine]:

@@ -111,6 +111,35 @@ def timeline(entries: Sequence[SetupEntry]) -> list[tuple[int, Setup]]:
     return result
 
 
+def timeline_ids(entries: Sequence[SetupEntry]) -> list[tuple[int, Setup, int]]:
+    """:func:`timeline` with, for each setup, the id of the last entry it holds (a snapshot
+    holds the setups up to the entry it names, :mod:`tracker.shell.snapshot`).
+
+    Raises:
+        InputError: an entry cannot be read back.
+    """
+    return [
+        (after, setup, max(entry.id for entry in entries if entry.after_seq <= after))
+        for after, setup in timeline(entries)
+    ]
+
+
+def later_changes(
+    entries: Sequence[SetupEntry], engine: Any, after_id: int
+) -> list[tuple[int, Callable[[], None]]]:
+    """The setups a journal records after entry ``after_id``, as ``(after, change)`` pairs for
+    :func:`tracker.shell.replay.replay` that switch ``engine`` to each at its place.
+
+    Raises:
+        InputError: an entry cannot be read back.
+    """
+    return [
+        (after, functools.partial(apply, engine, setup))
+        for after, setup, last in timeline_ids(entries)
+        if last > after_id
+    ]
+
+
 def engine_of(setup: Setup) -> Engine:
     """A fresh engine with ``setup``'s settings, profiles and root."""
     from tracker.core.engine import Engine
@@ -151,8 +180,10 @@ __all__ = [
     "differences",
     "engine_of",
     "entries_of",
+    "later_changes",
     "removed_profiles",
     "timeline",
+    "timeline_ids",
 ]
 
 

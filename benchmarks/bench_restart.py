@@ -1,0 +1,210 @@
+"""Restart time of the daemon after busy days, with and without snapshots, and references.
+
+Invented data only: the busy day of ``bench_replay.py`` (50 made-up symbols X_HX00..X_HX49 on the
+made-up venue Harbour Lane Exchange, 500 parent orders over the 09:30-16:00 session, one bin per
+symbol and 5-minute bin, about 200,000 fills), repeated over consecutive days with new order ids,
+journaled as the daemon journals it (each message with its receive time, a tick a minute).
+
+The journal is built as the live daemon builds it: every record goes through the daemon's intake
+and engine, and a snapshot is stored every ``--snapshot-records`` records (the daemon's default),
+so the journal ends with a tail of records after its last snapshot, as after a crash.
+
+Figures printed, per number of days:
+
+1. the restart (``Daemon.__aenter__``: open the journal, recover, journal the setup; no broker),
+   replaying the whole journal (``snapshot_records = 0``);
+2. the same restart with the snapshots: the newest loaded, then the tail replayed; and its worst
+   case, with a tail of ``--snapshot-records`` records (the tail's cost per record, measured here);
+3. references in the same run: reading the journal's records alone, and loading the newest
+   snapshot alone.
+
+Times are wall-clock seconds (a restart is waited for in wall time) and CPU seconds of this
+process beside them (the machine may be shared).
+
+Run: ``.venv/bin/python benchmarks/bench_restart.py [--days 1 5] [--fills 200000]
+[--snapshot-records 10000]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import json
+import sys
+import tempfile
+import time
+from datetime import date, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+import bench_replay  # the busy day's generator
+
+from tracker.core.topics import DEFAULT_ROOT, Topics
+from tracker.edge.wire import Tick, encode
+from tracker.shell import snapshot
+from tracker.shell.config import BrokerSettings, Settings
+from tracker.shell.daemon import Daemon, build_engine
+from tracker.shell.journal import Journal
+
+ROOT = DEFAULT_ROOT
+TOPICS = Topics(ROOT)
+
+
+def day_rows(day: int, fills: int) -> list[tuple[str, bytes, str]]:
+    """One busy day as journal rows ``(topic, payload, receive time)``, in time order, with a
+    tick every minute of receive time; order and fill ids carry the day's number."""
+    bench_replay.DAY = date(2026, 3, 9) + timedelta(days=day)
+    while bench_replay.DAY.weekday() >= 5:  # the session's days
+        day += 1
+        bench_replay.DAY = date(2026, 3, 9) + timedelta(days=day)
+    rows: list[tuple[str, bytes, str]] = []
+    next_tick: datetime | None = None
+    suffix = f"-D{day}"
+    for text in bench_replay.make_day(50, 10, fills):
+        line = json.loads(text)
+        payload: dict[str, Any] = line["payload"]
+        topic = line["topic"]
+        if "order_id" in payload:
+            payload["order_id"] += suffix
+            kind = "orders" if payload["type"] == "order" else "fills"
+            topic = getattr(TOPICS, kind)(payload["order_id"])
+        if "fill_id" in payload:
+            payload["fill_id"] += suffix
+        when = datetime.fromisoformat(line["ts"])
+        while next_tick is not None and next_tick <= when:
+            stamp = next_tick.isoformat().replace("+00:00", "Z")
+            rows.append((TOPICS.tick, encode(Tick(ts=next_tick)), stamp))
+            next_tick += timedelta(minutes=1)
+        if next_tick is None:
+            next_tick = when.replace(second=0, microsecond=0) + timedelta(minutes=1)
+        rows.append((topic, json.dumps(payload, separators=(",", ":")).encode(), line["ts"]))
+    return rows
+
+
+def build_journal(path: Path, days: int, fills: int, every: int) -> tuple[int, int]:
+    """Journal ``days`` busy days through the daemon's intake and engine, with a snapshot every
+    ``every`` records; return the number of records and the seq of the last snapshot."""
+    from tracker.edge.intake import Intake
+    from tracker.shell.setup import Setup, entries_of
+
+    settings = _settings(path, every)
+    engine = build_engine(settings)
+    intake = Intake(engine, root=ROOT, derive_ticks=False)
+    last_snapshot = 0
+    with Journal(path, durability="normal") as journal:
+        setup = Setup(ROOT, engine.config, {})
+        journal.describe(entries_of(setup), "2026-03-10T00:00:00.000000Z")
+        for day in range(days):
+            rows = day_rows(day, fills)
+            for start in range(0, len(rows), 64):  # groups as the daemon commits them
+                group = rows[start : start + 64]
+                seqs = journal.append_many(group, published_through=journal.last_seq)
+                records = list(journal.records(after=seqs[0] - 1))
+                intake.feed_many(records)
+                if seqs[-1] - last_snapshot >= every:
+                    journal.mark_published(seqs[-1])
+                    journal.save_snapshot(
+                        after_seq=seqs[-1],
+                        setup_id=journal.setup_id,
+                        kind="interval",
+                        format=snapshot.format_tag(),
+                        state=snapshot.dump(intake),
+                        ts=group[-1][2],
+                    )
+                    last_snapshot = seqs[-1]
+        journal.mark_published(journal.last_seq)
+        return journal.last_seq, last_snapshot
+
+
+def _settings(path: Path, every: int) -> Settings:
+    return Settings(
+        journal=path,
+        broker=BrokerSettings(port=1),  # nothing listens: the start-up check fails at once
+        root=ROOT,
+        instance="bench",
+        snapshot_records=every,
+    )
+
+
+def restart(path: Path, every: int) -> tuple[float, float, int, int | None]:
+    """Wall and CPU seconds of a daemon's start (recovery), the records it replayed and the
+    snapshot it started from."""
+
+    async def enter() -> tuple[float, float, int, int | None]:
+        wall, cpu = time.perf_counter(), time.process_time()
+        daemon = Daemon(_settings(path, every))
+        await daemon.__aenter__()
+        wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+        recovered, restored = daemon.recovered, daemon.restored_from
+        daemon._close_journal()  # not __aexit__: leave the journal as it was for the next run
+        daemon._unlock()
+        return wall, cpu, recovered, restored
+
+    return asyncio.run(enter())
+
+
+def read_all(path: Path) -> float:
+    """Wall seconds to read (and CRC-check) every record of the journal."""
+    started = time.perf_counter()
+    with Journal(path) as journal:
+        count = sum(1 for _ in journal.records())
+    assert count > 0
+    return time.perf_counter() - started
+
+
+def load_newest(path: Path) -> tuple[float, int]:
+    """Wall seconds to read and load the newest snapshot alone, and its size in bytes."""
+    started = time.perf_counter()
+    with Journal(path) as journal:
+        info = journal.snapshots()[0]
+        state = journal.snapshot_state(info.id)
+    snapshot.load(state, format=info.format, sha256=info.sha256)
+    return time.perf_counter() - started, len(state)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Build the journals, time the restarts, print the figures."""
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--days", type=int, nargs="+", default=[1, 5])
+    parser.add_argument("--fills", type=int, default=200_000)
+    default = Settings(Path(".")).snapshot_records
+    parser.add_argument("--snapshot-records", type=int, default=default)
+    args = parser.parse_args(argv)
+    every = args.snapshot_records
+    for days in args.days:
+        with tempfile.TemporaryDirectory() as folder:
+            path = Path(folder) / "journal.sqlite"
+            started = time.perf_counter()
+            total, last = build_journal(path, days, args.fills, every)
+            built = time.perf_counter() - started
+            read = read_all(path)
+            loaded, size = load_newest(path)
+            wall, cpu, recovered, restored = restart(path, every)
+            full_wall, full_cpu, full_recovered, _ = restart(path, 0)
+        assert restored == last and recovered == total - last and full_recovered == total
+        tail = wall - loaded
+        per_record = max(tail, 0.0) / max(recovered, 1)
+        worst = loaded + per_record * every
+        print(
+            f"{days} day(s): {total:,} records, a snapshot every {every:,} (the last after record "
+            f"{last:,}, {size / 1e6:.1f} MB); journal built in {built:.0f} s"
+        )
+        print(
+            f"  restart replaying the whole journal: {full_wall:.2f} s wall ({full_cpu:.2f} s CPU)"
+        )
+        print(
+            f"  restart from the newest snapshot + {recovered:,} records of tail: {wall:.2f} s "
+            f"wall ({cpu:.2f} s CPU) = {full_wall / wall:.1f}x faster; worst case (a tail of "
+            f"{every:,} records at {1e6 * per_record:.0f} us each): {worst:.2f} s (goal < 3 s)"
+        )
+        print(
+            f"  references: reading the journal's records alone {read:.2f} s "
+            f"({total / read:,.0f} records/s); loading the newest snapshot alone {loaded:.2f} s"
+        )
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
