@@ -76,6 +76,7 @@ def run_day(
             result.add(outputs)
             for message in outputs:
                 scenario.on_output(message)
+    result.add(intake.close())  # as a replay of the recording ends
     result.summary = finish_summary(engine, intake)
     return DayRun(records=records, lines=lines, result=result)
 
