@@ -94,15 +94,16 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from typing import Any, Protocol
 
-from tracker.core.alerts import CLOCK_SKEW
+from tracker.core.alerts import CLOCK_SKEW, SOURCE_GAP
 from tracker.core.alerts import event as rules_event
 from tracker.core.formats import utc_text
 from tracker.core.messages import (
     AckMessage,
+    AlertMessage,
     BinMessage,
     ControlMessage,
     ErrorMessage,
@@ -189,8 +190,10 @@ class Intake:
         #: Thins out floods of error records (:mod:`tracker.edge.digest`); kept here so that
         #: every shell thins them alike and a snapshot of the intake holds its counts.
         self.digest = digest if digest is not None else ErrorDigest(root)
+        self.gaps_opened = 0  # jumps in a source's seq (each raised a source_gap alert)
         self.skewed = 0  # lines applied at their receive time with a clock_skew alert
         self._skew_told: set[tuple[str | None, str]] = set()  # (order id, kind) alerted on
+        self._sequences: dict[str, Sequenced] = {}  # per source: its counter and its gaps
         self._rules_of: object = None  # the settings _rules_now was read from
         self._rules_now: TimeRules | None = None
 
@@ -244,7 +247,9 @@ class Intake:
             if isinstance(staged, list):
                 results[index].extend(staged)
                 continue
-            message, key, recorded, unknown = staged
+            message, key, recorded, unknown, stamp = staged
+            if stamp is not None:  # arrived, whatever becomes of it: a copy, refused or taken
+                results[index].extend(self._sequence(stamp, recorded or _message_time(message)))
             if key is not None and key in pending_keys:
                 flush()  # whether it is a redelivery depends on the first copy's fate
             if key is not None and key in self._seen:
@@ -302,9 +307,12 @@ class Intake:
 
     def _stage(
         self, record: Record | BadLine
-    ) -> list[Outbound] | tuple[Inbound, Identity | None, datetime | None, tuple[str, ...]]:
+    ) -> (
+        list[Outbound]
+        | tuple[Inbound, Identity | None, datetime | None, tuple[str, ...], tuple[str, int] | None]
+    ):
         """The line's own checks: its error (and ack), or the decoded message, its identity, its
-        time and the fields it carried beyond the contract."""
+        time, the fields it carried beyond the contract and its ``(source, seq)`` stamp."""
         if isinstance(record, BadLine):
             when = parse_ts_or_none(record.ts)
             return self._reject(record.line, record.topic, record.raw, record.reason, when)
@@ -322,7 +330,7 @@ class Intake:
                     None,
                 )
         try:
-            message, unknown = decode_reading(record.topic, record.payload, root=self.root)
+            message, unknown, stamp = decode_reading(record.topic, record.payload, root=self.root)
         except WireError as exc:
             return self._reject(
                 record.line, record.topic, payload_text(record.payload), exc.reason, recorded
@@ -330,7 +338,63 @@ class Intake:
         # Ticks are made by the shell, never redelivered by a broker; two equal ones are harmless
         # to the engine and are not remembered (a long-running daemon makes one a second).
         key = None if isinstance(message, Tick) else _identity(record.topic, message)
-        return message, key, recorded, unknown
+        return message, key, recorded, unknown, stamp
+
+    def _sequence(self, stamp: tuple[str, int], when: datetime | None) -> list[Outbound]:
+        """Follow a source's counter: a jump opens a gap (a critical ``source_gap`` alert naming
+        the missing numbers); a late message fills its place, and a gap filled whole is cleared."""
+        source, seq = stamp
+        ts = when or self._last or _EPOCH
+        known = self._sequences.get(source)
+        if known is None:
+            if len(self._sequences) >= MAX_SOURCES:
+                return []  # beyond the bound a source is not followed (the summary says so)
+            self._sequences[source] = Sequenced(last=seq)
+            return []
+        if seq == known.last + 1:
+            known.last = seq
+            return []
+        if seq > known.last + 1:
+            first, last = known.last + 1, seq - 1
+            known.last = seq
+            known.open(first, last)
+            self.gaps_opened += 1
+            count = last - first + 1
+            span = f"{first}" if first == last else f"{first} to {last}"
+            return [
+                rules_event(
+                    SOURCE_GAP,
+                    f"Source {source!r} skipped seq {span} ({count:,} message"
+                    f"{'s' if count > 1 else ''}): they never arrived, so fills, orders or bins "
+                    "may be missing. Check the broker (a queue limit drops messages) and have the "
+                    "source re-send them; they are applied when they come.",
+                    order_id=None,
+                    symbol=None,
+                    ts=ts,
+                    details={"source": source, "first_missing": first, "last_missing": last},
+                )
+            ]
+        if known.fill(seq) and not known.gaps:  # the last missing message came late
+            return [
+                AlertMessage(
+                    order_id=None,
+                    code=SOURCE_GAP,
+                    severity="info",
+                    state="cleared",
+                    message=f"Source {source!r}: every skipped message has now arrived.",
+                    details={"source": source},
+                    ts=ts,
+                )
+            ]
+        return []
+
+    def gaps(self) -> dict[str, list[list[int]]]:
+        """Per source, the ranges ``[first, last]`` of sequence numbers still missing."""
+        return {
+            source: [list(gap) for gap in known.gaps]
+            for source, known in sorted(self._sequences.items())
+            if known.gaps
+        }
 
     def _rules(self) -> TimeRules | None:
         """The engine's time tolerances, or ``None`` when its clock is the messages' own ts
@@ -466,7 +530,38 @@ class Intake:
             "rejected": self.rejected,
             "ticks_derived": self.ticks_derived,
             "clock_skew": self.skewed,
+            "gaps_opened": self.gaps_opened,
+            "sources": len(self._sequences),
         }
+
+
+#: At most this many sources are followed (a bound on memory); a source beyond it is not.
+MAX_SOURCES = 10_000
+#: At most this many open gaps are kept per source; beyond it the oldest is forgotten (its alert
+#: stands; the summary's ``gaps_opened`` still counts it).
+MAX_GAPS = 1_000
+
+
+@dataclass(slots=True)
+class Sequenced:
+    """One source's counter: the highest ``seq`` seen and the ranges still missing."""
+
+    last: int
+    gaps: list[tuple[int, int]] = field(default_factory=list)
+
+    def open(self, first: int, last: int) -> None:
+        self.gaps.append((first, last))
+        if len(self.gaps) > MAX_GAPS:
+            del self.gaps[0]
+
+    def fill(self, seq: int) -> bool:
+        """Take a late ``seq`` out of its gap; whether it was missing."""
+        for index, (first, last) in enumerate(self.gaps):
+            if first <= seq <= last:
+                rest = [(a, b) for a, b in ((first, seq - 1), (seq + 1, last)) if a <= b]
+                self.gaps[index : index + 1] = rest
+                return True
+        return False
 
 
 @dataclass(frozen=True, slots=True)

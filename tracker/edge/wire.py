@@ -40,7 +40,7 @@ import math
 import re
 from collections.abc import Mapping
 from datetime import UTC, datetime
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Literal, Self
 
 from pydantic import (
     AfterValidator,
@@ -215,6 +215,22 @@ class _Inbound(BaseModel):
     model_config = ConfigDict(frozen=True, extra="allow")
 
     version: str | None = None  # the contract version the sender follows (informative)
+    #: Optional sequence stamp (contract v1.1): the sending process's name and its message
+    #: counter (1, 2, 3, ... across every topic it publishes on). A gap in a source's ``seq``
+    #: means messages between them were lost on the way (a broker dropping a queue): the intake
+    #: raises a critical ``source_gap`` alert naming the source and the missing numbers.
+    source: Id | None = None
+    seq: Annotated[int, Field(strict=True, ge=1, le=MAX_MAGNITUDE)] | None = None
+
+    @model_validator(mode="after")
+    def _stamped_whole(self) -> Self:
+        if (self.source is None) != (self.seq is None):
+            missing = "seq" if self.seq is None else "source"
+            raise ValueError(
+                f"{missing}: 'source' and 'seq' come together (the sender's name and its "
+                "message counter); send both or neither"
+            )
+        return self
 
 
 class _Outbound(BaseModel):
@@ -706,7 +722,7 @@ def decode(
 
 def decode_reading(
     topic: str, payload: bytes | str | Mapping[str, Any], *, root: str = DEFAULT_ROOT
-) -> tuple[Inbound, tuple[str, ...]]:
+) -> tuple[Inbound, tuple[str, ...], tuple[str, int] | None]:
     """Validate one inbound message and say which fields it carried beyond the contract.
 
     Args:
@@ -715,8 +731,8 @@ def decode_reading(
         root: The topic root.
 
     Returns:
-        The core event, and the names of the fields the contract does not name (sorted; a fill
-        keeps their values in ``extra``).
+        The core event, the names of the fields the contract does not name (sorted; a fill
+        keeps their values in ``extra``), and its ``(source, seq)`` stamp when it has one.
 
     Raises:
         WireError: the topic, the JSON or a required field is wrong; ``reason`` names the field.
@@ -764,7 +780,8 @@ def decode_reading(
             order_id=order_id,
         )
     extra = valid.model_extra or {}
-    return _event(valid, extra), tuple(sorted(extra))
+    stamp = None if valid.source is None or valid.seq is None else (valid.source, valid.seq)
+    return _event(valid, extra), tuple(sorted(extra)), stamp
 
 
 def _values(model: BaseModel) -> dict[str, Any]:
@@ -773,6 +790,8 @@ def _values(model: BaseModel) -> dict[str, Any]:
     values = dict(model.__dict__)
     del values["type"]
     values.pop("version", None)
+    values.pop("source", None)
+    values.pop("seq", None)
     return values
 
 
@@ -791,7 +810,7 @@ def _event(valid: _Inbound, extra: Mapping[str, Any]) -> Inbound:
     if isinstance(valid, OrderPayload):
         return OrderMessage(
             **_values(valid),
-            fields_set=frozenset(valid.model_fields_set - {"type", "version"}),
+            fields_set=frozenset(valid.model_fields_set - {"type", "version", "source", "seq"}),
         )
     if isinstance(valid, FillCorrectionPayload):
         return FillCorrectionMessage(**_values(valid))

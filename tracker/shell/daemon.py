@@ -1053,6 +1053,8 @@ class Daemon:
             "inbox_capacity": self.inbox.maxsize,
             "outbox": len(self.outbox),
             "backpressure": self.bus.backpressure or self.outbox.full,
+            # per source, the seq ranges that never arrived (a broker dropped them)
+            "gaps": {} if self._intake is None else self._intake.gaps(),
         }
 
     def summary(self) -> dict[str, Any]:

@@ -233,6 +233,7 @@ def finish_summary(engine: EngineLike, intake: Intake) -> dict[str, Any]:
     """The engine's summary with the intake's counts added under ``replay``."""
     summary = dict(engine.summary())
     summary["replay"] = intake.counts()
+    summary["gaps"] = intake.gaps()  # per source, the seq ranges that never arrived
     return summary
 
 
