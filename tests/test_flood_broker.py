@@ -45,6 +45,7 @@ def _settings(tmp_path: Path, port: int) -> Settings:
         instance="f1",
         clock_start=datetime.fromisoformat(day_start()),
         heartbeat_seconds=1.0,
+        engine={"event_time": "message"},  # the messages are stamped an hour past the clock
     )
 
 
