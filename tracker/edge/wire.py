@@ -419,11 +419,14 @@ class TargetPayload(_Outbound):
     (``quantity`` / the bin's forecast volume) and ``max_participation`` the cap as a rate (null
     when uncapped): a router that sees the market trade more or less than forecast works
     ``participation`` x the real volume and executes never more than ``max_participation`` x the
-    real volume nor ``remaining``. ``quantity`` and ``max_quantity`` are the same at the forecast
-    volume.
+    real volume nor ``remaining``. Within the cap, ``quantity`` is ``participation`` x the
+    forecast volume.
     When the order's fills have run below its targets (the engine learns its fill ratio ``r``),
-    ``quantity`` and ``participation`` ask for the planned fills over ``r``, never more than
-    ``max_quantity`` and ``max_participation``.
+    ``quantity`` asks for the planned fills over ``r``, never more than ``max_quantity``; and
+    ``participation`` may then exceed ``max_participation`` -- up to ``max_participation / r``,
+    or ``/ r**2`` when the target is the cap, never above 1 -- so that a router that fills part of
+    what it works still reaches the cap. The cap on what is *executed* stays
+    ``max_participation`` x the real volume.
     """
 
     type: Literal["target"] = "target"
