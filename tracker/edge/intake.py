@@ -21,11 +21,18 @@ ends in exactly one of three ways:
      that is not ISO 8601 with an offset;
   2. message level: :func:`tracker.edge.wire.decode` (bad JSON in a raw payload, missing field,
      wrong type, negative or NaN quantity, unknown type, wrong topic for the payload);
-  3. the engine's own verdict (a bin off the session's grid, ...): every ErrorMessage the engine
+  3. time: the message's own ``ts`` against the line's receive time (see "Time" below);
+  4. the engine's own verdict (a bin off the session's grid, ...): every ErrorMessage the engine
      returns while handling a line gets that line's number.
 
   A refused *order* message also gets its one :class:`~tracker.core.messages.AckMessage`
   (rejected, with the reason) when its topic names the order.
+
+Alerts the intake raises itself: ``clock_skew`` (see "Time") and ``source_gap``: a message may
+carry a sequence stamp (``source``, ``seq``); a jump in a source's ``seq`` is a loss on the way,
+raised once with the missing numbers (:meth:`Intake.gaps` lists what is still missing) and
+cleared when late messages fill it. The stamp is followed before the redelivery check, so a copy
+re-sent under a new ``seq`` is no gap.
 
 Remarks (``info`` error records; the line is accepted all the same):
 
