@@ -240,10 +240,18 @@ def test_invalid_message_raises_wire_error_with_reason(
 def test_unknown_fields_are_accepted_named_and_kept_by_a_fill() -> None:
     """Tolerant reading: fields beyond the contract cost nothing; a fill keeps them."""
     payload = with_(FILL, venue="X_HLX", exec_id="E-7", liquidity="added")
-    message, unknown = decode_reading("tracker/fills/X_ZEPH-1", payload)
+    message, unknown, stamp = decode_reading("tracker/fills/X_ZEPH-1", payload)
     assert isinstance(message, FillMessage)
-    expected = (("exec_id", "liquidity", "venue"), {"exec_id": "E-7", "liquidity": "added"})
-    assert expected == (unknown, {k: message.extra[k] for k in ("exec_id", "liquidity")})
+    expected = (("exec_id", "liquidity", "venue"), {"exec_id": "E-7", "liquidity": "added"}, None)
+    assert expected == (unknown, {k: message.extra[k] for k in ("exec_id", "liquidity")}, stamp)
+
+
+def test_sequence_stamp_is_read_not_kept_as_an_extra_field() -> None:
+    """``source`` and ``seq`` are contract fields: returned as the stamp, not among the extras."""
+    payload = with_(FILL, source="gw-1", seq=7)
+    message, unknown, stamp = decode_reading("tracker/fills/X_ZEPH-1", payload)
+    assert isinstance(message, FillMessage)
+    assert ((), {}, ("gw-1", 7)) == (unknown, dict(message.extra), stamp)
 
 
 def test_cancel_that_echoes_the_order_decodes() -> None:
