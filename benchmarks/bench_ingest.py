@@ -19,7 +19,8 @@ messages queued per client, no persistence), (a) the burst while the daemon is c
 Lost fills = fills published - fills counted in the summary the daemon writes at its orderly
 stop. When the daemon's health carries a ``gaps`` field (per-source sequence numbers), it and the
 number of alerts whose code names a gap are printed too; ``--sequence SOURCE`` stamps every fill
-with ``source`` and ``seq`` fields for that.
+with ``source`` and ``seq`` fields for that, and the source sends one heartbeat (the next ``seq``)
+once its fills are out and the daemon has gone quiet, as a source with nothing more to say does.
 
     .venv/bin/python benchmarks/bench_ingest.py                # both parts, about 4 minutes
     .venv/bin/python benchmarks/bench_ingest.py --only rate
@@ -218,6 +219,15 @@ def stamped(
     return out
 
 
+def heartbeats(source: str | None, seq: int) -> list[tuple[str, bytes]]:
+    """A source's heartbeat numbered ``seq`` (what it sends when it has had nothing else to say
+    for a while), or nothing when fills are not stamped."""
+    if source is None:
+        return []
+    document = {"type": "heartbeat", "source": source, "seq": seq}
+    return [(f"{ROOT}/control", json.dumps(document, separators=(",", ":")).encode())]
+
+
 async def settle(counter: Counter, target: int, quiet: float, timeout: float) -> None:
     """Until ``target`` messages came, or none for ``quiet`` seconds."""
     deadline = time.monotonic() + timeout
@@ -315,6 +325,10 @@ async def burst_loss(args: argparse.Namespace, folder: Path, contract: list[str]
                 status.reset()
                 await blast(broker.port, fills, "fills-pub")
                 await settle(status, len(fills), quiet=5.0, timeout=600)
+                beat = heartbeats(args.sequence, len(fills) + 1)
+                if beat:
+                    await blast(broker.port, beat, "beat-pub")
+                    await asyncio.sleep(2.0)
                 gaps = await gap_report(broker.port, alerts)
         finally:
             daemon.stop()
@@ -356,6 +370,10 @@ async def kill_loss(args: argparse.Namespace, folder: Path, contract: list[str] 
             ):
                 alerts.keep = True
                 await settle(status, 10**9, quiet=5.0, timeout=600)
+                beat = heartbeats(args.sequence, len(fills) + 1)
+                if beat:
+                    await blast(broker.port, beat, "beat-pub")
+                    await asyncio.sleep(2.0)
                 gaps = await gap_report(broker.port, alerts)
         finally:
             daemon.stop()

@@ -325,9 +325,10 @@ class DaemonProcess:
         return self.wait(timeout)
 
     def kill(self) -> None:
-        """kill -9."""
+        """kill -9 (and the log closed, whether it still ran or not)."""
         if self.process is not None and self.process.poll() is None:
             self.process.kill()
+        if self.process is not None:
             self.wait(30)
 
     def wait(self, timeout: float) -> int:

@@ -4,7 +4,8 @@ tests/test_contract_broker.py).
 
 Each case is what an order router or a venue gateway really sends -- an echoed cancel, fills with
 extra fields, a fill before its order, a fill re-sent with a new ts, a bust, a correction, a
-recording merged out of time order, a restart in the middle of a bin -- with the filled shares,
+recording merged out of time order, messages numbered by their gateway with a heartbeat between
+them, a restart in the middle of a bin -- with the filled shares,
 the order's state and the last target that must come out. Times are on 2026-03-10 (New York on
 daylight time: the session opens at 13:30 UTC); X_ZEPH runs on the stated default profile.
 """
@@ -73,6 +74,11 @@ def correction(fill_id: str, ts: float, **values: Any) -> tuple[str, dict[str, A
         **values,
     }
     return f"{ROOT}/fills/{ORDER_ID}", payload
+
+
+def heartbeat(source: str, seq: int, ts: float) -> tuple[str, dict[str, Any]]:
+    """A gateway's heartbeat: it takes the next number of the gateway's sequence."""
+    return f"{ROOT}/control", {"type": "heartbeat", "source": source, "seq": seq, "ts": at(ts)}
 
 
 def echoed_cancel(ts: float) -> tuple[str, dict[str, Any]]:
@@ -173,6 +179,18 @@ CASES: dict[str, Case] = {
             (*fill("F1", 300, 42.0, 10), at(10)),  # merged from another capture point
         ],
         filled=1_000,
+        state="working",
+        target_state="working",
+        target_reasons=WORKING,
+    ),
+    "stamped-with-heartbeats": Case(
+        _lines(
+            order(source="gw", seq=1),
+            fill("F1", 1_000, 42.0, 10, source="gw", seq=2),
+            heartbeat("gw", 3, 15),
+            fill("F2", 500, 42.0, 20, source="gw", seq=4),
+        ),
+        filled=1_500,
         state="working",
         target_state="working",
         target_reasons=WORKING,

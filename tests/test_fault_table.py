@@ -162,6 +162,10 @@ ELSEWHERE = {
         "test_daemon_faults.py",
         "test_kill_9_mid_day_and_restart_gives_the_uninterrupted_summary",
     ),
+    "stock broker drops a source's last messages: its heartbeat reveals them": (
+        "test_sequence_broker.py",
+        "test_a_heartbeat_reveals_the_tail_a_full_queue_dropped",
+    ),
     "broker restart mid-day": (
         "test_daemon_faults.py",
         "test_broker_restart_mid_day_loses_nothing",

@@ -149,7 +149,7 @@ MALFORMED = [
     ),
     pytest.param(
         {**fill("F9", 300, 120), "payload": {**fill("F9", 300, 120)["payload"], "type": "trade"}},
-        "one of bin, control, fill, fill_correction, order, tick",
+        "one of bin, control, fill, fill_correction, heartbeat, order, tick",
         id="unknown-type",
     ),
     pytest.param(

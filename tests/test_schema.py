@@ -8,7 +8,18 @@ from pathlib import Path
 from tracker.cli import main
 from tracker.edge.wire import TargetPayload
 
-TYPES = ("ack", "alert", "bin", "control", "error", "fill", "fill_correction", "order", "status")
+TYPES = (
+    "ack",
+    "alert",
+    "bin",
+    "control",
+    "error",
+    "fill",
+    "fill_correction",
+    "heartbeat",
+    "order",
+    "status",
+)
 
 
 def test_schema_writes_one_file_per_message_type_with_the_version(tmp_path: Path) -> None:

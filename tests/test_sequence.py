@@ -90,3 +90,57 @@ def test_source_without_seq_is_refused_naming_the_missing_field() -> None:
     _, outputs = feed([stamped_fill("F1", None, 1, source="gw-1")])
     (error,) = [o for o in outputs if isinstance(o, ErrorMessage)]
     assert error.reason.startswith("seq:")
+
+
+def heartbeat(seq: int | None, minute: int, **fields: Any) -> Record:
+    payload: dict[str, Any] = {"type": "heartbeat", "source": "gw-1", **fields}
+    if seq is not None:
+        payload["seq"] = seq
+    ts = text(OPEN + timedelta(minutes=minute))
+    return Record(line=0, topic=f"{ROOT}/control", payload=payload, ts=ts)
+
+
+def test_a_heartbeat_reveals_the_lost_tail_of_a_source() -> None:
+    """Fills 3 and 4 were the source's last (no later fill shows they are missing); its next
+    heartbeat, numbered 5, does: one critical alert naming 3 to 4."""
+    records = [stamped_fill(f"F{n}", n, n) for n in (1, 2)] + [heartbeat(5, 6)]
+    intake, outputs = feed(records)
+    (alert,) = gap_alerts(outputs)
+    assert {"source": "gw-1", "first_missing": 3, "last_missing": 4} == dict(alert.details)
+    assert {"gw-1": [[3, 4]]} == intake.gaps()
+
+
+def test_heartbeats_in_turn_raise_nothing_and_reach_no_engine() -> None:
+    """A heartbeat taking the next number is accepted, counted, and changes nothing else."""
+    records = [stamped_fill("F1", 1, 1), heartbeat(2, 2), heartbeat(3, 3), stamped_fill("F2", 4, 4)]
+    intake, outputs = feed(records)
+    assert [] == gap_alerts(outputs)
+    assert (4, 2, 0) == (intake.accepted, intake.heartbeats, intake.rejected)
+    assert [] == [o for o in outputs if isinstance(o, ErrorMessage)]
+
+
+def test_a_repeated_heartbeat_is_an_old_number_and_changes_nothing() -> None:
+    """A broker redelivering a heartbeat (same seq) opens no gap and is no error."""
+    intake, outputs = feed([heartbeat(1, 1), heartbeat(2, 2), heartbeat(2, 2), heartbeat(3, 3)])
+    assert ([], {}) == (gap_alerts(outputs), intake.gaps())
+    assert 0 == intake.rejected
+
+
+def test_a_heartbeat_needs_its_seq() -> None:
+    """A heartbeat is its number: without ``seq`` it is refused, and the reason names the field."""
+    _, outputs = feed([heartbeat(None, 1)])
+    (error,) = [o for o in outputs if isinstance(o, ErrorMessage)]
+    assert error.reason.startswith("seq:")
+
+
+def test_a_heartbeat_on_a_fill_topic_is_refused_naming_the_control_topic() -> None:
+    """Heartbeats go to the control topic; elsewhere the reason says where to publish them."""
+    wrong = Record(
+        line=0,
+        topic=f"{ROOT}/fills/A",
+        payload={"type": "heartbeat", "source": "gw-1", "seq": 1},
+        ts=text(OPEN),
+    )
+    _, outputs = feed([wrong])
+    (error,) = [o for o in outputs if isinstance(o, ErrorMessage)]
+    assert f"publish heartbeat messages to {ROOT}/control" in error.reason

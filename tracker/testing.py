@@ -39,7 +39,7 @@ from tracker.core.messages import (
     Tick,
 )
 from tracker.core.topics import DEFAULT_ROOT, Topics
-from tracker.edge.wire import WireError, decode, encode, topic_of
+from tracker.edge.wire import Heartbeat, WireError, decode, encode, topic_of
 
 
 class EngineLike(Protocol):
@@ -139,13 +139,17 @@ class Recorder:
     def feed_raw(
         self, topic: str, payload: bytes | str | Mapping[str, Any], ts: datetime | None = None
     ) -> list[Outbound]:
-        """Decode like a shell would; a bad message becomes the engine's error record."""
+        """Decode like a shell would; a bad message becomes the engine's error record. A
+        heartbeat gives nothing: it is the intake's (:class:`tracker.edge.intake.Intake` follows
+        sources' sequence numbers), and changes nothing in an engine."""
         try:
             message = decode(topic, payload, root=self.root)
         except WireError as exc:
             produced: list[Outbound] = [self.engine.reject(topic, payload, exc.reason, ts)]
             self._keep(produced)
             return produced
+        if isinstance(message, Heartbeat):
+            return []
         return self.feed(message)
 
     def _keep(self, produced: list[Outbound]) -> None:

@@ -11,10 +11,10 @@ from tracker.errors import InputError
 
 DESCRIPTION = """\
 Write a JSON Schema (draft 2020-12) for every message type of the wire contract into DIR, from
-the same models the daemon validates with: inbound (order, fill, fill_correction, bin, control)
-and outbound (target, status, alert, error, ack). Each file is TYPE.schema.json and names the
-contract version it describes ("x-contract-version"). Inbound schemas allow fields they do not
-name (the daemon accepts them); outbound schemas do not (the daemon writes exactly these).
+the same models the daemon validates with: inbound (order, fill, fill_correction, bin, control,
+heartbeat) and outbound (target, status, alert, error, ack). Each file is TYPE.schema.json and
+names the contract version it describes ("x-contract-version"). Inbound schemas allow fields they
+do not name (the daemon accepts them); outbound schemas do not (the daemon writes exactly these).
 """
 
 
@@ -40,6 +40,7 @@ def schemas() -> dict[str, dict[str, Any]]:
         "fill_correction": wire.FillCorrectionPayload,
         "bin": wire.BinPayload,
         "control": wire.ControlPayload,
+        "heartbeat": wire.HeartbeatPayload,
         "target": wire.TargetPayload,
         "status": wire.StatusPayload,
         "alert": wire.AlertPayload,

@@ -32,7 +32,9 @@ Alerts the intake raises itself: ``clock_skew`` (see "Time") and ``source_gap``:
 carry a sequence stamp (``source``, ``seq``); a jump in a source's ``seq`` is a loss on the way,
 raised once with the missing numbers (:meth:`Intake.gaps` lists what is still missing) and
 cleared when late messages fill it. The stamp is followed before the redelivery check, so a copy
-re-sent under a new ``seq`` is no gap.
+re-sent under a new ``seq`` is no gap. A heartbeat (:class:`~tracker.edge.wire.Heartbeat`, on the
+control topic) takes its source's next number and is accepted without reaching the engine: it is
+what reveals the loss of a source's last messages, which no later message would.
 
 Remarks (``info`` error records; the line is accepted all the same):
 
@@ -127,7 +129,7 @@ from tracker.core.topics import DEFAULT_ROOT, Topics
 from tracker.edge.digest import ErrorDigest
 from tracker.edge.recordings import BadLine, parse_ts, parse_ts_or_none
 from tracker.edge.records import Record
-from tracker.edge.wire import WireError, decode_reading
+from tracker.edge.wire import Heartbeat, WireError, decode_reading
 from tracker.errors import InputError
 
 #: Interval of derived ticks, in seconds (the live daemon's default tick interval).
@@ -198,6 +200,7 @@ class Intake:
         #: every shell thins them alike and a snapshot of the intake holds its counts.
         self.digest = digest if digest is not None else ErrorDigest(root)
         self.gaps_opened = 0  # jumps in a source's seq (each raised a source_gap alert)
+        self.heartbeats = 0  # heartbeat lines (accepted; they only move their source's seq)
         self.skewed = 0  # lines applied at their receive time with a clock_skew alert
         self._skew_told: set[tuple[str | None, str]] = set()  # (order id, kind) alerted on
         self._sequences: dict[str, Sequenced] = {}  # per source: its counter and its gaps
@@ -257,6 +260,10 @@ class Intake:
             message, key, recorded, unknown, stamp = staged
             if stamp is not None:  # arrived, whatever becomes of it: a copy, refused or taken
                 results[index].extend(self._sequence(stamp, recorded or _message_time(message)))
+            if isinstance(message, Heartbeat):  # its number was all it had to say
+                self.accepted += 1
+                self.heartbeats += 1
+                continue
             if key is not None and key in pending_keys:
                 flush()  # whether it is a redelivery depends on the first copy's fate
             if key is not None and key in self._seen:
@@ -316,7 +323,13 @@ class Intake:
         self, record: Record | BadLine
     ) -> (
         list[Outbound]
-        | tuple[Inbound, Identity | None, datetime | None, tuple[str, ...], tuple[str, int] | None]
+        | tuple[
+            Inbound | Heartbeat,
+            Identity | None,
+            datetime | None,
+            tuple[str, ...],
+            tuple[str, int] | None,
+        ]
     ):
         """The line's own checks: its error (and ack), or the decoded message, its identity, its
         time, the fields it carried beyond the contract and its ``(source, seq)`` stamp."""
@@ -344,7 +357,8 @@ class Intake:
             )
         # Ticks are made by the shell, never redelivered by a broker; two equal ones are harmless
         # to the engine and are not remembered (a long-running daemon makes one a second).
-        key = None if isinstance(message, Tick) else _identity(record.topic, message)
+        # A heartbeat is no event: a copy of one is an old number, which changes nothing.
+        key = None if isinstance(message, Tick | Heartbeat) else _identity(record.topic, message)
         return message, key, recorded, unknown, stamp
 
     def _sequence(self, stamp: tuple[str, int], when: datetime | None) -> list[Outbound]:
@@ -538,6 +552,7 @@ class Intake:
             "ticks_derived": self.ticks_derived,
             "clock_skew": self.skewed,
             "gaps_opened": self.gaps_opened,
+            "heartbeats": self.heartbeats,
             "sources": len(self._sequences),
         }
 
@@ -599,7 +614,7 @@ def has_ticks(records: Iterable[Record | BadLine], root: str) -> bool:
     return any(r.topic == topic for r in records)
 
 
-def _message_time(message: Inbound) -> datetime | None:
+def _message_time(message: Inbound | Heartbeat) -> datetime | None:
     ts = getattr(message, "ts", None)
     return ts if isinstance(ts, datetime) else None
 

@@ -17,7 +17,7 @@ used here, at the edge, and nowhere in the core.
 Topics (``root`` defaults to ``tracker``; :class:`tracker.core.topics.Topics` names them)::
 
     inbound   {root}/orders/{order_id}  {root}/fills/{order_id} (fills, busts, corrections)
-              {root}/bins/{symbol}      {root}/control
+              {root}/bins/{symbol}      {root}/control (halts, resumes, heartbeats)
               {root}/tick   (injected by the shells, never by users)
     outbound  {root}/targets/{order_id} (retained)   {root}/status/{order_id} (retained)
               {root}/acks/{order_id}    {root}/alerts/{order_id}
@@ -39,6 +39,7 @@ import json
 import math
 import re
 from collections.abc import Mapping
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Annotated, Any, Literal, Self
 
@@ -379,6 +380,31 @@ class ControlPayload(_Inbound):
     ts: Time
 
 
+class HeartbeatPayload(_Inbound):
+    """A source's sign of life (contract v1.1): it takes the next number of the source's ``seq``
+    like any stamped message and changes nothing else. Sent every few seconds while the source
+    has nothing else to say, it shows the loss of the *last* messages a source sent, which no
+    later message would reveal (a broker dropping its queue while the daemon was down): the
+    heartbeat's ``seq`` jumps past them and the ``source_gap`` alert names them. Numbering every
+    message, heartbeats included, is what session protocols with sequence numbers do (common
+    practice)."""
+
+    type: Literal["heartbeat"] = "heartbeat"
+    source: Id  # required here, optional on other messages
+    seq: Annotated[int, Field(strict=True, ge=1, le=MAX_MAGNITUDE)]
+    ts: Time | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Heartbeat:
+    """A decoded heartbeat. It is the intake's (it follows sources' ``seq``), never the
+    engine's: the core has no use for it."""
+
+    source: str
+    seq: int
+    ts: datetime | None
+
+
 class TickPayload(_Inbound):
     """The passage of time, injected by the shells (live timer, replay); carries only ``ts``."""
 
@@ -559,6 +585,7 @@ _PAYLOADS: dict[str, type[_Inbound]] = {
     "fill_correction": FillCorrectionPayload,
     "bin": BinPayload,
     "control": ControlPayload,
+    "heartbeat": HeartbeatPayload,
     "tick": TickPayload,
 }
 
@@ -575,7 +602,7 @@ _TOPIC_KINDS: dict[str, tuple[tuple[str, ...], str | None]] = {
     "orders": (("order",), "order_id"),
     "fills": (("fill", "fill_correction"), "order_id"),
     "bins": (("bin",), "symbol"),
-    "control": (("control",), None),
+    "control": (("control", "heartbeat"), None),
     "tick": (("tick",), None),
 }
 
@@ -589,6 +616,7 @@ def _topic_of_type(message_type: str, root: str) -> str:
         "fill_correction": topics.fills("{order_id}"),
         "bin": topics.bins("{symbol}"),
         "control": topics.control,
+        "heartbeat": topics.control,
         "tick": topics.tick,
     }[message_type]
 
@@ -706,7 +734,7 @@ def _describe(exc: ValidationError) -> tuple[str, str | None]:
 
 def decode(
     topic: str, payload: bytes | str | Mapping[str, Any], *, root: str = DEFAULT_ROOT
-) -> Inbound:
+) -> Inbound | Heartbeat:
     """Validate one inbound message.
 
     Args:
@@ -715,7 +743,8 @@ def decode(
         root: The topic root.
 
     Returns:
-        The core event (:mod:`tracker.core.messages`) the payload stands for.
+        The core event (:mod:`tracker.core.messages`) the payload stands for, or a
+        :class:`Heartbeat` (which only the intake reads).
 
     Raises:
         WireError: the topic, the JSON or a field is wrong; ``reason`` says what to fix.
@@ -725,7 +754,7 @@ def decode(
 
 def decode_reading(
     topic: str, payload: bytes | str | Mapping[str, Any], *, root: str = DEFAULT_ROOT
-) -> tuple[Inbound, tuple[str, ...], tuple[str, int] | None]:
+) -> tuple[Inbound | Heartbeat, tuple[str, ...], tuple[str, int] | None]:
     """Validate one inbound message and say which fields it carried beyond the contract.
 
     Args:
@@ -734,8 +763,9 @@ def decode_reading(
         root: The topic root.
 
     Returns:
-        The core event, the names of the fields the contract does not name (sorted; a fill
-        keeps their values in ``extra``), and its ``(source, seq)`` stamp when it has one.
+        The core event (or a :class:`Heartbeat`), the names of the fields the contract does not
+        name (sorted; a fill keeps their values in ``extra``), and its ``(source, seq)`` stamp
+        when it has one.
 
     Raises:
         WireError: the topic, the JSON or a required field is wrong; ``reason`` names the field.
@@ -798,7 +828,7 @@ def _values(model: BaseModel) -> dict[str, Any]:
     return values
 
 
-def _event(valid: _Inbound, extra: Mapping[str, Any]) -> Inbound:
+def _event(valid: _Inbound, extra: Mapping[str, Any]) -> Inbound | Heartbeat:
     """The core event of a validated inbound payload (``extra``: its fields beyond the contract)."""
     if type(valid) is FillPayload:  # nearly every message of a day: the short way first
         return FillMessage(
@@ -821,6 +851,8 @@ def _event(valid: _Inbound, extra: Mapping[str, Any]) -> Inbound:
         return BinMessage(**_values(valid))
     if isinstance(valid, ControlPayload):
         return ControlMessage(**_values(valid))
+    if isinstance(valid, HeartbeatPayload):
+        return Heartbeat(source=valid.source, seq=valid.seq, ts=valid.ts)
     return Tick(**_values(valid))
 
 
@@ -918,6 +950,8 @@ __all__ = [
     "FillCorrectionPayload",
     "FillMessage",
     "FillPayload",
+    "Heartbeat",
+    "HeartbeatPayload",
     "Inbound",
     "OrderMessage",
     "OrderPayload",

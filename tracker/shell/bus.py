@@ -441,8 +441,11 @@ class Bus:
 
     async def _serve(self, client: aiomqtt.Client) -> None:
         _no_delay(client)
-        filters = [*self.subscriptions, self.health_topic]
-        await client.subscribe([(topic, 1) for topic in filters])
+        # Our own health topic at QoS 0: a broker queues no QoS 0 message for a session that is
+        # away, so what comes is live. At QoS 1 a restart got the previous run's "online", queued
+        # while no one was connected, and took it for a second process.
+        filters = [(topic, 1) for topic in self.subscriptions]
+        await client.subscribe([*filters, (self.health_topic, 0)])
         await client.publish(self.health_topic, self._online(), qos=1, retain=True)
         try:
             async with asyncio.TaskGroup() as group:

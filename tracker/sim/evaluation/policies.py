@@ -44,7 +44,7 @@ from tracker.core.formats import utc_text
 from tracker.core.formulation import build_problem, own_permanent_impact, preferences
 from tracker.core.problem import Problem
 from tracker.core.solve import Schedule, cost_breakdown, solve
-from tracker.edge.wire import decode, to_json_object, topic_of
+from tracker.edge.wire import Heartbeat, decode, to_json_object, topic_of
 from tracker.errors import TrackerError
 from tracker.sim.evaluation.execution import Execution
 from tracker.sim.evaluation.market_day import MarketDay
@@ -342,7 +342,9 @@ class EnginePolicy:
     def _send(self, kind: str, payload: dict[str, Any]) -> None:
         topic = f"{ROOT}/{kind}"
         self.count += 1
-        for message in self._engine.handle(decode(topic, payload, root=ROOT)):
+        event = decode(topic, payload, root=ROOT)
+        assert not isinstance(event, Heartbeat)  # the policy sends orders, bins and fills only
+        for message in self._engine.handle(event):
             where = topic_of(message, ROOT).split("/")[1]
             data = to_json_object(message)
             if where == "targets":
