@@ -105,6 +105,19 @@ def test_scale_is_shrunk_toward_one_early() -> None:
     assert expected == pytest.approx(today.volume_scale)
 
 
+@pytest.mark.parametrize("seen", [0, 1, 12, 60], ids=["open", "one-bin", "an-hour", "afternoon"])
+def test_the_scale_s_sd_is_the_normal_posterior_s(seen: int) -> None:
+    """volume_scale_sd is the sd of log s under the normal prior (sd 0.2) given log r observed with
+    variance 0.2^2 x 0.05 / f: the posterior precision is the sum of the two precisions (the
+    normal-normal posterior, from memory); the prior's sd before any bin."""
+    profile = default_profile("X_ZEPH")
+    volumes = profile.expected_volume[:seen]
+    observed = {i: ObservedBin(0.6 * float(v)) for i, v in enumerate(volumes)}
+    fraction = float(profile.volume_share[:seen].sum())
+    precision = 1.0 / 0.2**2 + (fraction / (0.2**2 * 0.05) if seen else 0.0)
+    assert 1.0 / math.sqrt(precision) == pytest.approx(forecast(profile, observed).volume_scale_sd)
+
+
 def test_scale_follows_the_observed_ratio_late() -> None:
     """After most of the day the scale is close to the observed ratio."""
     profile = default_profile("X_ZEPH")

@@ -14,7 +14,7 @@ import pytest
 
 from tracker.core.engine import Engine
 from tracker.core.engine.learning import PRIOR_BINS, FillRatio, WorkedBin, fill_ratio, learn
-from tracker.core.engine.planning import CATCH_UP_BINS, LAST_BIN_CAP, working_rate
+from tracker.core.engine.planning import CATCH_UP_BINS, LAST_BIN_CAP, LOW_DAY_SDS, working_rate
 from tracker.core.forecast import ObservedBin, forecast
 from tracker.core.profiles import default_profile
 from tracker.edge.wire import TargetMessage
@@ -69,6 +69,33 @@ def test_a_plan_that_cannot_complete_targets_the_cap() -> None:
         target.participation,
         target.quantity,
     )
+
+
+def test_an_order_that_could_not_complete_on_a_low_day_targets_the_cap_after_the_first_bin() -> (
+    None
+):
+    """An order the caps carry at the forecast volume, but not if the bins after the next traded
+    LOW_DAY_SDS of the scale's sd below the forecast: at the open (nothing seen) its target is its
+    plan's; once the first bin is seen (at its forecast volume) the target is the cap."""
+    profile = default_profile("X_ZEPH")
+    first = float(profile.expected_volume[0])
+    seen = forecast(profile, {0: ObservedBin(first)})
+    caps = 0.2 * seen.volume[1:]
+    caps[-1] *= LAST_BIN_CAP
+    low = math.exp(-LOW_DAY_SDS * seen.volume_scale_sd)
+    short = float(caps[0]) + low * float(caps[1:].sum())  # what a low day carries after bin 0
+    quantity = round(short + 0.2 * first) + 1_000  # short of it whatever bin 0 fills
+    assert quantity < 0.2 * first + float(caps.sum())  # the plan at the forecast completes
+    recorder = _started(quantity)
+    opening = _targets(recorder)[-1]
+    assert opening.max_quantity is not None and opening.quantity < opening.max_quantity
+    done = round((opening.participation or 0.0) * round(first))  # filled in full
+    when = (OPEN + BIN - timedelta(seconds=1)).isoformat().replace("+00:00", "Z")
+    recorder.feed(fill("A", "F0", done, 20.0, ts=when))
+    recorder.feed(bin_message("X_ZEPH", OPEN, OPEN + BIN, volume=round(first), price=20.0))
+    target = _targets(recorder)[-1]
+    assert target.max_quantity == target.quantity
+    assert 0.2 == pytest.approx(target.participation, rel=1e-4)  # fill ratio 1 but for rounding
 
 
 def test_the_order_s_last_bin_targets_the_cap() -> None:

@@ -24,6 +24,12 @@ volume. Two things keep it honest:
   pulls less, so the scale moves faster to it (the Student-t prior's property; day volumes of a
   stock are heavy-tailed -- common practice). ``prior_df = inf`` gives the normal prior exactly.
 
+The forecast also states how sure it is of the scale: ``volume_scale_sd``, the standard deviation
+of ``log s`` under the normal prior of the same scale, ``prior_sd sqrt(f0 / (f0 + f))`` (the
+conjugate normal posterior; ``prior_sd`` before the first bin). The engine judges with it whether
+an order could still complete on a day below the forecast
+(:func:`tracker.core.engine.planning.short_on_low_day`).
+
 Spread and volatility ratios use the last ``recent_bins`` observed bins with the normal-prior
 weight ``w = m / (m + m0)``. All three are bounded.
 
@@ -115,6 +121,8 @@ class Forecast:
         volatility_ratio: Today's volatility multiplier.
         average_daily_volume: The profile's average daily volume (shares), unscaled.
         observed: Indexes of the bins observed so far, sorted.
+        volume_scale_sd: Standard deviation of the log of ``volume_scale`` given the bins seen
+            (module docstring).
     """
 
     session: Session
@@ -126,6 +134,7 @@ class Forecast:
     volatility_ratio: float = 1.0
     average_daily_volume: float = DEFAULT_ADV
     observed: tuple[int, ...] = ()
+    volume_scale_sd: float = PRIOR_SD
 
     @property
     def n_bins(self) -> int:
@@ -238,7 +247,9 @@ def forecast(
     fraction = float(profile.volume_share[seen][steady].sum())
     expected = fraction * profile.average_daily_volume
     scale = 1.0
+    scale_sd = prior_sd
     if expected > 0:
+        scale_sd = prior_sd * math.sqrt(prior_fraction / (prior_fraction + fraction))
         ratio = max(float(observed_volume[steady].sum()) / expected, 1e-12)
         noise = prior_sd * prior_sd * prior_fraction / fraction
         log_scale = shrunk_log_scale(math.log(ratio), noise, prior_sd, prior_df)
@@ -296,4 +307,5 @@ def forecast(
         volatility_ratio=volatility_ratio,
         average_daily_volume=profile.average_daily_volume,
         observed=tuple(indexes),
+        volume_scale_sd=scale_sd,
     )
