@@ -36,7 +36,10 @@ Mosquitto keeps only 1,000 messages for a client that is away or slow and drops 
 their senders believe them delivered: fills are then lost. It also hands the daemon only 20
 unacknowledged messages at a time (max_inflight_messages 1000 lifts that) and delays small packets
 (set_tcp_nodelay true). The repository's deploy/mosquitto.conf holds these settings, each with
-what breaks without it.
+what breaks without it. To see a loss all the same, senders number their messages ("source" and
+"seq" on any inbound message) and send a heartbeat ({"type": "heartbeat", "source", "seq"} on
+ROOT/control) when they have had nothing else to say for a few seconds: a jump raises a critical
+source_gap alert naming the missing numbers.
 
 Every setting can also come from an environment variable (TRACKER_BROKER, TRACKER_ROOT,
 TRACKER_JOURNAL, TRACKER_PROFILES, TRACKER_INSTANCE, TRACKER_BROKER_USERNAME,
