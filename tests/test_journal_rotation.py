@@ -39,6 +39,11 @@ def _order(order_id: str, ts: str) -> tuple[str, bytes]:
     return f"{ROOT}/orders/{order_id}", json.dumps(payload).encode()
 
 
+def _cancel(order_id: str, ts: str) -> tuple[str, bytes]:
+    payload = {"type": "order", "action": "cancel", "order_id": order_id, "ts": ts}
+    return f"{ROOT}/orders/{order_id}", json.dumps(payload).encode()
+
+
 def _known(daemon: Daemon, order_id: str) -> bool:
     state_of = getattr(daemon.engine, "state_of")  # noqa: B009 -- the Engine, not the protocol
     return state_of(order_id) is not None
@@ -54,9 +59,10 @@ def mosquitto(tmp_path: Path) -> Iterator[PrivateMosquitto]:
 def test_the_first_record_of_a_new_day_goes_into_a_new_journal(
     tmp_path: Path, mosquitto: PrivateMosquitto
 ) -> None:
-    """An order before midnight, one after: the first stays in journal-2026-03-10.sqlite, the
-    second opens the new day's journal, which carries the first order in its snapshot; a replay
-    of each journal alone and a restart on the new one give the daemon's final summary."""
+    """Orders before midnight, one after: the first ones stay in journal-2026-03-10.sqlite, the
+    last opens the new day's journal, which carries the order still pending in its snapshot and
+    leaves the cancelled one behind; a replay of each journal alone and a restart on the new one
+    give the daemon's final summary."""
     journal = tmp_path / "journal.sqlite"
     settings = Settings(
         journal=journal,
@@ -73,9 +79,12 @@ def test_the_first_record_of_a_new_day_goes_into_a_new_journal(
         async with Daemon(settings) as daemon:
             task = asyncio.create_task(daemon.run())
             await asyncio.wait_for(daemon.bus.connected.wait(), 30)
-            await publish_all(
-                mosquitto.port, [_order("X_ZEPH-N1", "2026-03-11T03:59:56Z")], client_id="p1"
-            )
+            before_midnight = [
+                _order("X_ZEPH-N1", "2026-03-11T03:59:56Z"),
+                _order("X_ZEPH-C0", "2026-03-11T03:59:56Z"),
+                _cancel("X_ZEPH-C0", "2026-03-11T03:59:56Z"),
+            ]
+            await publish_all(mosquitto.port, before_midnight, client_id="p1")
             await async_wait_until(lambda: _known(daemon, "X_ZEPH-N1"), 30, "N1")
             await asyncio.sleep(1.5)  # past midnight on the daemon's clock
             await publish_all(
@@ -92,7 +101,9 @@ def test_the_first_record_of_a_new_day_goes_into_a_new_journal(
     old, new = list(read_journal(dated)), list(read_journal(journal))
     assert old[-1].line == read_base_seq(journal)
     assert [old[-1].line + 1] == [new[0].line]
-    assert ["X_ZEPH-N1"] == [r.topic.rsplit("/", 1)[1] for r in old if "/orders/" in r.topic]
+    assert ["X_ZEPH-N1", "X_ZEPH-C0", "X_ZEPH-C0"] == [
+        r.topic.rsplit("/", 1)[1] for r in old if "/orders/" in r.topic
+    ]
     assert ["X_ZEPH-N2"] == [r.topic.rsplit("/", 1)[1] for r in new if "/orders/" in r.topic]
     carried = [info for info in read_snapshots(journal) if info.kind == "carried"]
     assert [old[-1].line] == [info.after_seq for info in carried]
@@ -101,7 +112,14 @@ def test_the_first_record_of_a_new_day_goes_into_a_new_journal(
     assert 0 == main(["replay", str(journal), "--out", str(out), "--no-progress"])
     live = json.loads(settings.summary.read_text())  # type: ignore[union-attr]
     assert live == json.loads((out / "summary.json").read_text())
+    # The cancelled order stayed behind in the day's journal; the new day carries the rest.
     assert ["X_ZEPH-N1", "X_ZEPH-N2"] == [row["order_id"] for row in live["orders"]]
+    day_before = tmp_path / "replay-day-before"
+    assert 0 == main(["replay", str(dated), "--out", str(day_before), "--no-progress"])
+    rows = json.loads((day_before / "summary.json").read_text())["orders"]
+    assert [("X_ZEPH-C0", "cancelled"), ("X_ZEPH-N1", "pending")] == [
+        (row["order_id"], row["state"]) for row in rows
+    ]
 
     async def restart() -> tuple[int | None, list[str]]:
         async with Daemon(settings) as daemon:

@@ -366,6 +366,10 @@ class AlertBook:
         if self._log is not None:
             self._log.append((False, key))
 
+    def forget(self, scopes: set[str]) -> None:
+        """Drop what is raised for ``scopes`` (orders the engine no longer keeps)."""
+        self._raised = {key for key in self._raised if key[0] not in scopes}
+
     def is_raised(self, scope: str, code: str) -> bool:
         """Whether ``code`` is currently raised for ``scope``."""
         return (scope, code) in self._raised

@@ -409,6 +409,26 @@ class Intake:
             ]
         return []
 
+    def forget_ended(self) -> list[str]:
+        """Drop the orders the engine has ended (:meth:`Engine.forget_ended
+        <tracker.core.engine.Engine.forget_ended>`) and what the intake keeps for them: the
+        identities of their messages and fills. Return their ids.
+
+        The daemon calls it when a new day's journal begins, so the state it carries stays the
+        size of what is still working. A copy of a forgotten order's fill that comes later is no
+        longer known as one: it waits for its order like any fill and is then reported as
+        unassigned (nothing is counted twice: its order is gone).
+        """
+        forget = getattr(self.engine, "forget_ended", None)
+        ended: list[str] = forget() if forget is not None else []
+        if not ended:
+            return []
+        gone = set(ended)
+        order_of = Topics(self.root).order_id_of
+        self._seen = {key for key in self._seen if order_of(str(key[0])) not in gone}
+        self._skew_told = {told for told in self._skew_told if told[0] not in gone}
+        return ended
+
     def gaps(self) -> dict[str, list[list[int]]]:
         """Per source, the ranges ``[first, last]`` of sequence numbers still missing."""
         return {

@@ -585,6 +585,8 @@ class Daemon:
         for part in ("", "-wal", "-shm"):
             Path(f"{fresh}{part}").unlink(missing_ok=True)
         ts = format_ts(now)
+        # The new day carries what may still change: ended orders stay in the day's journal.
+        forgotten = self._intake.forget_ended()
         state = snapshot.dump(self._intake)
         config = getattr(self.engine, "config", None)
         with Journal(
@@ -616,6 +618,7 @@ class Daemon:
             day=self._journal_day.isoformat(),
             carried_after_seq=base,
             carried_bytes=len(state),
+            ended_orders_left_behind=len(forgotten),
         )
         self.rotated.append(dated)
         self._journal_day = self._day_of(now)

@@ -288,6 +288,15 @@ class Engine:
             sym.profile = new
             sym.forecast = forecast(new, sym.observed)
 
+    def forget_ended(self) -> list[str]:
+        """Drop the orders that have ended and all the engine keeps for them; return their ids.
+
+        A long-running daemon calls it when a new day's journal begins, so that the state it
+        carries (and loads at every restart) holds the orders that may still change, not every
+        order it ever saw; the day before's journal keeps the rest. Between events only.
+        """
+        return self._state.forget_ended()
+
     def state_of(self, order_id: str) -> State | None:
         """The lifecycle state of an order, or ``None`` if unknown."""
         order = self._state.orders.get(order_id)

@@ -7,6 +7,7 @@ so that an event that fails inside the engine can be undone.
 
 from __future__ import annotations
 
+import heapq
 from collections import Counter
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
@@ -226,6 +227,31 @@ class EngineState:
     def now(self, ts: datetime) -> datetime:
         """Event time, or ``ts`` before any time was seen."""
         return self.clock or ts
+
+    def forget_ended(self) -> list[str]:
+        """Drop the orders that have ended (done, cancelled, expired) and everything that refers
+        to them: their symbols' lists, their timers, fills waiting for a bin check, alert
+        counts and raised alerts. Return their ids, sorted.
+
+        Run between events (the daemon does when a new day's journal begins), never inside one:
+        nothing is saved for an undo.
+        """
+        ended = sorted(o for o, order in self.orders.items() if order.life.terminal)
+        if not ended:
+            return []
+        gone = set(ended)
+        for order_id in ended:
+            del self.orders[order_id]
+            self.counts.pop(order_id, None)
+        for sym in self.symbols.values():
+            sym.orders = {o: None for o in sym.orders if o not in gone}
+            sym.unchecked = [(o, fill) for o, fill in sym.unchecked if o not in gone]
+        self.starts = [entry for entry in self.starts if entry[1] not in gone]
+        self.ends = [entry for entry in self.ends if entry[1] not in gone]
+        heapq.heapify(self.starts)
+        heapq.heapify(self.ends)
+        self.book.forget(gone)
+        return ended
 
     def watch(self, sym: SymbolState, reference: datetime) -> None:
         """Watch ``sym``: stale if no bin arrives within ``stale_bins`` bins of ``reference``."""
