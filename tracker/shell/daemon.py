@@ -86,7 +86,7 @@ from tracker.edge.wire import (
 )
 from tracker.errors import InputError
 from tracker.shell import snapshot
-from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
+from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, acknowledge, probe_health
 from tracker.shell.config import Settings
 from tracker.shell.journal import Journal, JournalError, SnapshotInfo
 from tracker.shell.replay import dumps_summary, finish_summary
@@ -840,9 +840,7 @@ class Daemon:
         )
         self.commits += 1
         self.received += deliveries  # journaled: counted only now (tests wait on it)
-        for item in batch:
-            if isinstance(item, Delivery):
-                item.ack()
+        acknowledge(item for item in batch if isinstance(item, Delivery))
         return [
             Record(line=seq, topic=topic, payload=payload, ts=ts)
             for seq, (topic, payload, _) in zip(seqs, rows, strict=True)
