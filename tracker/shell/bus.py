@@ -542,7 +542,13 @@ class Bus:
             arrived.append((topic, message.payload, message.retain, message.qos, message.mid))
             wake.set()
 
+        def on_publish(topic: str, payload: bytes, retain: bool, qos: int, mid: int) -> None:
+            arrived.append((topic, payload, retain, qos, mid))
+            wake.set()
+
         inner.on_message = on_message
+        if link is not None:
+            link.on_message = on_publish
         disconnected: asyncio.Future[None] = client._disconnected
         try:
             while True:
@@ -560,6 +566,8 @@ class Bus:
                     )
         finally:
             inner.on_message = aiomqtt_on_message
+            if link is not None:
+                link.on_message = None
 
     async def _take(
         self,
@@ -782,12 +790,18 @@ class _Link:
         "_sock_recv",
         "_packet_read",
         "_loop_rc_handle",
+        "_handle_publish",
+        "_manual_ack",
         "loop_read",
     )
 
     def __init__(self, inner: paho.Client) -> None:
         self.inner = inner
         self.on_puback: Callable[[int], bool] | None = None
+        #: Takes each PUBLISH at QoS 0 or 1 (topic, payload, retained, QoS, message id) instead
+        #: of paho's ``on_message`` (and aiomqtt's queue) while it is set.
+        self.on_message: Callable[[str, bytes, bool, int, int], None] | None = None
+        self._paho_publish = inner._handle_publish
         self._paho_packet_write = inner._packet_write
         self._paho_pubackcomp = inner._handle_pubackcomp
         self._paho_recv = inner._sock_recv
@@ -806,7 +820,30 @@ class _Link:
         inner._handle_pubackcomp = link._handle_pubackcomp  # type: ignore[method-assign]
         inner._sock_recv = link._sock_recv  # type: ignore[method-assign]
         inner.loop_read = link.loop_read  # type: ignore[method-assign]
+        inner._handle_publish = link._handle_publish  # type: ignore[method-assign]
         return link
+
+    def _handle_publish(self) -> Any:
+        """An inbound PUBLISH at QoS 0 or 1 to :attr:`on_message`, without paho's message object
+        (paho's handler takes the rest: QoS 2, a malformed packet, or no one listening here).
+        The acknowledgement is manual (:class:`Delivery`)."""
+        on_message = self.on_message
+        packet = self.inner._in_packet
+        header, data = packet["command"], packet["packet"]
+        qos = (header & 0x06) >> 1
+        if on_message is None or qos > 1 or len(data) < 2 or not self.inner._manual_ack:
+            return self._paho_publish()
+        end = 2 + ((data[0] << 8) | data[1])
+        start = end + 2 if qos else end
+        if end == 2 or len(data) < start:
+            return self._paho_publish()  # an empty topic or a cut packet: paho says malformed
+        try:
+            topic = data[2:end].decode("utf-8")
+        except UnicodeDecodeError:  # not a topic of ours: acknowledged and ignored
+            topic = ""
+        mid = (data[end] << 8) | data[end + 1] if qos else 0
+        on_message(topic, bytes(memoryview(data)[start:]), bool(header & 0x01), qos, mid)
+        return paho.MQTT_ERR_SUCCESS
 
     def _sock_recv(self, bufsize: int) -> bytes:
         """paho's read of ``bufsize`` bytes at most, served from one larger read of the socket."""
