@@ -263,7 +263,8 @@ class Outbox:
         self._changed()
 
     def extend(self, items: Iterable[Outgoing]) -> None:
-        """Add messages without waiting, even past the capacity (recovery at start only)."""
+        """Add messages without waiting, even past the capacity (at start, the recovered
+        outputs; later, outputs the caller knows there is room for)."""
         self._queue.extend(items)
         self._changed()
 
@@ -552,8 +553,15 @@ class Bus:
         disconnected: asyncio.Future[None] = client._disconnected
         try:
             while True:
+                inbox = self.inbox
                 while arrived:
-                    await self._take(client, acks, *arrived.popleft())
+                    delivery = self._take(client, acks, *arrived.popleft())
+                    if delivery is None:
+                        continue
+                    if inbox.full():
+                        await self._put(delivery)  # waits, and says so
+                    else:
+                        inbox.put_nowait(delivery)
                 wake.clear()
                 waiter = asyncio.ensure_future(wake.wait())
                 try:
@@ -569,7 +577,7 @@ class Bus:
             if link is not None:
                 link.on_message = None
 
-    async def _take(
+    def _take(
         self,
         client: aiomqtt.Client,
         acks: _Acks,
@@ -578,23 +586,24 @@ class Bus:
         retain: bool,
         qos: int,
         mid: int,
-    ) -> None:
+    ) -> Delivery | None:
+        """The delivery for the inbox, or ``None`` for a message that is not one."""
         # A persistent session can get messages before we subscribe again, and amqtt sends
         # retained messages of other clients' subscriptions: keep only what we asked for.
         if topic == self.health_topic:
             _acknowledge(client, qos, mid)
             self._heard_health(payload, retain)
-            return
+            return None
         if not topic or not self._wanted(topic):
             self.ignored += 1
             self._log.debug("ignored message outside our subscriptions", topic=topic)
             _acknowledge(client, qos, mid)  # else it holds a place in the in-flight window
-            return
+            return None
         if isinstance(payload, str):
             payload = payload.encode("utf-8")
         elif not isinstance(payload, bytes | bytearray):
             payload = b"" if payload is None else str(payload).encode("utf-8")
-        delivery = Delivery(
+        return Delivery(
             topic=topic,
             payload=payload if type(payload) is bytes else bytes(payload),
             retained=bool(retain),
@@ -602,7 +611,6 @@ class Bus:
             _acks=acks if qos == 1 else None if qos == 0 else _acker(client, qos),
             _mid=mid,
         )
-        await self._put(delivery)
 
     def _wanted(self, topic: str) -> bool:
         """Whether a topic is on one of our subscriptions (remembered for the topics of a day)."""

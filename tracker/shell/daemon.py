@@ -107,7 +107,7 @@ YIELD_SECONDS = 0.005
 OUTBOX_CAPACITY = 20_000
 #: While messages wait (a burst), an interval snapshot waits too, until the daemon has caught up
 #: or until this many times ``snapshot_records`` records have come since the last one: storing
-#: one holds the interpreter for a good part of a second on a busy day (see ``_snapshot_due``).
+#: one holds the interpreter for a good part of a second on a busy day (see ``_snapshot_now``).
 SNAPSHOT_BUSY_FACTOR = 10
 #: Seconds without a new group after which a snapshot that waited for the burst is stored.
 SNAPSHOT_QUIET_SECONDS = 0.25
@@ -648,16 +648,17 @@ class Daemon:
         seconds = self.settings.snapshot_seconds
         return seconds > 0 and _time.monotonic() - self._snapshot_taken >= seconds
 
-    def _snapshot_now(self) -> bool:
+    def _snapshot_now(self, group: int) -> bool:
         """Whether a due snapshot is stored now rather than after the burst.
 
-        While messages wait to be journaled or applied, it waits for the daemon to catch up
-        (:meth:`_apply_stage`), up to ``SNAPSHOT_BUSY_FACTOR`` times ``snapshot_records``
-        records. Pickling the state of a busy day takes about half a second of the interpreter,
-        as long as applying a few thousand fills: taken every 2,500 records during a burst, it
-        cost more than the fills themselves, to spare a restart a fraction of a second of replay.
+        During a burst -- the group just applied held more than one record, or messages wait to
+        be journaled or applied -- it waits for the daemon to catch up (:meth:`_apply_stage`),
+        up to ``SNAPSHOT_BUSY_FACTOR`` times ``snapshot_records`` records. Pickling the state of
+        a busy day takes about half a second of the interpreter, as long as applying a few
+        thousand fills: taken every 2,500 records during a burst, it cost more than the fills
+        themselves, to spare a restart a fraction of a second of replay.
         """
-        busy = self.inbox.qsize() > 0 or self._journaled.qsize() > 0
+        busy = group > 1 or self.inbox.qsize() > 0 or self._journaled.qsize() > 0
         behind = self._applied - self._snapshot_seq
         return not busy or behind >= SNAPSHOT_BUSY_FACTOR * self.settings.snapshot_records
 
@@ -888,26 +889,30 @@ class Daemon:
                 return
             await self._apply(group)
             if self._snapshot_due():
-                waiting = not self._snapshot_now()
+                waiting = not self._snapshot_now(len(group))
                 if not waiting:
                     await self._snapshot("interval")
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
+        waiting: list[Outgoing] = []  # outputs in order, put in the outbox at each yield
         for run in _runs(records, self.topics.bins("")):
             for record, outputs in zip(run, self._feed_run(run), strict=True):
                 seq = record.line
                 self._applied = seq
-                items = [item for out in outputs for item in self._outgoings(seq, out)]
-                if items:
+                if outputs:
+                    items = [item for out in outputs for item in self._outgoings(seq, out)]
                     self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
-                    for item in items:
-                        await self._put_out(item)
+                    waiting.extend(items)
             # Let the bus publish (and stage 1 read) while the engine works on what follows;
             # only every few milliseconds, so that cheap records (fills) pay nothing for it.
+            # (The bus cannot publish before this anyway: the outputs go to the outbox here.)
             if _time.perf_counter() - yielded > YIELD_SECONDS:
+                await self._put_out(waiting)
+                waiting = []
                 await asyncio.sleep(0)
                 yielded = _time.perf_counter()
+        await self._put_out(waiting)
 
     async def _close_digest(self, *, finished: bool) -> None:
         """On a stop: publish what the error digest holds back, through a journaled tick.
@@ -1038,17 +1043,19 @@ class Daemon:
             seq=seq,
         )
 
-    async def _put_out(self, item: Outgoing) -> None:
-        if not self.outbox.full:
-            await self.outbox.put(item)
+    async def _put_out(self, items: list[Outgoing]) -> None:
+        """Put outputs in the outbox, in order; wait (and say so) while it is full."""
+        if len(self.outbox) + len(items) <= self.outbox.capacity:
+            self.outbox.extend(items)
             return
         self._log.warning("outbox full: back-pressure", capacity=self.outbox.capacity)
-        while True:
-            try:
-                await self.outbox.put(item, timeout=5.0)
-                return
-            except TimeoutError:
-                self._log.warning("outbox still full", connected=self.bus.connected.is_set())
+        for item in items:
+            while True:
+                try:
+                    await self.outbox.put(item, timeout=5.0)
+                    break
+                except TimeoutError:
+                    self._log.warning("outbox still full", connected=self.bus.connected.is_set())
 
     # -- confirmations ---------------------------------------------------------------------------
 
