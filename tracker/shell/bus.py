@@ -35,8 +35,11 @@ asks it to stop reading, flush the outbox (within a timeout), publish ``offline`
 Manual acknowledgement uses paho's ``manual_ack`` through aiomqtt's inner client (aiomqtt 2.x has
 no public switch for it yet; see aiomqtt issue #345, "Application-controlled acknowledgements").
 For speed the reader also takes paho's ``on_message`` callback (and aiomqtt 2.x's private
-``_queue`` and ``_disconnected``), and the connection's socket is set to TCP_NODELAY: see
-:meth:`Bus._read` and :func:`_no_delay`.
+``_queue`` and ``_disconnected``), the connection's socket is set to TCP_NODELAY, and the
+publications, their PUBACKs, the inbound messages and their acknowledgements go through a lean
+path over paho's socket (MQTT 3.1.1 packets made and read here, many per socket write and read),
+with paho's own ``publish`` and ``ack`` as the fallback: see :meth:`Bus._read`,
+:func:`_no_delay` and :class:`_Link`.
 """
 
 from __future__ import annotations

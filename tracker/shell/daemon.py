@@ -10,8 +10,8 @@ Everything the engine sees passes through two stages, in one order. Stage 1 (jou
    (durably, per the journal's policy), each with the receive time of the daemon's clock; the
    commit runs in a worker thread, so messages keep arriving meanwhile and the next group is larger
    when the disk is slow (group commit);
-3. acknowledge them to the broker (only now: a crash before this line makes the broker deliver
-   them again, and a redelivered copy changes nothing).
+3. acknowledge them to the broker, the group's acknowledgements in one write (only now: a crash
+   before this line makes the broker deliver them again, and a redelivered copy changes nothing).
 
 Stage 2 (apply), which works on one group while stage 1 commits the next:
 
