@@ -106,10 +106,10 @@ STAGE_SECONDS = 15.0
 YIELD_SECONDS = 0.005
 #: Capacity of the outbox (outputs waiting for the broker's confirmation).
 OUTBOX_CAPACITY = 20_000
-#: While messages wait (a burst), an interval snapshot waits too, until the daemon has caught up
-#: or until this many times ``snapshot_records`` records have come since the last one: storing
-#: one holds the interpreter for a good part of a second on a busy day (see ``_snapshot_now``).
-SNAPSHOT_BUSY_FACTOR = 10
+#: During a burst, an interval snapshot waits until the daemon has caught up, or until applying
+#: the records since the last one took this many seconds of CPU -- about what a restart would
+#: spend replaying them (see ``Daemon._snapshot_now``).
+SNAPSHOT_BUSY_SECONDS = 1.5
 #: Seconds without a new group after which a snapshot that waited for the burst is stored.
 SNAPSHOT_QUIET_SECONDS = 0.25
 #: Records applied between two ``gc.freeze()`` calls (see :meth:`Daemon._settled`).
@@ -262,6 +262,7 @@ class Daemon:
         self.restored_from: int | None = None
         self._snapshot_seq = 0  # the journal seq of the latest snapshot (restored or stored)
         self._snapshot_taken = _time.monotonic()
+        self._applying = 0.0  # CPU seconds spent applying records since the latest snapshot
         self._journal_day: date | None = None  # the day the journal holds (rotate_journal)
         self._switching = asyncio.Lock()  # a snapshot or a rotation at a time
         # Freeze what the records leave behind (see _settled), unless the process froze objects
@@ -484,6 +485,7 @@ class Daemon:
             if pending:
                 apply(self.engine, pending.pop(0)[1])
         self._applied = start
+        replaying = _time.thread_time()
         for record in self.journal.records(after=start):
             while pending and record.line > pending[0][0]:
                 apply(self.engine, pending.pop(0)[1])
@@ -494,6 +496,7 @@ class Daemon:
                 self._queue_now(record.line, outputs)
             self._applied = record.line
             self._settled(1)
+        self._applying += _time.thread_time() - replaying  # records since the snapshot
         for _, later, _ in pending:  # described after the last record: in force from here
             apply(self.engine, later)
         if self.recovered or self.restored_from is not None:
@@ -640,6 +643,7 @@ class Daemon:
         self._journal_day = self._day_of(now)
         self._snapshot_seq = base
         self._snapshot_taken = _time.monotonic()
+        self._applying = 0.0
 
     # -- snapshots -------------------------------------------------------------------------------
 
@@ -680,14 +684,15 @@ class Daemon:
 
         During a burst -- the group just applied held more than one record, or messages wait to
         be journaled or applied -- it waits for the daemon to catch up (:meth:`_apply_stage`),
-        up to ``SNAPSHOT_BUSY_FACTOR`` times ``snapshot_records`` records. Pickling the state of
-        a busy day takes about half a second of the interpreter, as long as applying a few
-        thousand fills: taken every 2,500 records during a burst, it cost more than the fills
-        themselves, to spare a restart a fraction of a second of replay.
+        or until applying the records since the last snapshot has taken
+        ``SNAPSHOT_BUSY_SECONDS`` of CPU: a restart replays them through the same intake and
+        engine, so that bounds what the wait adds to a restart. Pickling the state of a busy day
+        takes the interpreter from half a second to a few seconds, as long as applying thousands
+        of fills: taken every 2,500 records during a burst, it cost more than the fills
+        themselves.
         """
         busy = group > 1 or self.inbox.qsize() > 0 or self._journaled.qsize() > 0
-        behind = self._applied - self._snapshot_seq
-        return not busy or behind >= SNAPSHOT_BUSY_FACTOR * self.settings.snapshot_records
+        return not busy or self._applying >= SNAPSHOT_BUSY_SECONDS
 
     async def _snapshot(self, kind: str) -> None:
         """Store a snapshot of the state after the records applied so far.
@@ -709,6 +714,7 @@ class Daemon:
             self._log.info("snapshot stored", after_seq=info.after_seq, kind=kind, bytes=info.size)
         self._snapshot_seq = self._applied
         self._snapshot_taken = _time.monotonic()
+        self._applying = 0.0
 
     def _store_snapshot(self, kind: str) -> SnapshotInfo:
         assert self._intake is not None and self._clock is not None
@@ -926,6 +932,7 @@ class Daemon:
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
+        working = _time.thread_time()  # the CPU the records take (not the bus's, meanwhile)
         waiting: list[Outgoing] = []  # outputs in order, put in the outbox at each yield
         for run in _runs(records, self.topics.bins("")):
             for record, outputs in zip(run, self._feed_run(run), strict=True):
@@ -939,10 +946,13 @@ class Daemon:
             # only every few milliseconds, so that cheap records (fills) pay nothing for it.
             # (The bus cannot publish before this anyway: the outputs go to the outbox here.)
             if _time.perf_counter() - yielded > YIELD_SECONDS:
+                self._applying += _time.thread_time() - working
                 await self._put_out(waiting)
                 waiting = []
                 await asyncio.sleep(0)
                 yielded = _time.perf_counter()
+                working = _time.thread_time()
+        self._applying += _time.thread_time() - working
         await self._put_out(waiting)
 
     async def _close_digest(self, *, finished: bool) -> None:
