@@ -565,6 +565,9 @@ class Bus:
                         await self._put(delivery)  # waits, and says so
                     else:
                         inbox.put_nowait(delivery)
+                # Not held while waiting for the next message: a 100 MB payload goes as soon as
+                # the journal stage is done with it.
+                delivery = None
                 wake.clear()
                 waiter = asyncio.ensure_future(wake.wait())
                 try:
