@@ -62,6 +62,25 @@ class Socket:
         pass
 
 
+@pytest.fixture(autouse=True)
+def _detached(monkeypatch: pytest.MonkeyPatch) -> Any:
+    """Every link made in a test gives its client back at the end (as the bus does when a
+    connection ends), so that no client waits for a later garbage collection to be finalized."""
+    made: list[_Link] = []
+    attach = _Link.attach.__func__  # type: ignore[attr-defined]
+
+    def tracked(cls: type[_Link], inner: paho.Client) -> _Link | None:
+        link = attach(cls, inner)
+        if link is not None:
+            made.append(link)
+        return link
+
+    monkeypatch.setattr(_Link, "attach", classmethod(tracked))
+    yield
+    for link in made:
+        link.detach()
+
+
 def _client(sock: Socket) -> paho.Client:
     client = paho.Client(paho.CallbackAPIVersion.VERSION2, client_id="link-test")
     client.manual_ack_set(True)

@@ -502,6 +502,9 @@ class Bus:
                 group.create_task(self._closer(client), name="bus.closer")
         except* _Closing:
             pass
+        finally:
+            if link is not None:
+                link.detach()  # paho's own methods for the disconnect
 
     async def _stop_reader(self, reader: asyncio.Task[None]) -> None:
         await self._stop_reading.wait()
@@ -809,6 +812,9 @@ class _Link:
         "loop_read",
     )
 
+    #: The paho methods the link stands in for (see :meth:`attach` and :meth:`detach`).
+    _TAKEN = ("_packet_write", "_handle_pubackcomp", "_sock_recv", "loop_read", "_handle_publish")
+
     def __init__(self, inner: paho.Client) -> None:
         self.inner = inner
         self.on_puback: Callable[[int], bool] | None = None
@@ -836,6 +842,15 @@ class _Link:
         inner.loop_read = link.loop_read  # type: ignore[method-assign]
         inner._handle_publish = link._handle_publish  # type: ignore[method-assign]
         return link
+
+    def detach(self) -> None:
+        """Give paho its own methods back (at the end of the connection): the client and the
+        link no longer hold each other, so the client goes with its last reference, not at some
+        later garbage collection (paho's finalizer would then run inside whatever runs then)."""
+        self.on_message = None
+        self.on_puback = None
+        for name in _Link._TAKEN:
+            self.inner.__dict__.pop(name, None)
 
     def _handle_publish(self) -> Any:
         """An inbound PUBLISH at QoS 0 or 1 to :attr:`on_message`, without paho's message object

@@ -198,6 +198,10 @@ class Daemon:
         clock: The time source (UTC datetimes) when it is not the wall clock nor the simulated
             clock of the settings: the demo drives one that never runs ahead of its script.
             ``settings.clock_speed`` still tells how many of its seconds pass per real second.
+        freeze: Keep what the records leave behind out of the garbage collector's reach
+            (:meth:`_settled`): for a process that runs the daemon alone (``tracker run``), not
+            for one that shares its interpreter with other work (tests, the demo), whose garbage
+            would then be collected at unforeseeable times.
 
     Example::
 
@@ -213,6 +217,7 @@ class Daemon:
         engine: EngineLike | None = None,
         on_output: Callable[[Outbound], None] | None = None,
         clock: Callable[[], datetime] | None = None,
+        freeze: bool = False,
     ) -> None:
         self.settings = settings
         self._clock_source = clock
@@ -267,7 +272,7 @@ class Daemon:
         self._switching = asyncio.Lock()  # a snapshot or a rotation at a time
         # Freeze what the records leave behind (see _settled), unless the process froze objects
         # of its own; records applied since the last freeze.
-        self._freezing = gc.get_freeze_count() == 0
+        self._freezing = freeze and gc.get_freeze_count() == 0
         self._unfrozen = 0
         #: The journals closed by a rotation in this run (their dated paths).
         self.rotated: list[Path] = []
@@ -330,6 +335,10 @@ class Daemon:
         finally:
             if self._freezing:
                 gc.unfreeze()
+            # The connection's garbage (futures, the paho client) collected here, not at some
+            # later collection inside whatever runs next in this process: a finalizer that logs
+            # (an exception never retrieved) would run inside someone else's code.
+            gc.collect()
             self._close_journal()
             self._unlock()
 
