@@ -25,6 +25,7 @@ from tests.brokers import (
     replay_by_topic,
     wait_until,
 )
+from tracker.shell import bus
 from tracker.shell.config import BrokerSettings, Settings
 from tracker.shell.daemon import Daemon
 
@@ -94,10 +95,14 @@ async def _serve_until(daemon: Daemon, done: object, timeout: float = 120.0) -> 
 
 
 @pytest.mark.slow
+@pytest.mark.parametrize("path", ["lean", "paho"])
 def test_live_outputs_equal_a_replay_of_the_journal(
-    tmp_path: Path, mosquitto: PrivateMosquitto
+    tmp_path: Path, mosquitto: PrivateMosquitto, path: str, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    """A whole invented day over Mosquitto: every output topic carries what a replay produces."""
+    """A whole invented day over Mosquitto: every output topic carries what a replay produces,
+    through the bus's lean path and through paho's own publish and ack (its fallback)."""
+    if path == "paho":
+        monkeypatch.setattr(bus._Link, "attach", classmethod(lambda cls, inner: None))
     messages = day_messages(ROOT)
     settings = _settings(tmp_path, mosquitto.port)
 

@@ -223,7 +223,7 @@ async def serve(settings: Any) -> int:
     from tracker.shell.daemon import Daemon
 
     loop = asyncio.get_running_loop()
-    async with Daemon(settings) as daemon:
+    async with Daemon(settings, freeze=True) as daemon:
         for signum in (signal.SIGTERM, signal.SIGINT):
             loop.add_signal_handler(signum, daemon.stop)
         try:

@@ -35,8 +35,11 @@ asks it to stop reading, flush the outbox (within a timeout), publish ``offline`
 Manual acknowledgement uses paho's ``manual_ack`` through aiomqtt's inner client (aiomqtt 2.x has
 no public switch for it yet; see aiomqtt issue #345, "Application-controlled acknowledgements").
 For speed the reader also takes paho's ``on_message`` callback (and aiomqtt 2.x's private
-``_queue`` and ``_disconnected``), and the connection's socket is set to TCP_NODELAY: see
-:meth:`Bus._read` and :func:`_no_delay`.
+``_queue`` and ``_disconnected``), the connection's socket is set to TCP_NODELAY, and the
+publications, their PUBACKs, the inbound messages and their acknowledgements go through a lean
+path over paho's socket (MQTT 3.1.1 packets made and read here, many per socket write and read),
+with paho's own ``publish`` and ``ack`` as the fallback: see :meth:`Bus._read`,
+:func:`_no_delay` and :class:`_Link`.
 """
 
 from __future__ import annotations
@@ -49,6 +52,7 @@ import json
 import random
 import socket
 import ssl
+import struct
 import uuid
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
@@ -65,6 +69,7 @@ __all__ = [
     "Delivery",
     "Outbox",
     "Outgoing",
+    "acknowledge",
     "backoff_delays",
     "client_arguments",
     "probe_health",
@@ -153,6 +158,9 @@ def backoff_delays(
 #: One message as paho hands it over: topic, payload, retained, QoS, message id.
 _Incoming = tuple[str, Any, bool, int, int]
 
+#: Acknowledges deliveries of one connection by their message ids (see :func:`acknowledge`).
+_Acks = Callable[[Sequence[int]], None]
+
 
 @dataclass(slots=True)
 class Delivery:
@@ -168,13 +176,34 @@ class Delivery:
     payload: bytes
     retained: bool = False
     qos: int = 0
-    _ack: Callable[[], None] | None = None
+    _acks: _Acks | None = None  # its connection's (None: QoS 0, or acknowledged already)
+    _mid: int = 0
 
     def ack(self) -> None:
         """Acknowledge to the broker (after the message is safely journaled)."""
-        if self._ack is not None:
-            ack, self._ack = self._ack, None
-            ack()
+        acknowledge((self,))
+
+
+def acknowledge(deliveries: Iterable[Delivery]) -> None:
+    """Acknowledge deliveries to the broker, in order, the PUBACKs of a group as one write.
+
+    Each is acknowledged once (again: nothing). After a reconnect the broker sends the messages
+    of the old connection again (a redelivery, which changes nothing); their acknowledgements on
+    the old connection are never written.
+    """
+    acks: _Acks | None = None
+    mids: list[int] = []
+    for delivery in deliveries:
+        if delivery._acks is None:
+            continue
+        if delivery._acks is not acks:
+            if acks is not None:
+                acks(mids)
+            acks, mids = delivery._acks, []
+        mids.append(delivery._mid)
+        delivery._acks = None
+    if acks is not None:
+        acks(mids)
 
 
 @dataclass(frozen=True, slots=True)
@@ -237,7 +266,8 @@ class Outbox:
         self._changed()
 
     def extend(self, items: Iterable[Outgoing]) -> None:
-        """Add messages without waiting, even past the capacity (recovery at start only)."""
+        """Add messages without waiting, even past the capacity (at start, the recovered
+        outputs; later, outputs the caller knows there is room for)."""
         self._queue.extend(items)
         self._changed()
 
@@ -250,6 +280,20 @@ class Outbox:
         self._in_flight[self._ticket] = item
         self._changed()
         return self._ticket, item
+
+    async def take_many(self, most: int) -> list[tuple[int, Outgoing]]:
+        """Up to ``most`` messages (at least one) and their tickets, as :meth:`take` gives them."""
+        while not self._queue:
+            await self._ready.wait()
+        taken = []
+        queue, in_flight = self._queue, self._in_flight
+        for _ in range(min(most, len(queue))):
+            item = queue.popleft()
+            self._ticket += 1
+            in_flight[self._ticket] = item
+            taken.append((self._ticket, item))
+        self._changed()
+        return taken
 
     def done(self, ticket: int) -> None:
         """The message of ``ticket`` was confirmed by the broker."""
@@ -447,16 +491,20 @@ class Bus:
         filters = [(topic, 1) for topic in self.subscriptions]
         await client.subscribe([*filters, (self.health_topic, 0)])
         await client.publish(self.health_topic, self._online(), qos=1, retain=True)
+        link = _Link.attach(client._client)
         try:
             async with asyncio.TaskGroup() as group:
                 if not self._stop_reading.is_set():
-                    reader = group.create_task(self._read(client), name="bus.reader")
+                    reader = group.create_task(self._read(client, link), name="bus.reader")
                     group.create_task(self._stop_reader(reader), name="bus.reader-stop")
-                group.create_task(self._write(client), name="bus.writer")
+                group.create_task(self._write(client, link), name="bus.writer")
                 group.create_task(self._heartbeat(client), name="bus.heartbeat")
                 group.create_task(self._closer(client), name="bus.closer")
         except* _Closing:
             pass
+        finally:
+            if link is not None:
+                link.detach()  # paho's own methods for the disconnect
 
     async def _stop_reader(self, reader: asyncio.Task[None]) -> None:
         await self._stop_reading.wait()
@@ -469,7 +517,7 @@ class Bus:
         self._log.info("offline published; disconnecting")
         raise _Closing
 
-    async def _read(self, client: aiomqtt.Client) -> None:
+    async def _read(self, client: aiomqtt.Client, link: _Link | None) -> None:
         """Take every message on our subscriptions into the inbox, in order of arrival.
 
         The hot path of a burst: aiomqtt's message iterator costs a message object (with a
@@ -481,6 +529,8 @@ class Bus:
         then is never acknowledged, so the broker delivers it again on the next start.
         """
         inner: paho.Client = client._client
+        # One acknowledger per connection, so that :func:`acknowledge` groups by it.
+        acks: _Acks = link.ack if link is not None else functools.partial(_ack_each, inner)
         backlog: asyncio.Queue[aiomqtt.Message] = client._queue
         arrived: collections.deque[_Incoming] = collections.deque()
         while not backlog.empty():
@@ -499,12 +549,28 @@ class Bus:
             arrived.append((topic, message.payload, message.retain, message.qos, message.mid))
             wake.set()
 
+        def on_publish(topic: str, payload: bytes, retain: bool, qos: int, mid: int) -> None:
+            arrived.append((topic, payload, retain, qos, mid))
+            wake.set()
+
         inner.on_message = on_message
+        if link is not None:
+            link.on_message = on_publish
         disconnected: asyncio.Future[None] = client._disconnected
         try:
             while True:
+                inbox = self.inbox
                 while arrived:
-                    await self._take(client, *arrived.popleft())
+                    delivery = self._take(client, acks, *arrived.popleft())
+                    if delivery is None:
+                        continue
+                    if inbox.full():
+                        await self._put(delivery)  # waits, and says so
+                    else:
+                        inbox.put_nowait(delivery)
+                # Not held while waiting for the next message: a 100 MB payload goes as soon as
+                # the journal stage is done with it.
+                delivery = None
                 wake.clear()
                 waiter = asyncio.ensure_future(wake.wait())
                 try:
@@ -517,39 +583,43 @@ class Bus:
                     )
         finally:
             inner.on_message = aiomqtt_on_message
+            if link is not None:
+                link.on_message = None
 
-    async def _take(
+    def _take(
         self,
         client: aiomqtt.Client,
+        acks: _Acks,
         topic: str,
         payload: Any,
         retain: bool,
         qos: int,
         mid: int,
-    ) -> None:
+    ) -> Delivery | None:
+        """The delivery for the inbox, or ``None`` for a message that is not one."""
         # A persistent session can get messages before we subscribe again, and amqtt sends
         # retained messages of other clients' subscriptions: keep only what we asked for.
         if topic == self.health_topic:
             _acknowledge(client, qos, mid)
             self._heard_health(payload, retain)
-            return
+            return None
         if not topic or not self._wanted(topic):
             self.ignored += 1
             self._log.debug("ignored message outside our subscriptions", topic=topic)
             _acknowledge(client, qos, mid)  # else it holds a place in the in-flight window
-            return
+            return None
         if isinstance(payload, str):
             payload = payload.encode("utf-8")
         elif not isinstance(payload, bytes | bytearray):
             payload = b"" if payload is None else str(payload).encode("utf-8")
-        delivery = Delivery(
+        return Delivery(
             topic=topic,
             payload=payload if type(payload) is bytes else bytes(payload),
             retained=bool(retain),
             qos=qos,
-            _ack=_acker(client, mid, qos),
+            _acks=acks if qos == 1 else None if qos == 0 else _acker(client, qos),
+            _mid=mid,
         )
-        await self._put(delivery)
 
     def _wanted(self, topic: str) -> bool:
         """Whether a topic is on one of our subscriptions (remembered for the topics of a day)."""
@@ -596,16 +666,50 @@ class Bus:
                 self._log.warning("inbox still full", capacity=self.inbox.maxsize)
         self.backpressure = False
 
-    async def _write(self, client: aiomqtt.Client) -> None:
+    async def _write(self, client: aiomqtt.Client, link: _Link | None) -> None:
         """Publish the outbox in order, up to MAX_IN_FLIGHT awaiting their PUBACK at once.
 
-        This is the hot path of the daemon (one or two outputs per fill), so it talks to paho
-        directly rather than through ``aiomqtt.Client.publish``, which costs a task, an event and
-        a timeout per message: paho queues the PUBLISH at once (in order) and calls
-        ``on_publish`` with its message id when the PUBACK comes; we chain onto aiomqtt's own
-        handler for that. A PUBACK that never comes is a dead connection, which the reader and
-        the keep-alive notice; the unconfirmed messages are then sent again after the reconnect.
+        This is the hot path of the daemon (one or two outputs per fill), so it does not go
+        through ``aiomqtt.Client.publish``, which costs a task, an event and a timeout per
+        message: the :class:`_Link` queues each PUBLISH packet at once (in order) and hands back
+        its PUBACK's message id; without it (a paho it cannot take), paho's ``publish`` is used
+        and its ``on_publish`` chained onto aiomqtt's own handler. A PUBACK that never comes is a
+        dead connection, which the reader and the keep-alive notice; the unconfirmed messages are
+        then sent again after the reconnect.
         """
+        if link is None:
+            await self._write_paho(client)
+            return
+        pending: dict[int, tuple[int, Outgoing]] = {}  # message id -> (ticket, message)
+        room = asyncio.Event()
+        room.set()
+        outbox = self.outbox
+        on_published = self._on_published
+
+        def on_puback(mid: int) -> bool:
+            entry = pending.pop(mid, None)
+            if entry is None:
+                return False  # not ours: aiomqtt's (a health message)
+            ticket, item = entry
+            outbox.done(ticket)
+            if on_published is not None:
+                on_published(item)
+            room.set()
+            return True
+
+        link.on_puback = on_puback
+        try:
+            while True:
+                while len(pending) >= MAX_IN_FLIGHT:
+                    room.clear()
+                    await room.wait()
+                for ticket, item in await outbox.take_many(MAX_IN_FLIGHT - len(pending)):
+                    pending[link.publish(item.topic, item.payload, item.retain)] = (ticket, item)
+        finally:
+            link.on_puback = None
+
+    async def _write_paho(self, client: aiomqtt.Client) -> None:
+        """:meth:`_write` through paho's ``publish`` and ``on_publish``."""
         inner: paho.Client = client._client
         pending: dict[int, tuple[int, Outgoing]] = {}  # paho message id -> (ticket, message)
         room = asyncio.Event()
@@ -664,6 +768,230 @@ def _acknowledge(client: aiomqtt.Client, qos: int, mid: int) -> None:
         client._client.ack(mid, qos)
 
 
+class _Link:
+    """The lean path through paho for one connection: QoS 1 PUBLISH and PUBACK packets made here
+    and queued on paho's socket, many per socket write.
+
+    paho's own ``publish`` makes a message object, an info object with a condition variable and
+    (for the acknowledgement) a reason code and a properties object per publication, even for
+    MQTT 3.1.1, and sends every queued packet with its own ``send`` call; in a burst that was
+    about a third of the daemon's time (``benchmarks/README.md``). Here a publication is its
+    packet, its PUBACK is matched by message id before paho looks at it (paho's handler still
+    gets every PUBACK that is not ours: the health messages and subscriptions go through
+    aiomqtt), and the packets waiting when the socket is writable leave in one ``send`` (at most
+    ``WRITE_CHUNK`` bytes each): the same bytes, in the same order, as paho would send them.
+
+    It uses paho internals (``_packet_queue``, ``_out_packet``, ``_packet_write``,
+    ``_handle_pubackcomp``, ``_in_packet``, ``_mid_generate``): :meth:`attach` checks that they
+    are there and that the connection speaks MQTT 3.1 or 3.1.1, and returns ``None`` otherwise,
+    in which case the bus goes through paho's public ``publish`` and ``ack``.
+    """
+
+    #: Most bytes of waiting packets joined into one socket write.
+    WRITE_CHUNK = 256 * 1024
+    #: Bytes asked of the socket per read (paho asks for one byte, then the length, then the
+    #: rest of each packet: three reads or more per packet otherwise).
+    READ_CHUNK = 64 * 1024
+    #: Packets read per readable event before the loop gets its turn (more if already read).
+    READ_PACKETS = 1_000
+
+    _NEEDED = (
+        "_packet_queue",
+        "_out_packet",
+        "_packet_write",
+        "_handle_pubackcomp",
+        "_in_packet",
+        "_mid_generate",
+        "_protocol",
+        "_sock",
+        "_sock_recv",
+        "_packet_read",
+        "_loop_rc_handle",
+        "_handle_publish",
+        "_manual_ack",
+        "loop_read",
+    )
+
+    #: The paho methods the link stands in for (see :meth:`attach` and :meth:`detach`).
+    _TAKEN = ("_packet_write", "_handle_pubackcomp", "_sock_recv", "loop_read", "_handle_publish")
+
+    def __init__(self, inner: paho.Client) -> None:
+        self.inner = inner
+        self.on_puback: Callable[[int], bool] | None = None
+        #: Takes each PUBLISH at QoS 0 or 1 (topic, payload, retained, QoS, message id) instead
+        #: of paho's ``on_message`` (and aiomqtt's queue) while it is set.
+        self.on_message: Callable[[str, bytes, bool, int, int], None] | None = None
+        self._paho_publish = inner._handle_publish
+        self._paho_packet_write = inner._packet_write
+        self._paho_pubackcomp = inner._handle_pubackcomp
+        self._paho_recv = inner._sock_recv
+        self._read = b""  # bytes read from the socket that paho has not asked for yet
+        self._at = 0
+
+    @classmethod
+    def attach(cls, inner: paho.Client) -> _Link | None:
+        """The link for this client, installed; ``None`` when paho cannot be taken this way."""
+        if not all(hasattr(inner, name) for name in cls._NEEDED):
+            return None
+        if inner._protocol not in (paho.MQTTv31, paho.MQTTv311):
+            return None
+        link = cls(inner)
+        inner._packet_write = link._packet_write  # type: ignore[method-assign]
+        inner._handle_pubackcomp = link._handle_pubackcomp  # type: ignore[method-assign]
+        inner._sock_recv = link._sock_recv  # type: ignore[method-assign]
+        inner.loop_read = link.loop_read  # type: ignore[method-assign]
+        inner._handle_publish = link._handle_publish  # type: ignore[method-assign]
+        return link
+
+    def detach(self) -> None:
+        """Give paho its own methods back (at the end of the connection): the client and the
+        link no longer hold each other, so the client goes with its last reference, not at some
+        later garbage collection (paho's finalizer would then run inside whatever runs then)."""
+        self.on_message = None
+        self.on_puback = None
+        for name in _Link._TAKEN:
+            self.inner.__dict__.pop(name, None)
+
+    def _handle_publish(self) -> Any:
+        """An inbound PUBLISH at QoS 0 or 1 to :attr:`on_message`, without paho's message object
+        (paho's handler takes the rest: QoS 2, a malformed packet, or no one listening here).
+        The acknowledgement is manual (:class:`Delivery`)."""
+        on_message = self.on_message
+        packet = self.inner._in_packet
+        header, data = packet["command"], packet["packet"]
+        qos = (header & 0x06) >> 1
+        if on_message is None or qos > 1 or len(data) < 2 or not self.inner._manual_ack:
+            return self._paho_publish()
+        end = 2 + ((data[0] << 8) | data[1])
+        start = end + 2 if qos else end
+        if end == 2 or len(data) < start:
+            return self._paho_publish()  # an empty topic or a cut packet: paho says malformed
+        try:
+            topic = data[2:end].decode("utf-8")
+        except UnicodeDecodeError:  # not a topic of ours: acknowledged and ignored
+            topic = ""
+        mid = (data[end] << 8) | data[end + 1] if qos else 0
+        on_message(topic, bytes(memoryview(data)[start:]), bool(header & 0x01), qos, mid)
+        return paho.MQTT_ERR_SUCCESS
+
+    def _sock_recv(self, bufsize: int) -> bytes:
+        """paho's read of ``bufsize`` bytes at most, served from one larger read of the socket."""
+        read, at = self._read, self._at
+        if at < len(read):
+            self._at = at + bufsize
+            return read[at : at + bufsize]
+        data: bytes = self._paho_recv(max(bufsize, self.READ_CHUNK))  # raises as paho's would
+        if len(data) <= bufsize:
+            return data
+        self._read, self._at = data, bufsize
+        return data[:bufsize]
+
+    def loop_read(self, max_packets: int = 1) -> Any:
+        """paho's ``loop_read``, reading until the socket has nothing more (or ``READ_PACKETS``
+        packets and nothing left over here), not one packet per publication in flight."""
+        inner = self.inner
+        packets = 0
+        while True:
+            if inner._sock is None:
+                return paho.MQTT_ERR_NO_CONN
+            rc = inner._packet_read()
+            if rc > 0:
+                return inner._loop_rc_handle(rc)
+            packets += 1
+            if self._at >= len(self._read) and (
+                rc == paho.MQTT_ERR_AGAIN or packets >= self.READ_PACKETS
+            ):
+                return paho.MQTT_ERR_SUCCESS
+
+    def publish(self, topic: str, payload: bytes, retain: bool) -> int:
+        """Queue a QoS 1 PUBLISH; return its message id (:attr:`on_puback` gets it back).
+
+        Raises:
+            aiomqtt.MqttCodeError: Not connected.
+            ValueError: A topic MQTT does not allow in a publication, or a packet too large.
+        """
+        inner = self.inner
+        if inner._sock is None:
+            raise aiomqtt.MqttCodeError(paho.MQTT_ERR_NO_CONN, "Could not publish message")
+        name = topic.encode("utf-8")
+        if not name or len(name) > 65_535 or b"+" in name or b"#" in name:
+            raise ValueError(f"not a topic to publish to: {topic!r}")
+        mid = inner._mid_generate()
+        length = 4 + len(name) + len(payload)  # topic length, topic, message id, payload
+        if length > 268_435_455:
+            raise ValueError("Packet too large")
+        head = bytearray((0x33 if retain else 0x32,))  # PUBLISH, QoS 1, retain flag
+        while True:
+            byte, length = length & 0x7F, length >> 7
+            head.append(byte | 0x80 if length else byte)
+            if not length:
+                break
+        packet = b"".join((head, _U16.pack(len(name)), name, _U16.pack(mid), payload))
+        inner._packet_queue(paho.PUBLISH, packet, mid, 1)
+        return mid
+
+    def ack(self, mids: Sequence[int]) -> None:
+        """Queue the PUBACKs of QoS 1 deliveries, as one write."""
+        if mids:
+            packet = b"".join(_PUBACK.pack(0x40, 2, mid) for mid in mids)
+            self.inner._packet_queue(paho.PUBACK, packet, 0, 1)
+
+    def _handle_pubackcomp(self, cmd: Any) -> Any:
+        if cmd == "PUBACK" and self.on_puback is not None:
+            packet = self.inner._in_packet["packet"]
+            if len(packet) >= 2 and self.on_puback((packet[0] << 8) | packet[1]):
+                return paho.MQTT_ERR_SUCCESS
+        return self._paho_pubackcomp(cmd)
+
+    def _packet_write(self) -> Any:
+        """paho's own write, after joining the waiting packets into chunks (see the class)."""
+        waiting: collections.deque[Any] = self.inner._out_packet
+        if len(waiting) > 1:
+            joined: collections.deque[Any] = collections.deque()
+            run: list[Any] = []
+            size = 0
+            for packet in waiting:
+                command = packet["command"] & 0xF0
+                if command == paho.DISCONNECT or (command == paho.PUBLISH and not packet["qos"]):
+                    # paho acts on these once written (on_publish, closing): left as they are
+                    _join(joined, run, size)
+                    run, size = [], 0
+                    joined.append(packet)
+                    continue
+                run.append(packet)
+                size += packet["to_process"]
+                if size >= self.WRITE_CHUNK:
+                    _join(joined, run, size)
+                    run, size = [], 0
+            _join(joined, run, size)
+            waiting.clear()
+            waiting.extend(joined)
+        return self._paho_packet_write()
+
+
+_PUBACK = struct.Struct("!BBH")
+_U16 = struct.Struct("!H")
+
+
+def _join(joined: collections.deque[Any], run: list[Any], size: int) -> None:
+    """Append ``run`` (whole or partly written packets, in order) to ``joined`` as one packet."""
+    if len(run) == 1:
+        joined.append(run[0])
+    elif run:
+        data = b"".join(p["packet"][p["pos"] :] if p["pos"] else p["packet"] for p in run)
+        joined.append(
+            {
+                "command": paho.PUBACK,  # written like any packet paho does nothing after
+                "mid": 0,
+                "qos": 1,
+                "pos": 0,
+                "to_process": size,
+                "packet": data,
+                "info": None,
+            }
+        )
+
+
 def _health_document(payload: Any) -> dict[str, Any] | None:
     if isinstance(payload, str):
         payload = payload.encode("utf-8")
@@ -715,14 +1043,15 @@ async def probe_health(
     return None
 
 
-def _acker(client: aiomqtt.Client, mid: int, qos: int) -> Callable[[], None] | None:
-    if qos == 0:
-        return None
-    inner: paho.Client = client._client
-
-    def ack() -> None:
-        # After a reconnect this is a different connection: the broker re-sends the message
-        # (redelivery), so an ack on the old client is moot and paho just returns an error code.
+def _ack_each(inner: paho.Client, mids: Sequence[int], qos: int = 1) -> None:
+    """Acknowledge through paho's public ``ack`` (when :class:`_Link` cannot be used)."""
+    # After a reconnect this is a different connection: the broker re-sends the message
+    # (redelivery), so an ack on the old client is moot and paho just returns an error code.
+    for mid in mids:
         inner.ack(mid, qos)
 
-    return ack
+
+def _acker(client: aiomqtt.Client, qos: int) -> _Acks:
+    """The acknowledger of deliveries at QoS ``qos`` above 1 (subscriptions at QoS 1 get none:
+    a broker delivers at the lower of the two QoS)."""
+    return functools.partial(_ack_each, client._client, qos=qos)

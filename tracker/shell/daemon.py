@@ -10,8 +10,8 @@ Everything the engine sees passes through two stages, in one order. Stage 1 (jou
    (durably, per the journal's policy), each with the receive time of the daemon's clock; the
    commit runs in a worker thread, so messages keep arriving meanwhile and the next group is larger
    when the disk is slow (group commit);
-3. acknowledge them to the broker (only now: a crash before this line makes the broker deliver
-   them again, and a redelivered copy changes nothing).
+3. acknowledge them to the broker, the group's acknowledgements in one write (only now: a crash
+   before this line makes the broker deliver them again, and a redelivered copy changes nothing).
 
 Stage 2 (apply), which works on one group while stage 1 commits the next:
 
@@ -56,6 +56,7 @@ import asyncio
 import contextlib
 import dataclasses
 import fcntl
+import gc
 import os
 import time as _time
 from collections.abc import Callable, Iterable, Iterator
@@ -86,7 +87,7 @@ from tracker.edge.wire import (
 )
 from tracker.errors import InputError
 from tracker.shell import snapshot
-from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, probe_health
+from tracker.shell.bus import Bus, Delivery, Outbox, Outgoing, acknowledge, probe_health
 from tracker.shell.config import Settings
 from tracker.shell.journal import Journal, JournalError, SnapshotInfo
 from tracker.shell.replay import dumps_summary, finish_summary
@@ -105,6 +106,14 @@ STAGE_SECONDS = 15.0
 YIELD_SECONDS = 0.005
 #: Capacity of the outbox (outputs waiting for the broker's confirmation).
 OUTBOX_CAPACITY = 20_000
+#: During a burst, an interval snapshot waits until the daemon has caught up, or until applying
+#: the records since the last one took this many seconds of CPU -- about what a restart would
+#: spend replaying them (see ``Daemon._snapshot_now``).
+SNAPSHOT_BUSY_SECONDS = 1.5
+#: Seconds without a new group after which a snapshot that waited for the burst is stored.
+SNAPSHOT_QUIET_SECONDS = 0.25
+#: Records applied between two ``gc.freeze()`` calls (see :meth:`Daemon._settled`).
+FREEZE_RECORDS = 2_048
 
 
 #: Target states after which an order gets no more targets (its retained target is cleared).
@@ -189,6 +198,10 @@ class Daemon:
         clock: The time source (UTC datetimes) when it is not the wall clock nor the simulated
             clock of the settings: the demo drives one that never runs ahead of its script.
             ``settings.clock_speed`` still tells how many of its seconds pass per real second.
+        freeze: Keep what the records leave behind out of the garbage collector's reach
+            (:meth:`_settled`): for a process that runs the daemon alone (``tracker run``), not
+            for one that shares its interpreter with other work (tests, the demo), whose garbage
+            would then be collected at unforeseeable times.
 
     Example::
 
@@ -204,6 +217,7 @@ class Daemon:
         engine: EngineLike | None = None,
         on_output: Callable[[Outbound], None] | None = None,
         clock: Callable[[], datetime] | None = None,
+        freeze: bool = False,
     ) -> None:
         self.settings = settings
         self._clock_source = clock
@@ -253,8 +267,13 @@ class Daemon:
         self.restored_from: int | None = None
         self._snapshot_seq = 0  # the journal seq of the latest snapshot (restored or stored)
         self._snapshot_taken = _time.monotonic()
+        self._applying = 0.0  # CPU seconds spent applying records since the latest snapshot
         self._journal_day: date | None = None  # the day the journal holds (rotate_journal)
         self._switching = asyncio.Lock()  # a snapshot or a rotation at a time
+        # Freeze what the records leave behind (see _settled), unless the process froze objects
+        # of its own; records applied since the last freeze.
+        self._freezing = freeze and gc.get_freeze_count() == 0
+        self._unfrozen = 0
         #: The journals closed by a rotation in this run (their dated paths).
         self.rotated: list[Path] = []
 
@@ -314,6 +333,12 @@ class Daemon:
             if exc_type is None and self.settings.summary is not None:
                 self.write_summary(self.settings.summary)
         finally:
+            if self._freezing:
+                gc.unfreeze()
+            # The connection's garbage (futures, the paho client) collected here, not at some
+            # later collection inside whatever runs next in this process: a finalizer that logs
+            # (an exception never retrieved) would run inside someone else's code.
+            gc.collect()
             self._close_journal()
             self._unlock()
 
@@ -469,6 +494,7 @@ class Daemon:
             if pending:
                 apply(self.engine, pending.pop(0)[1])
         self._applied = start
+        replaying = _time.thread_time()
         for record in self.journal.records(after=start):
             while pending and record.line > pending[0][0]:
                 apply(self.engine, pending.pop(0)[1])
@@ -478,6 +504,8 @@ class Daemon:
                 self.republished += len(outputs)
                 self._queue_now(record.line, outputs)
             self._applied = record.line
+            self._settled(1)
+        self._applying += _time.thread_time() - replaying  # records since the snapshot
         for _, later, _ in pending:  # described after the last record: in force from here
             apply(self.engine, later)
         if self.recovered or self.restored_from is not None:
@@ -624,6 +652,7 @@ class Daemon:
         self._journal_day = self._day_of(now)
         self._snapshot_seq = base
         self._snapshot_taken = _time.monotonic()
+        self._applying = 0.0
 
     # -- snapshots -------------------------------------------------------------------------------
 
@@ -632,13 +661,47 @@ class Daemon:
         """Snapshots are taken and used for the engine the settings build (not one given)."""
         return self.settings.snapshot_records > 0 and self._engine_given is None
 
+    def _settled(self, records: int) -> None:
+        """Every ``FREEZE_RECORDS`` records applied, move what they left behind out of the cyclic
+        garbage collector's reach (``gc.freeze()``, as ``tracker replay`` does per chunk).
+
+        The engine's state (orders, fills, plans, the redelivery memory) grows with the day and
+        lives on, yet every full collection scanned it again: about a fifth of the daemon's time
+        during a burst. Objects freed by their reference counts are freed all the same; cycles
+        among frozen objects wait for the next interval snapshot, which unfreezes everything
+        (when the daemon has caught up), or for the stop.
+        """
+        if not self._freezing:
+            return
+        self._unfrozen += records
+        if self._unfrozen >= FREEZE_RECORDS:
+            gc.freeze()
+            self._unfrozen = 0
+
     def _snapshot_due(self) -> bool:
+        """Whether an interval snapshot is due: ``snapshot_records`` records or
+        ``snapshot_seconds`` since the last one (see :meth:`_snapshot_now` for when)."""
         if not self._snapshots_on or self._applied <= self._snapshot_seq:
             return False
         if self._applied - self._snapshot_seq >= self.settings.snapshot_records:
             return True
         seconds = self.settings.snapshot_seconds
         return seconds > 0 and _time.monotonic() - self._snapshot_taken >= seconds
+
+    def _snapshot_now(self, group: int) -> bool:
+        """Whether a due snapshot is stored now rather than after the burst.
+
+        During a burst -- the group just applied held more than one record, or messages wait to
+        be journaled or applied -- it waits for the daemon to catch up (:meth:`_apply_stage`),
+        or until applying the records since the last snapshot has taken
+        ``SNAPSHOT_BUSY_SECONDS`` of CPU: a restart replays them through the same intake and
+        engine, so that bounds what the wait adds to a restart. Pickling the state of a busy day
+        takes the interpreter from half a second to a few seconds, as long as applying thousands
+        of fills: taken every 2,500 records during a burst, it cost more than the fills
+        themselves.
+        """
+        busy = group > 1 or self.inbox.qsize() > 0 or self._journaled.qsize() > 0
+        return not busy or self._applying >= SNAPSHOT_BUSY_SECONDS
 
     async def _snapshot(self, kind: str) -> None:
         """Store a snapshot of the state after the records applied so far.
@@ -648,6 +711,9 @@ class Daemon:
         and stage 1 on journaling (a snapshot of a busy day's state takes a second or two).
         """
         assert self._intake is not None
+        if self._freezing:
+            gc.unfreeze()  # the collector may scan it all again now: cycles that died are freed
+            self._unfrozen = 0
         try:
             async with self._switching:
                 info = await asyncio.to_thread(self._store_snapshot, kind)
@@ -657,6 +723,7 @@ class Daemon:
             self._log.info("snapshot stored", after_seq=info.after_seq, kind=kind, bytes=info.size)
         self._snapshot_seq = self._applied
         self._snapshot_taken = _time.monotonic()
+        self._applying = 0.0
 
     def _store_snapshot(self, kind: str) -> SnapshotInfo:
         assert self._intake is not None and self._clock is not None
@@ -840,40 +907,62 @@ class Daemon:
         )
         self.commits += 1
         self.received += deliveries  # journaled: counted only now (tests wait on it)
-        for item in batch:
-            if isinstance(item, Delivery):
-                item.ack()
+        acknowledge(item for item in batch if isinstance(item, Delivery))
         return [
             Record(line=seq, topic=topic, payload=payload, ts=ts)
             for seq, (topic, payload, _) in zip(seqs, rows, strict=True)
         ]
 
     async def _apply_stage(self) -> None:
-        """Stage 2: feed each journaled record to the engine and queue its outputs, in order."""
+        """Stage 2: feed each journaled record to the engine and queue its outputs, in order.
+
+        Between groups, an interval snapshot when one is due; one put off for a burst
+        (:meth:`_snapshot_due`) is stored once no group has come for ``SNAPSHOT_QUIET_SECONDS``.
+        """
+        waiting = False  # a due snapshot waits for the burst to end
         while True:
-            group = await self._journaled.get()
+            if waiting:
+                try:
+                    group = await asyncio.wait_for(self._journaled.get(), SNAPSHOT_QUIET_SECONDS)
+                except TimeoutError:
+                    waiting = False
+                    await self._snapshot("interval")
+                    continue
+            else:
+                group = await self._journaled.get()
             if group is None:
                 return
             await self._apply(group)
+            self._settled(len(group))
             if self._snapshot_due():
-                await self._snapshot("interval")
+                waiting = not self._snapshot_now(len(group))
+                if not waiting:
+                    await self._snapshot("interval")
 
     async def _apply(self, records: list[Record]) -> None:
         yielded = _time.perf_counter()
+        working = _time.thread_time()  # the CPU the records take (not the bus's, meanwhile)
+        waiting: list[Outgoing] = []  # outputs in order, put in the outbox at each yield
         for run in _runs(records, self.topics.bins("")):
             for record, outputs in zip(run, self._feed_run(run), strict=True):
                 seq = record.line
                 self._applied = seq
-                items = [item for out in outputs for item in self._outgoings(seq, out)]
-                if items:
+                if outputs:
+                    items = [item for out in outputs for item in self._outgoings(seq, out)]
                     self._unconfirmed[seq] = self._unconfirmed.get(seq, 0) + len(items)
-                    for item in items:
-                        await self._put_out(item)
+                    waiting.extend(items)
             # Let the bus publish (and stage 1 read) while the engine works on what follows;
             # only every few milliseconds, so that cheap records (fills) pay nothing for it.
+            # (The bus cannot publish before this anyway: the outputs go to the outbox here.)
             if _time.perf_counter() - yielded > YIELD_SECONDS:
+                self._applying += _time.thread_time() - working
+                await self._put_out(waiting)
+                waiting = []
                 await asyncio.sleep(0)
                 yielded = _time.perf_counter()
+                working = _time.thread_time()
+        self._applying += _time.thread_time() - working
+        await self._put_out(waiting)
 
     async def _close_digest(self, *, finished: bool) -> None:
         """On a stop: publish what the error digest holds back, through a journaled tick.
@@ -1004,17 +1093,19 @@ class Daemon:
             seq=seq,
         )
 
-    async def _put_out(self, item: Outgoing) -> None:
-        if not self.outbox.full:
-            await self.outbox.put(item)
+    async def _put_out(self, items: list[Outgoing]) -> None:
+        """Put outputs in the outbox, in order; wait (and say so) while it is full."""
+        if len(self.outbox) + len(items) <= self.outbox.capacity:
+            self.outbox.extend(items)
             return
         self._log.warning("outbox full: back-pressure", capacity=self.outbox.capacity)
-        while True:
-            try:
-                await self.outbox.put(item, timeout=5.0)
-                return
-            except TimeoutError:
-                self._log.warning("outbox still full", connected=self.bus.connected.is_set())
+        for item in items:
+            while True:
+                try:
+                    await self.outbox.put(item, timeout=5.0)
+                    break
+                except TimeoutError:
+                    self._log.warning("outbox still full", connected=self.bus.connected.is_set())
 
     # -- confirmations ---------------------------------------------------------------------------
 

@@ -223,11 +223,7 @@ class JournalWriteError(JournalError):
 
 def record_crc(topic: str, payload: bytes, ts: str) -> int:
     """CRC-32 of one journal record (topic, payload and time, separated by NUL bytes)."""
-    crc = zlib.crc32(topic.encode("utf-8"))
-    crc = zlib.crc32(b"\x00", crc)
-    crc = zlib.crc32(payload, crc)
-    crc = zlib.crc32(b"\x00", crc)
-    return zlib.crc32(ts.encode("utf-8"), crc)
+    return zlib.crc32(b"\x00".join((topic.encode("utf-8"), payload, ts.encode("utf-8"))))
 
 
 def _connect(path: Path, *, readonly: bool) -> sqlite3.Connection:
@@ -408,19 +404,19 @@ class Journal:
             The sequence numbers given to the rows.
         """
         self.check_file()
-        seqs: list[int] = []
+        # Numbered explicitly: a new day's journal goes on from the day before's numbers.
+        first = self.last_seq + 1
+        seqs = list(range(first, first + len(rows)))
+        values = []
+        for seq, (topic, payload, ts) in zip(seqs, rows, strict=True):
+            payload = bytes(payload)
+            values.append((seq, topic, payload, ts, record_crc(topic, payload, ts)))
         try:
             with self._transaction():
-                # Numbered explicitly: a new day's journal goes on from the day before's numbers.
-                seq = self.last_seq
-                for topic, payload, ts in rows:
-                    payload = bytes(payload)
-                    seq += 1
-                    self._db.execute(
-                        "INSERT INTO journal(seq, topic, payload, ts, crc) VALUES (?, ?, ?, ?, ?)",
-                        (seq, topic, payload, ts, record_crc(topic, payload, ts)),
-                    )
-                    seqs.append(seq)
+                self._db.executemany(
+                    "INSERT INTO journal(seq, topic, payload, ts, crc) VALUES (?, ?, ?, ?, ?)",
+                    values,
+                )
                 if published_through is not None:
                     self._set_published_through(published_through)
                 if logged_through is not None:
