@@ -14,6 +14,7 @@ from typing import Any
 import paho.mqtt.client as paho
 import pytest
 
+from tracker.shell import bus
 from tracker.shell.bus import Delivery, _Link, acknowledge
 
 MESSAGES = [
@@ -224,4 +225,14 @@ def test_acknowledge_writes_each_delivery_once_grouped_by_connection() -> None:
 def test_mqtt_5_is_left_to_paho() -> None:
     """The lean path speaks MQTT 3.1 and 3.1.1 only: for MQTT 5 the bus uses paho's own."""
     client = paho.Client(paho.CallbackAPIVersion.VERSION2, protocol=paho.MQTTv5)
+    assert _Link.attach(client) is None
+
+
+def test_a_paho_release_outside_the_tested_series_is_left_to_paho(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """A paho the lean path was not tested with may change what its internals mean: paho's own
+    publish and ack are used."""
+    monkeypatch.setattr(bus, "paho_version", lambda: "3.0.0")
+    client = paho.Client(paho.CallbackAPIVersion.VERSION2, protocol=paho.MQTTv311)
     assert _Link.attach(client) is None

@@ -768,6 +768,13 @@ def _acknowledge(client: aiomqtt.Client, qos: int, mid: int) -> None:
         client._client.ack(mid, qos)
 
 
+def paho_version() -> str:
+    """The installed paho-mqtt's version."""
+    import paho.mqtt
+
+    return str(paho.mqtt.__version__)
+
+
 class _Link:
     """The lean path through paho for one connection: QoS 1 PUBLISH and PUBACK packets made here
     and queued on paho's socket, many per socket write.
@@ -782,10 +789,15 @@ class _Link:
     ``WRITE_CHUNK`` bytes each): the same bytes, in the same order, as paho would send them.
 
     It uses paho internals (``_packet_queue``, ``_out_packet``, ``_packet_write``,
-    ``_handle_pubackcomp``, ``_in_packet``, ``_mid_generate``): :meth:`attach` checks that they
-    are there and that the connection speaks MQTT 3.1 or 3.1.1, and returns ``None`` otherwise,
-    in which case the bus goes through paho's public ``publish`` and ``ack``.
+    ``_handle_pubackcomp``, ``_in_packet``, ``_mid_generate``): :meth:`attach` checks that paho
+    is of the release series the tests were run with (:data:`PAHO_SERIES`), that they are there
+    and that the connection speaks MQTT 3.1 or 3.1.1, and returns ``None`` otherwise, in which
+    case the bus goes through paho's public ``publish`` and ``ack``: a new paho may keep a name
+    and change what it means, so it is not taken this way before a test run says it can be.
     """
+
+    #: paho releases the lean path was tested with (``paho.mqtt.__version__`` prefix).
+    PAHO_SERIES = ("2.1.", "2.2.")
 
     #: Most bytes of waiting packets joined into one socket write.
     WRITE_CHUNK = 256 * 1024
@@ -831,6 +843,8 @@ class _Link:
     @classmethod
     def attach(cls, inner: paho.Client) -> _Link | None:
         """The link for this client, installed; ``None`` when paho cannot be taken this way."""
+        if not paho_version().startswith(cls.PAHO_SERIES):
+            return None
         if not all(hasattr(inner, name) for name in cls._NEEDED):
             return None
         if inner._protocol not in (paho.MQTTv31, paho.MQTTv311):
