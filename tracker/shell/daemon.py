@@ -601,9 +601,12 @@ class Daemon:
                 return
             await asyncio.sleep(0.02)
         async with self._switching:
-            await asyncio.to_thread(self._switch_journal, now)
+            # The new day carries what may still change: ended orders stay in the day's journal.
+            # Here, not in the worker thread: the ticker reads the engine's timers meanwhile.
+            forgotten = self._intake.forget_ended()
+            await asyncio.to_thread(self._switch_journal, now, len(forgotten))
 
-    def _switch_journal(self, now: datetime) -> None:
+    def _switch_journal(self, now: datetime, forgotten: int) -> None:
         assert self._intake is not None and self._journal_day is not None
         path = Path(self.settings.journal)
         old = self.journal
@@ -613,8 +616,6 @@ class Daemon:
         for part in ("", "-wal", "-shm"):
             Path(f"{fresh}{part}").unlink(missing_ok=True)
         ts = format_ts(now)
-        # The new day carries what may still change: ended orders stay in the day's journal.
-        forgotten = self._intake.forget_ended()
         state = snapshot.dump(self._intake)
         config = getattr(self.engine, "config", None)
         with Journal(
@@ -646,7 +647,7 @@ class Daemon:
             day=self._journal_day.isoformat(),
             carried_after_seq=base,
             carried_bytes=len(state),
-            ended_orders_left_behind=len(forgotten),
+            ended_orders_left_behind=forgotten,
         )
         self.rotated.append(dated)
         self._journal_day = self._day_of(now)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import heapq
 from collections import Counter
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
 from typing import Any
@@ -246,10 +247,8 @@ class EngineState:
         for sym in self.symbols.values():
             sym.orders = {o: None for o in sym.orders if o not in gone}
             sym.unchecked = [(o, fill) for o, fill in sym.unchecked if o not in gone]
-        self.starts = [entry for entry in self.starts if entry[1] not in gone]
-        self.ends = [entry for entry in self.ends if entry[1] not in gone]
-        heapq.heapify(self.starts)
-        heapq.heapify(self.ends)
+        self.starts = _heap(entry for entry in self.starts if entry[1] not in gone)
+        self.ends = _heap(entry for entry in self.ends if entry[1] not in gone)
         self.book.forget(gone)
         return ended
 
@@ -258,6 +257,13 @@ class EngineState:
         sym.stale_at = reference + timedelta(seconds=self.config.stale_bins * sym.bin_seconds)
         if self.stale_due is None or sym.stale_at < self.stale_due:
             self.stale_due = sym.stale_at
+
+
+def _heap(entries: Iterable[tuple[datetime, str]]) -> list[tuple[datetime, str]]:
+    """A heap of ``(time, order id)`` entries, made whole before anyone sees it."""
+    heap = list(entries)
+    heapq.heapify(heap)
+    return heap
 
 
 __all__ = ["Deviation", "EngineState", "OrderState", "Plan", "SymbolState"]
