@@ -683,19 +683,9 @@ class Bus:
         pending: dict[int, tuple[int, Outgoing]] = {}  # message id -> (ticket, message)
         room = asyncio.Event()
         room.set()
-        outbox = self.outbox
-        on_published = self._on_published
 
         def on_puback(mid: int) -> bool:
-            entry = pending.pop(mid, None)
-            if entry is None:
-                return False  # not ours: aiomqtt's (a health message)
-            ticket, item = entry
-            outbox.done(ticket)
-            if on_published is not None:
-                on_published(item)
-            room.set()
-            return True
+            return self._confirm(pending, mid, room)  # False: aiomqtt's (a health message)
 
         link.on_puback = on_puback
         try:
@@ -703,7 +693,7 @@ class Bus:
                 while len(pending) >= MAX_IN_FLIGHT:
                     room.clear()
                     await room.wait()
-                for ticket, item in await outbox.take_many(MAX_IN_FLIGHT - len(pending)):
+                for ticket, item in await self.outbox.take_many(MAX_IN_FLIGHT - len(pending)):
                     pending[link.publish(item.topic, item.payload, item.retain)] = (ticket, item)
         finally:
             link.on_puback = None
@@ -719,14 +709,7 @@ class Bus:
         def on_publish(*args: Any) -> None:
             if aiomqtt_on_publish is not None:
                 aiomqtt_on_publish(*args)  # the health messages go through aiomqtt
-            entry = pending.pop(args[2], None)  # (client, userdata, mid, reason, properties)
-            if entry is None:
-                return
-            ticket, item = entry
-            self.outbox.done(ticket)
-            if self._on_published is not None:
-                self._on_published(item)
-            room.set()
+            self._confirm(pending, args[2], room)  # (client, userdata, mid, reason, properties)
 
         inner.on_publish = on_publish
         try:
@@ -741,6 +724,21 @@ class Bus:
                 pending[info.mid] = (ticket, item)
         finally:
             inner.on_publish = aiomqtt_on_publish
+
+    def _confirm(
+        self, pending: dict[int, tuple[int, Outgoing]], mid: int, room: asyncio.Event
+    ) -> bool:
+        """The broker confirmed message id ``mid``: done in the outbox, room for one more in
+        flight. Whether it was one of ``pending`` (a writer's publications)."""
+        entry = pending.pop(mid, None)
+        if entry is None:
+            return False
+        ticket, item = entry
+        self.outbox.done(ticket)
+        if self._on_published is not None:
+            self._on_published(item)
+        room.set()
+        return True
 
     async def _heartbeat(self, client: aiomqtt.Client) -> None:
         while True:
