@@ -39,15 +39,6 @@ def mosquitto(tmp_path: Path) -> Iterator[PrivateMosquitto]:
         yield broker
 
 
-@pytest.fixture
-def daemons() -> Iterator[list[DaemonProcess]]:
-    """Daemon subprocesses started by a test, killed at teardown whatever happened."""
-    started: list[DaemonProcess] = []
-    yield started
-    for daemon in started:
-        daemon.cleanup()
-
-
 def _orders_of(summary_path: Path) -> list[dict[str, object]]:
     orders: list[dict[str, object]] = json.loads(summary_path.read_text())["orders"]
     return orders

@@ -41,15 +41,6 @@ def mosquitto(tmp_path: Path) -> Iterator[PrivateMosquitto]:
         yield broker
 
 
-@pytest.fixture
-def daemons() -> Iterator[list[DaemonProcess]]:
-    """Daemon subprocesses started by a test, killed at teardown whatever happened."""
-    started: list[DaemonProcess] = []
-    yield started
-    for daemon in started:
-        daemon.cleanup()
-
-
 def stamped_fills() -> list[tuple[str, bytes]]:
     """FILLS fills of one order from source ``gw``, numbered 1 to FILLS (invented values)."""
     when = utc_text(datetime.fromisoformat(day_start()) + timedelta(seconds=1))
