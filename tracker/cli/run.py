@@ -39,7 +39,8 @@ unacknowledged messages at a time (max_inflight_messages 1000 lifts that) and de
 what breaks without it. To see a loss all the same, senders number their messages ("source" and
 "seq" on any inbound message) and send a heartbeat ({"type": "heartbeat", "source", "seq"} on
 ROOT/control) when they have had nothing else to say for a few seconds: a jump raises a critical
-source_gap alert naming the missing numbers.
+source_gap alert naming the missing numbers, and a source that sends heartbeats and then nothing
+for three of its intervals (at least 10 s) raises a source_silent warning.
 
 Every setting can also come from an environment variable (TRACKER_BROKER, TRACKER_ROOT,
 TRACKER_JOURNAL, TRACKER_PROFILES, TRACKER_INSTANCE, TRACKER_BROKER_USERNAME,

@@ -69,6 +69,8 @@ clock_skew                 warning               a message's ts is outside the t
                                                  time
 source_gap                 critical              a source's sequence numbers skipped: messages
                                                  between them never arrived
+source_silent              warning               a source that sends heartbeats has sent nothing
+                                                 for several of its intervals
 =========================  ====================  ===================================================
 """
 
@@ -112,6 +114,7 @@ CANCEL_MISMATCH = "cancel_mismatch"
 JOURNAL_FAILED = "journal_failed"
 CLOCK_SKEW = "clock_skew"
 SOURCE_GAP = "source_gap"
+SOURCE_SILENT = "source_silent"
 
 
 @dataclass(frozen=True, slots=True)
@@ -208,6 +211,10 @@ CODES: Mapping[str, Code] = {
     SOURCE_GAP: Code(
         "critical",
         "a source's sequence numbers skipped: messages between them never arrived",
+    ),
+    SOURCE_SILENT: Code(
+        "warning",
+        "a source that sends heartbeats has sent nothing for several of its intervals",
     ),
 }
 

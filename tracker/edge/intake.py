@@ -36,6 +36,15 @@ re-sent under a new ``seq`` is no gap. A heartbeat (:class:`~tracker.edge.wire.H
 control topic) takes its source's next number and is accepted without reaching the engine: it is
 what reveals the loss of a source's last messages, which no later message would.
 
+``source_silent`` (warning): a source that sends heartbeats has promised to speak every so often,
+so its silence is news too (a router that stopped, or a broker dropping its messages while the
+daemon stays connected). A source's interval is how long it had been quiet when its latest
+heartbeat came (a source sends one when it has had nothing else to say for a while); once it has
+sent nothing new for :data:`SILENT_INTERVALS` intervals (and at least :data:`SILENT_MIN_SECONDS`)
+of receive time, the alert is raised, judged at most once a second as lines (the daemon's ticks
+among them) arrive; it is cleared by the source's next new number. A source that never sent a
+heartbeat is never judged: silence is normal for it. :meth:`Intake.silent` lists the silent ones.
+
 Remarks (``info`` error records; the line is accepted all the same):
 
 * a field the contract does not name (tolerant reading: the message is applied; a fill keeps the
@@ -107,7 +116,7 @@ from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from typing import Any, Protocol
 
-from tracker.core.alerts import CLOCK_SKEW, SOURCE_GAP
+from tracker.core.alerts import CLOCK_SKEW, SOURCE_GAP, SOURCE_SILENT
 from tracker.core.alerts import event as rules_event
 from tracker.core.formats import utc_text
 from tracker.core.messages import (
@@ -206,6 +215,9 @@ class Intake:
         self._sequences: dict[str, Sequenced] = {}  # per source: its counter and its gaps
         self._rules_of: object = None  # the settings _rules_now was read from
         self._rules_now: TimeRules | None = None
+        self._silence_due: datetime | None = None  # when sources' silence is judged next
+        self._line_time: datetime | None = None  # the latest receive time of any line
+        self._listening: datetime | None = None  # since when lines arrive without a long pause
 
     @property
     def now(self) -> datetime | None:
@@ -259,7 +271,15 @@ class Intake:
                 continue
             message, key, recorded, unknown, stamp = staged
             if stamp is not None:  # arrived, whatever becomes of it: a copy, refused or taken
-                results[index].extend(self._sequence(stamp, recorded or _message_time(message)))
+                results[index].extend(
+                    self._sequence(
+                        stamp,
+                        recorded or _message_time(message),
+                        heartbeat=isinstance(message, Heartbeat),
+                    )
+                )
+            if recorded is not None:
+                results[index].extend(self._silences(recorded))
             if isinstance(message, Heartbeat):  # its number was all it had to say
                 self.accepted += 1
                 self.heartbeats += 1
@@ -361,20 +381,23 @@ class Intake:
         key = None if isinstance(message, Tick | Heartbeat) else _identity(record.topic, message)
         return message, key, recorded, unknown, stamp
 
-    def _sequence(self, stamp: tuple[str, int], when: datetime | None) -> list[Outbound]:
+    def _sequence(
+        self, stamp: tuple[str, int], when: datetime | None, *, heartbeat: bool = False
+    ) -> list[Outbound]:
         """Follow a source's counter: a jump opens a gap (a critical ``source_gap`` alert naming
-        the missing numbers); a late message fills its place, and a gap filled whole is cleared."""
+        the missing numbers); a late message fills its place, and a gap filled whole is cleared.
+        A new number is the source speaking (:meth:`_speaks`)."""
         source, seq = stamp
         ts = when or self._last or _EPOCH
         known = self._sequences.get(source)
         if known is None:
             if len(self._sequences) >= MAX_SOURCES:
                 return []  # beyond the bound a source is not followed (the summary says so)
-            self._sequences[source] = Sequenced(last=seq)
+            self._sequences[source] = Sequenced(last=seq, heard=when)
             return []
         if seq == known.last + 1:
             known.last = seq
-            return []
+            return self._speaks(source, known, when, heartbeat)
         if seq > known.last + 1:
             first, last = known.last + 1, seq - 1
             known.last = seq
@@ -383,6 +406,7 @@ class Intake:
             count = last - first + 1
             span = f"{first}" if first == last else f"{first} to {last}"
             return [
+                *self._speaks(source, known, when, heartbeat),
                 rules_event(
                     SOURCE_GAP,
                     f"Source {source!r} skipped seq {span} ({count:,} message"
@@ -393,7 +417,7 @@ class Intake:
                     symbol=None,
                     ts=ts,
                     details={"source": source, "first_missing": first, "last_missing": last},
-                )
+                ),
             ]
         if known.fill(seq) and not known.gaps:  # the last missing message came late
             return [
@@ -408,6 +432,87 @@ class Intake:
                 )
             ]
         return []
+
+    def _speaks(
+        self, source: str, known: Sequenced, when: datetime | None, heartbeat: bool
+    ) -> list[Outbound]:
+        """``source`` sent a new number at ``when``: a heartbeat sets its interval (how long it
+        had been quiet); a silent source is heard again (the ``source_silent`` alert clears)."""
+        if when is None:
+            return []
+        if heartbeat and known.heard is not None and when > known.heard:
+            known.every = (when - known.heard).total_seconds()
+        if known.heard is None or when > known.heard:
+            known.heard = when
+        if not known.silent:
+            return []
+        known.silent = False
+        return [
+            AlertMessage(
+                order_id=None,
+                code=SOURCE_SILENT,
+                severity="info",
+                state="cleared",
+                message=f"Source {source!r} is sending again.",
+                details={"source": source},
+                ts=when,
+            )
+        ]
+
+    def _silences(self, now: datetime) -> list[Outbound]:
+        """Raise ``source_silent`` for each source that sends heartbeats and has sent nothing new
+        for :data:`SILENT_INTERVALS` of its intervals (at least :data:`SILENT_MIN_SECONDS`) by
+        ``now``, a line's receive time; judged once a second at most.
+
+        Only time the intake was listening counts: after a pause of more than
+        :data:`SILENT_MIN_SECONDS` between any two lines (the daemon was down, or idle with
+        nothing working and so no ticks), every source's silence is counted from the line that
+        ended it, so a restart does not call every source silent before the broker has handed
+        over what it kept for the daemon."""
+        previous = self._line_time
+        if previous is None or now > previous:
+            self._line_time = now
+        if previous is not None and (now - previous).total_seconds() > SILENT_MIN_SECONDS:
+            self._listening = now
+        if self._silence_due is not None and now < self._silence_due:
+            return []
+        self._silence_due = now + SILENCE_CHECK
+        raised: list[Outbound] = []
+        for source, known in self._sequences.items():  # insertion order: deterministic
+            if known.every is None or known.heard is None or known.silent:
+                continue
+            limit = max(SILENT_INTERVALS * known.every, SILENT_MIN_SECONDS)
+            since = known.heard
+            if self._listening is not None and self._listening > since:
+                since = self._listening
+            quiet = (now - since).total_seconds()
+            if quiet <= limit:
+                continue
+            known.silent = True
+            raised.append(
+                rules_event(
+                    SOURCE_SILENT,
+                    f"Source {source!r} has sent nothing for {quiet:,.0f} s (its heartbeats come "
+                    f"about every {known.every:,.0f} s; silent after {limit:,.0f} s): it may have "
+                    "stopped, or the broker may be dropping its messages, and fills it sent "
+                    "meanwhile may be missing. Check the source and the broker; the alert clears "
+                    "when it sends again.",
+                    order_id=None,
+                    symbol=None,
+                    ts=now,
+                    details={
+                        "source": source,
+                        "last_heard": utc_text(known.heard),
+                        "quiet_seconds": round(quiet, 3),
+                        "interval_seconds": round(known.every, 3),
+                    },
+                )
+            )
+        return raised
+
+    def silent(self) -> list[str]:
+        """The sources judged silent now (their ``source_silent`` alert stands)."""
+        return sorted(source for source, known in self._sequences.items() if known.silent)
 
     def forget_ended(self) -> list[str]:
         """Drop the orders the engine has ended (:meth:`Engine.forget_ended
@@ -579,6 +684,15 @@ class Intake:
 
 #: At most this many sources are followed (a bound on memory); a source beyond it is not.
 MAX_SOURCES = 10_000
+#: A source that sends heartbeats is silent after this many of its intervals without a new
+#: number (the interval: how long it had been quiet when its latest heartbeat came). Three, so
+#: that one late or lost heartbeat is no alarm (common practice for liveness checks, from memory).
+SILENT_INTERVALS = 3.0
+#: ... and never before this many seconds (a source beating every second would otherwise be
+#: called silent by a daemon busy for three seconds).
+SILENT_MIN_SECONDS = 10.0
+#: How often, in receive time, sources' silence is judged at most.
+SILENCE_CHECK = timedelta(seconds=1)
 #: At most this many open gaps are kept per source; beyond it the oldest is forgotten (its alert
 #: stands; the summary's ``gaps_opened`` still counts it).
 MAX_GAPS = 1_000
@@ -586,10 +700,15 @@ MAX_GAPS = 1_000
 
 @dataclass(slots=True)
 class Sequenced:
-    """One source's counter: the highest ``seq`` seen and the ranges still missing."""
+    """One source's counter: the highest ``seq`` seen and the ranges still missing; when its
+    newest number arrived, its heartbeat interval in seconds (``None`` until a heartbeat shows
+    it) and whether it is judged silent."""
 
     last: int
     gaps: list[tuple[int, int]] = field(default_factory=list)
+    heard: datetime | None = None
+    every: float | None = None
+    silent: bool = False
 
     def open(self, first: int, last: int) -> None:
         self.gaps.append((first, last))

@@ -1150,6 +1150,8 @@ class Daemon:
             "backpressure": self.bus.backpressure or self.outbox.full,
             # per source, the seq ranges that never arrived (a broker dropped them)
             "gaps": {} if self._intake is None else self._intake.gaps(),
+            # sources that send heartbeats and have gone quiet (a source_silent alert stands)
+            "silent": [] if self._intake is None else self._intake.silent(),
         }
 
     def summary(self) -> dict[str, Any]:
