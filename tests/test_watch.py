@@ -247,6 +247,22 @@ def test_an_offline_daemon_gets_a_banner() -> None:
     assert ["offline"] == [banner.kind for banner in board.banners(now=1.0)]
 
 
+def test_lost_and_silent_sources_in_a_daemons_health_get_banners() -> None:
+    """The daemon's health lists the seq ranges that never arrived (``gaps``) and the sources
+    gone quiet (``silent``): each is a banner naming the source, the count and the ranges."""
+    health = (
+        b'{"type":"health","status":"online","ts":"2026-03-10T15:00:00Z",'
+        b'"gaps":{"gw":[[3,4],[9,9]],"ok":[]},"silent":["router-1"]}'
+    )
+    board = board_with(("health/t1", health))
+    banners = board.banners(now=1.0)
+    assert ["lost", "source"] == [banner.kind for banner in banners]
+    assert "3 messages of source gw never reached daemon t1 (seq 3-4, 9)" in banners[0].text
+    assert "source router-1 has gone quiet" in banners[1].text
+    board = board_with(("health/t1", b'{"type":"health","status":"online","gaps":{},"silent":[]}'))
+    assert [] == board.banners(now=1.0)
+
+
 @pytest.mark.parametrize(
     ("quiet", "state", "expected"),
     [(599.0, "working", []), (601.0, "working", ["stale"]), (601.0, "done", [])],

@@ -527,6 +527,8 @@ class Board:
             ):
                 late = now - instance.seen
                 found.append(Banner("silent", f"daemon {name} sent no heartbeat for {late:.0f} s"))
+            if instance.online and instance.document is not None:
+                found.extend(_source_banners(name, instance.document))
         working = any(view.state == "working" for view in self.orders.values())
         quiet = now - self.last_data
         limit = self.stale_limit()
@@ -555,6 +557,44 @@ class Board:
     def known(self, order_ids: Iterable[str]) -> list[str]:
         """The ids among ``order_ids`` that the board has an order for."""
         return [order_id for order_id in order_ids if order_id in self.orders]
+
+
+def _source_banners(name: str, health: dict[str, Any]) -> list[Banner]:
+    """What a daemon's health says of its senders: messages that never arrived (``gaps``: per
+    source, the missing ``[first, last]`` seq ranges) and sources gone quiet (``silent``)."""
+    found: list[Banner] = []
+    gaps = health.get("gaps")
+    if isinstance(gaps, dict):
+        for source in sorted(gaps):
+            ranges = [
+                (r[0], r[1])
+                for r in gaps[source]
+                if isinstance(r, list) and len(r) == 2 and all(isinstance(x, int) for x in r)
+            ]
+            if not ranges:
+                continue
+            count = sum(last - first + 1 for first, last in ranges)
+            shown = ", ".join(f"{a}" if a == b else f"{a}-{b}" for a, b in ranges[:3])
+            extra = len(ranges) - 3
+            more = f", +{extra} range{'s' if extra > 1 else ''}" if extra > 0 else ""
+            found.append(
+                Banner(
+                    "lost",
+                    f"LOST: {count:,} messages of source {source} never reached daemon {name} "
+                    f"(seq {shown}{more}): fills may be missing",
+                )
+            )
+    silent = health.get("silent")
+    if isinstance(silent, list):
+        for source in sorted(str(item) for item in silent):
+            found.append(
+                Banner(
+                    "source",
+                    f"source {source} has gone quiet (no heartbeat reached daemon {name}): "
+                    "check it and the broker",
+                )
+            )
+    return found
 
 
 def _duration(seconds: float) -> str:

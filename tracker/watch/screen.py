@@ -64,6 +64,8 @@ _BANNER_STYLE = {
     "silent": "bold black on yellow",
     "stale": "bold black on yellow",
     "bus": "bold white on red",
+    "lost": "bold white on red",
+    "source": "bold black on yellow",
 }
 _RANK_MARK = {0: "!!", 1: "! ", 2: "! "}
 
