@@ -77,6 +77,7 @@ from tracker.core.messages import (
     TargetMessage,
     Tick,
     json_object,
+    json_text,
     payload_text,
 )
 from tracker.core.topics import DEFAULT_ROOT, Topics
@@ -883,9 +884,7 @@ def to_json_object(message: Message) -> dict[str, Any]:
 
 def encode(message: Message) -> bytes:
     """Deterministic compact JSON bytes of a message (UTF-8, no NaN)."""
-    return json.dumps(
-        json_object(message), separators=(",", ":"), ensure_ascii=False, allow_nan=False
-    ).encode("utf-8")
+    return json_text(message).encode("utf-8")
 
 
 def decode_output(payload: bytes | str) -> Outbound:
