@@ -171,3 +171,127 @@ EDGES += [float("nan"), float("inf"), -float("inf"), 1e16, 1e300, 5e-324, 0.5, 2
 def test_float_text_is_the_rounded_repr(value: float) -> None:
     """float_text writes a float as rounding it and json.dumps wrote it (null when not finite)."""
     assert reference_float(value) == float_text(value)
+
+
+# --------------------------------------------------------------------------------------------
+# A fill's payload checked without pydantic (wire._common_fill)
+
+GOOD_FILL: dict[str, Any] = {
+    "type": "fill",
+    "fill_id": "F0000001",
+    "order_id": "X_ZEPH-1",
+    "quantity": 500,
+    "price": 20.5,
+    "ts": "2026-03-02T14:35:00Z",
+}
+ABSENT = object()  # the field is left out
+JSONABLE = st.one_of(st.none(), st.booleans(), st.integers(), st.floats(), st.text())
+
+IDS = ["X_ZEPH-1", "a", "A" * 64, "A" * 65, "", "X ZEPH", "X/ZEPH", "é", 7, None, True, ["a"]]
+NUMBERS = [1, 500, 10**12, 10**12 + 1, 0, -5, 2.5, 500.0, 1e12, 1e13, -0.0, True, False, "500"]
+NUMBERS += [None, 1e400, 10**400, 0.000001]
+TIMES = ["2026-03-02T14:35:00Z", "2026-03-02T14:35:00+01:00", "2026-03-02T14:35:00.123456-05:00"]
+TIMES += ["2026-03-02T14:35:00", "2026-03-02", "yesterday", "", 1_700_000_000, None]
+TIMES += ["2026-03-02T14:35:00+24:00", "2026-02-30T14:35:00Z", "2026-03-02 14:35Z"]
+SIDES = ["buy", "sell", "BUY", "short", "", None, 1, True]
+FIELD_VALUES: dict[str, list[Any]] = {
+    "fill_id": [ABSENT, *IDS],
+    "order_id": [ABSENT, *IDS],
+    "quantity": [ABSENT, *NUMBERS],
+    "price": [ABSENT, *NUMBERS, 20.123456789],
+    "ts": [ABSENT, *TIMES],
+    "side": [ABSENT, *SIDES],
+    "version": [ABSENT, "1.1", "1.0", None, 1.1, ""],
+    "source": [ABSENT, "gw", "g w", None, 3, "x" * 65],
+    "seq": [ABSENT, 1, 2, 10**12, 10**12 + 1, 0, -1, 1.0, True, "1", None],
+    "type": ["fill"],
+}
+
+
+@st.composite
+def fill_payloads(draw: st.DrawFn) -> dict[str, Any]:
+    """A fill's payload, mostly valid: each field kept, left out or changed to an odd value."""
+    payload = dict(GOOD_FILL)
+    for name, choices in FIELD_VALUES.items():
+        if draw(st.integers(0, 3)) == 0:  # a quarter of the fields changed, on average
+            value = draw(st.sampled_from(choices))
+            if value is ABSENT:
+                payload.pop(name, None)
+            else:
+                payload[name] = value
+    if draw(st.integers(0, 9)) == 0:
+        payload[draw(st.sampled_from(["venue", "liquidity", "Price", "seq_no"]))] = draw(JSONABLE)
+    return payload
+
+
+def decoded(topic: str, payload: bytes | dict[str, Any], *, general: bool) -> tuple[Any, ...]:
+    """What decode_reading says, through the fast path or (``general``) pydantic alone."""
+    import unittest.mock
+
+    from tracker.edge import wire
+
+    fast = (lambda data: None) if general else wire._common_fill
+    with unittest.mock.patch.object(wire, "_common_fill", fast):
+        try:
+            message, unknown, stamp = wire.decode_reading(topic, payload)
+        except wire.WireError as exc:
+            return ("refused", exc.reason, exc.field, exc.order_id, exc.topic)
+    return ("accepted", repr(message), message, unknown, stamp)
+
+
+@settings(max_examples=4000, deadline=None)
+@given(fill_payloads(), st.sampled_from(["tracker/fills/X_ZEPH-1", "tracker/fills/a"]))
+def test_common_fill_gives_what_pydantic_gives(payload: dict[str, Any], topic: str) -> None:
+    """A fill decodes to the same message, or is refused for the same reason, either way."""
+    text = json.dumps(payload, allow_nan=True).encode("utf-8")
+    assert decoded(topic, text, general=True) == decoded(topic, text, general=False)
+    assert decoded(topic, payload, general=True) == decoded(topic, payload, general=False)
+
+
+HAND_MADE = [
+    GOOD_FILL,
+    {**GOOD_FILL, "side": "sell", "version": "1.1", "source": "gw", "seq": 7},
+    {**GOOD_FILL, "price": 20, "quantity": 10**12},
+    {**GOOD_FILL, "ts": "2026-03-02T09:35:00.5-05:00"},
+    {**GOOD_FILL, "quantity": 500.0},  # whole, but a float: the general path takes it
+    {**GOOD_FILL, "source": "gw"},  # half a stamp
+    {**GOOD_FILL, "seq": 3},
+    {**GOOD_FILL, "side": None, "version": None, "source": None, "seq": None},
+    {**GOOD_FILL, "venue": "X_HLX"},  # a field beyond the contract: kept as a fact
+    {**GOOD_FILL, "quantity": True},
+    {**GOOD_FILL, "price": 1e400},
+    {**GOOD_FILL, "ts": "2026-03-02T14:35:00"},
+    {**GOOD_FILL, "order_id": "X_ZEPH-2"},  # the topic says otherwise
+    {**GOOD_FILL, "fill_id": "F 1"},
+    {key: value for key, value in GOOD_FILL.items() if key != "price"},
+]
+
+
+def test_common_fill_on_hand_made_payloads() -> None:
+    """The hand-made cases: valid, odd and refused fills decode alike by both paths."""
+    topic = "tracker/fills/X_ZEPH-1"
+    for payload in HAND_MADE:
+        text = json.dumps(payload).encode("utf-8")
+        assert decoded(topic, text, general=True) == decoded(topic, text, general=False)
+    texts = [b'{"type":"fill","fill_id":"F1","fill_id":"F2"}', b'{"type":"fill","price":NaN}']
+    for text in texts:
+        assert decoded(topic, text, general=True) == decoded(topic, text, general=False)
+
+
+def test_common_fill_takes_the_usual_fill() -> None:
+    """The usual fill is taken by the fast path (else it would cost what it saves)."""
+    from tracker.edge import wire
+
+    message, stamp = wire._common_fill({**GOOD_FILL, "side": "buy", "source": "gw", "seq": 2}) or (
+        None,
+        None,
+    )
+    expected = FillMessage(
+        fill_id="F0000001",
+        order_id="X_ZEPH-1",
+        quantity=500,
+        price=20.5,
+        side="buy",
+        ts=datetime(2026, 3, 2, 14, 35, tzinfo=UTC),
+    )
+    assert (expected, ("gw", 2)) == (message, stamp)
