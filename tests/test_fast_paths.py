@@ -14,6 +14,7 @@ from datetime import UTC, datetime, timedelta, timezone
 from typing import Any
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -295,3 +296,48 @@ def test_common_fill_takes_the_usual_fill() -> None:
         ts=datetime(2026, 3, 2, 14, 35, tzinfo=UTC),
     )
     assert (expected, ("gw", 2)) == (message, stamp)
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        "\ufeff{}",
+        "{not json",
+        "[1, 2",
+        '{"a": NaN}',
+        '{"a": -Infinity}',
+        "",
+        "{} x",
+        '{"a":1,"a":2}',
+    ],
+    ids=["bom", "not-json", "cut", "nan", "infinity", "empty", "trailing", "key-twice"],
+)
+def test_one_decoder_says_what_json_loads_said(text: str) -> None:
+    """The one JSON decoder refuses a payload with the words json.loads used for it."""
+    from tracker.edge import wire
+
+    try:
+        json.loads(text, parse_constant=wire._reject_constant, object_pairs_hook=wire._unique_keys)
+    except wire._DuplicateKey as exc:
+        expected = f"{exc}: the key appears twice in the payload; send each field once"
+    except ValueError as exc:
+        expected = f"payload is not valid JSON ({exc}); send one JSON object"
+    with pytest.raises(wire.WireError) as info:
+        wire.decode("tracker/fills/A", text)
+    assert expected == info.value.reason
+
+
+def test_a_fill_set_to_its_receive_time_is_replace_s_fill() -> None:
+    """The intake's spelled-out copy of a fill at its receive time keeps every field, as
+    dataclasses.replace does (a field added to FillMessage would be caught here)."""
+    from tracker.edge.intake import _at_time
+
+    values: dict[str, Any] = {
+        item.name: f"value-{item.name}" for item in dataclasses.fields(FillMessage)
+    }
+    values["extra"] = {"venue": "X_HLX"}
+    fill = FillMessage(**values)
+    received = datetime(2026, 3, 2, 14, 35, 1, tzinfo=UTC)
+    expected = dataclasses.replace(fill, ts=received)
+    actual = _at_time(fill, received)
+    assert (expected, repr(expected)) == (actual, repr(actual))

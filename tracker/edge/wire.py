@@ -648,6 +648,11 @@ def _unique_keys(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     return data
 
 
+#: The decoder of every inbound payload (made once: ``json.loads`` with these keyword arguments
+#: would make a new one for every message).
+_DECODER = json.JSONDecoder(parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
+
+
 #: How the daemon journals a payload it did not read because it was over its size limit (see
 #: :meth:`tracker.shell.daemon.Daemon`): the note is refused with itself as the reason.
 OVERSIZE_NOTE = "payload of {size} bytes is over the limit of {limit} bytes and was not read"
@@ -677,7 +682,9 @@ def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, An
     if text.startswith("payload of ") and " is over the limit of " in text[:120]:
         raise WireError(f"too large: {text[:300]}", topic=topic)
     try:
-        data = json.loads(text, parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
+        if text.startswith("\ufeff"):  # as json.loads says it
+            raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)", text, 0)
+        data = _DECODER.decode(text)
     except _DuplicateKey as exc:
         raise WireError(
             f"{exc}: the key appears twice in the payload; send each field once", topic=topic
