@@ -341,3 +341,65 @@ def test_a_fill_set_to_its_receive_time_is_replace_s_fill() -> None:
     expected = dataclasses.replace(fill, ts=received)
     actual = _at_time(fill, received)
     assert (expected, repr(expected)) == (actual, repr(actual))
+
+
+# --------------------------------------------------------------------------------------------
+# One event through Engine.handle_many (Engine._handle_one)
+
+
+class SolveFailsAt:
+    """Stands in for ``planning.solve_problems``: raises at the ``nth`` call with problems."""
+
+    def __init__(self, nth: int) -> None:
+        from tracker.core.engine import planning
+
+        self.real = planning.solve_problems
+        self.calls = 0
+        self.nth = nth
+
+    def __call__(self, problems: Any) -> Any:
+        self.calls += 1
+        if self.calls == self.nth:
+            raise RuntimeError("injected: a solver raising what it should not")
+        return self.real(problems)
+
+
+def _failures() -> dict[str, tuple[str, Any]]:
+    from tests.test_engine_failures import ApplyFailsOnce, FailOnce
+
+    return {
+        "none": ("", None),
+        "preparing": ("build_problem", lambda: FailOnce(first_bin=6)),
+        "applying": ("apply_replan", lambda: ApplyFailsOnce(nth=100)),
+        "solving": ("solve_problems", lambda: SolveFailsAt(nth=40)),
+    }
+
+
+@pytest.mark.parametrize("failure", ["none", "preparing", "applying", "solving"])
+def test_one_event_at_a_time_is_the_run_of_one(
+    failure: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The golden day one event at a time through handle_many's short way gives the outputs,
+    and leaves the state, that its run of one event gives, a failure injected or none."""
+    from tests.test_engine_failures import decoded_day, fingerprint
+    from tracker.core.engine import Engine, planning
+
+    events = decoded_day()
+    name, make = _failures()[failure]
+    results = []
+    for one_at_a_time in (True, False):
+        stub = make() if make is not None else None
+        if stub is not None:
+            monkeypatch.setattr(planning, name, stub)
+        engine = Engine()
+        outputs = [
+            engine.handle_many([event]) if one_at_a_time else engine._handle_run([event])
+            for event in events
+        ]
+        encoded = [[encode(out) for out in outs] for [outs] in outputs]
+        results.append((encoded, fingerprint(engine), engine.summary()))
+    failed = sum(b'"internal_error"' in line for outs in results[0][0] for line in outs)
+    # A shared solve that fails hands its event over to handle, which solves it again.
+    assert {"none": 0, "preparing": 1, "applying": 1, "solving": 0}[failure] == failed
+    assert failure != "solving" or stub.calls > stub.nth  # it did fail once, and was redone
+    assert results[1] == results[0]
