@@ -403,3 +403,75 @@ def test_one_event_at_a_time_is_the_run_of_one(
     assert {"none": 0, "preparing": 1, "applying": 1, "solving": 0}[failure] == failed
     assert failure != "solving" or stub.calls > stub.nth  # it did fail once, and was redone
     assert results[1] == results[0]
+
+
+# --------------------------------------------------------------------------------------------
+# The outbox's confirmation (Outbox.done without the whole of _changed)
+
+OUTBOX_STEPS = st.lists(
+    st.one_of(
+        st.tuples(st.just("extend"), st.integers(0, 4)),
+        st.tuples(st.just("take"), st.integers(1, 4)),
+        st.tuples(st.just("done"), st.integers(0, 12)),
+        st.tuples(st.just("requeue"), st.just(0)),
+    ),
+    max_size=40,
+)
+
+
+@settings(max_examples=500, deadline=None)
+@given(OUTBOX_STEPS, st.integers(1, 6))
+def test_outbox_events_say_what_its_contents_say(steps: list[tuple[str, int]], cap: int) -> None:
+    """After any sequence of additions, takes, confirmations (of messages in flight or not)
+    and requeues, the outbox's events are what _changed makes of its contents."""
+    import asyncio
+
+    from tracker.shell.bus import Outbox, Outgoing
+
+    async def run() -> None:
+        outbox = Outbox(capacity=cap)
+        made = 0
+        for step, count in steps:
+            if step == "extend":
+                outbox.extend(Outgoing(topic=f"t/{made + i}", payload=b"") for i in range(count))
+                made += count
+            elif step == "take" and outbox._queue:
+                await outbox.take_many(count)
+            elif step == "done":
+                outbox.done(count)
+            elif step == "requeue":
+                outbox.requeue_in_flight()
+            size = len(outbox)
+            expected = (bool(outbox._queue), size < cap, size == 0)
+            actual = (outbox._ready.is_set(), outbox._room.is_set(), outbox._empty.is_set())
+            assert expected == actual
+
+    asyncio.run(run())
+
+
+# --------------------------------------------------------------------------------------------
+# A fill in time, judged by the intake's short way (Intake._judge_time)
+
+MICRO = timedelta(microseconds=1)
+
+
+@pytest.mark.parametrize(
+    ("offset", "skewed"),
+    [
+        (timedelta(0), False),
+        (timedelta(seconds=5), False),  # ts_ahead_seconds (default 5): at the bound is in time
+        (timedelta(seconds=5) + MICRO, True),
+        (-timedelta(seconds=3600), False),  # fill_ts_behind_seconds (default 3,600)
+        (-timedelta(seconds=3600) - MICRO, True),
+        (-timedelta(seconds=901), False),  # beyond ts_behind_seconds, which is not a fill's
+    ],
+    ids=["same", "ahead-bound", "past-ahead", "behind-bound", "past-behind", "order-bound"],
+)
+def test_a_fill_at_the_bounds_of_its_receive_time(offset: timedelta, skewed: bool) -> None:
+    """A fill stamped within its tolerances is taken without remark, at the bounds too; a
+    microsecond beyond either, it is taken with a clock_skew alert (the common rule for every
+    message: the engine's settings, common practice for clocks of two machines)."""
+    from tests.test_time import alerts, at, fill, order, replay
+
+    lines = replay([(at(-30), order("A", at(-30))), (at(5), fill("F1", at(5) + offset))])
+    assert skewed == bool(alerts(lines[1], "clock_skew"))

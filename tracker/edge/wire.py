@@ -944,7 +944,7 @@ def _event(valid: _Inbound, extra: Mapping[str, Any]) -> Inbound | Heartbeat:
 
 def topic_of(message: Outbound, root: str = DEFAULT_ROOT) -> str:
     """The topic an outbound message is published on."""
-    topics = Topics(root)
+    topics = _topics(root)
     if isinstance(message, TargetMessage):
         return topics.targets(message.order_id)
     if isinstance(message, StatusMessage):

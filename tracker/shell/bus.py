@@ -299,7 +299,13 @@ class Outbox:
     def done(self, ticket: int) -> None:
         """The message of ``ticket`` was confirmed by the broker."""
         self._in_flight.pop(ticket, None)
-        self._changed()
+        # _changed, less what a confirmation cannot change (the queue, so ``_ready``), and
+        # without a call for an event already as it should be: once per publication.
+        size = len(self._queue) + len(self._in_flight)
+        if size < self.capacity and not self._room.is_set():
+            self._room.set()
+        if size == 0:
+            self._empty.set()
 
     def requeue_in_flight(self) -> int:
         """Put every unconfirmed message back at the front, in order; return how many."""
