@@ -475,3 +475,11 @@ def test_a_fill_at_the_bounds_of_its_receive_time(offset: timedelta, skewed: boo
 
     lines = replay([(at(-30), order("A", at(-30))), (at(5), fill("F1", at(5) + offset))])
     assert skewed == bool(alerts(lines[1], "clock_skew"))
+
+
+def test_common_fill_checks_every_field_of_the_model() -> None:
+    """The fast path checks exactly the fields of the fill's model: a field added to the model
+    must be checked there too (or the fill would pass it unchecked)."""
+    from tracker.edge import wire
+
+    assert set(wire.FillPayload.model_fields) == set(wire._FILL_FIELDS)
