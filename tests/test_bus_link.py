@@ -13,6 +13,8 @@ from typing import Any
 
 import paho.mqtt.client as paho
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from tracker.shell import bus
 from tracker.shell.bus import Delivery, _Link, acknowledge
@@ -29,10 +31,16 @@ MESSAGES = [
 class Socket:
     """A non-blocking socket stand-in: ``send`` takes at most ``step`` bytes and, when
     ``refuse``, refuses every other call (a full socket buffer); ``recv`` hands out
-    ``incoming`` in pieces of ``piece`` bytes."""
+    ``incoming`` in pieces of ``piece`` bytes, with nothing to read every ``pause``-th time (the
+    rest has not come yet); once it had nothing, it must not be read before :meth:`readable`."""
 
     def __init__(
-        self, step: int = 7, incoming: bytes = b"", piece: int = 5, refuse: bool = True
+        self,
+        step: int = 7,
+        incoming: bytes = b"",
+        piece: int = 5,
+        refuse: bool = True,
+        pause: int = 0,
     ) -> None:
         self.sent = bytearray()
         self.step = step
@@ -40,6 +48,12 @@ class Socket:
         self.calls = 0
         self.incoming = incoming
         self.piece = piece
+        self.pause = pause
+        self.reads = 0
+        self.blocked = False  # until the event loop says it is readable again (readable())
+
+    def readable(self) -> None:
+        self.blocked = False
 
     def send(self, data: bytes) -> int:
         self.calls += 1
@@ -50,7 +64,10 @@ class Socket:
         return len(taken)
 
     def recv(self, size: int) -> bytes:
-        if not self.incoming:
+        assert not self.blocked, "read again after the socket said it had nothing (a busy loop)"
+        self.reads += 1
+        if not self.incoming or (self.pause and self.reads % self.pause == 0):
+            self.blocked = True
             raise BlockingIOError
         taken = self.incoming[: min(size, self.piece)]
         self.incoming = self.incoming[len(taken) :]
@@ -185,6 +202,7 @@ def test_inbound_publications_and_pubacks_are_read_in_order(piece: int) -> None:
     link.on_message = lambda *message: got.append(("publish", *message))
     link.on_puback = lambda mid: got.append(("puback", mid)) is None
     for _ in range(len(stream)):  # as the event loop does while the socket is readable
+        sock.readable()
         assert paho.MQTT_ERR_SUCCESS == client.loop_read()
         if not sock.incoming:
             break
@@ -236,3 +254,113 @@ def test_a_paho_release_outside_the_tested_series_is_left_to_paho(
     monkeypatch.setattr(bus, "paho_version", lambda: "3.0.0")
     client = paho.Client(paho.CallbackAPIVersion.VERSION2, protocol=paho.MQTTv311)
     assert _Link.attach(client) is None
+
+
+PACKETS = st.one_of(
+    st.tuples(
+        st.just("publish"),
+        st.text(alphabet="abcé/_-0123", min_size=1, max_size=20),
+        st.binary(max_size=300) | st.just(b"w" * 20_000),  # up to a three-byte length
+        st.booleans(),
+        st.sampled_from([0, 1]),
+        st.integers(1, 65_535),
+    ),
+    st.tuples(st.just("puback"), st.integers(1, 65_535)),
+    st.tuples(st.just("pingresp")),
+)
+
+
+def _packet(packet: tuple[Any, ...]) -> bytes:
+    if packet[0] == "publish":
+        _, topic, payload, retain, qos, mid = packet
+        return _publish_packet(topic, payload, qos, mid if qos else 0, retain)
+    if packet[0] == "puback":
+        return struct.pack("!BBH", 0x40, 2, packet[1])
+    return b"\xd0\x00"  # PINGRESP (MQTT 3.1.1, section 3.13)
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    st.lists(PACKETS, max_size=12),
+    st.integers(1, 600),
+    st.integers(1, 5),
+    st.sampled_from([0, 2, 3, 7]),
+)
+def test_packets_cut_from_any_pieces_reach_their_handlers_once_in_order(
+    packets: list[tuple[Any, ...]], piece: int, calls: int, pause: int
+) -> None:
+    """Whatever pieces the bytes come in, with pauses anywhere (in the middle of a packet too),
+    and however many reads the loop makes: every PUBLISH
+    reaches the reader and every PUBACK of ours the writer, once, in order; a PUBACK not of
+    ours and a PINGRESP go to paho (which clears its ping timer for the PINGRESP)."""
+    stream = b"".join(_packet(packet) for packet in packets)
+    sock = Socket(incoming=stream, piece=piece, pause=pause)
+    client = _client(sock)
+    link = _Link.attach(client)
+    assert link is not None
+    got: list[tuple[Any, ...]] = []
+    ours = {mid for packet in packets if packet[0] == "puback" for mid in packet[1:] if mid % 3}
+    link.on_message = lambda *message: got.append(("publish", *message))
+    link.on_puback = lambda mid: mid in ours and got.append(("puback", mid)) is None
+    client._ping_t = 12.5
+    for _ in range(2 * len(stream) + 2):  # as the event loop does while the socket is readable
+        link.READ_PACKETS = calls  # a burst read over several turns of the loop, or at once
+        sock.readable()
+        assert paho.MQTT_ERR_SUCCESS == client.loop_read()
+        if not sock.incoming and link._at >= len(link._read):
+            break
+    expected = [
+        ("publish", *packet[1:5], packet[5] if packet[4] else 0)
+        if packet[0] == "publish"
+        else ("puback", packet[1])
+        for packet in packets
+        if packet[0] == "publish" or (packet[0] == "puback" and packet[1] in ours)
+    ]
+    assert expected == got
+    assert (0 if ("pingresp",) in packets else 12.5) == client._ping_t
+
+
+def test_a_fifth_length_byte_is_refused_as_paho_refuses_it() -> None:
+    """A remaining length of five bytes is a protocol error (MQTT 3.1.1, section 2.2.3: at most
+    four), for the link as for paho's own read."""
+    stream = b"\x30\xff\xff\xff\xff\x01" + b"x" * 10
+
+    def read(attach: bool) -> int:
+        client = _client(Socket(incoming=stream, piece=3))
+        if attach:
+            assert _Link.attach(client) is not None
+        rc = paho.MQTT_ERR_SUCCESS
+        for _ in range(10):
+            client._sock.readable()  # type: ignore[union-attr]
+            rc = client.loop_read()
+            if rc != paho.MQTT_ERR_SUCCESS:
+                break
+        return int(rc)
+
+    assert int(paho.MQTT_ERR_PROTOCOL) == read(attach=False) == read(attach=True)
+
+
+def test_a_packet_paho_began_reading_is_finished_by_paho_s_read() -> None:
+    """A packet whose first bytes paho read before the link came is read to its end by paho's
+    own read, and the next ones by the link's: each reaches the reader once, in order."""
+    first = _publish_packet("desk/fills/O-1", b'{"n":1}', 1, 11, False)
+    second = _publish_packet("desk/fills/O-2", b'{"n":2}', 1, 12, False)
+    sock = Socket(incoming=first[:3], piece=1)
+    client = _client(sock)
+    for _ in range(3):
+        sock.readable()
+        client.loop_read()  # paho has the header and part of the length now
+    assert client._in_packet["command"]
+    link = _Link.attach(client)
+    assert link is not None
+    got: list[tuple[Any, ...]] = []
+    link.on_message = lambda *message: got.append(message)
+    sock.incoming = first[3:] + second
+    for _ in range(5):
+        sock.readable()
+        client.loop_read()
+    expected = [
+        ("desk/fills/O-1", b'{"n":1}', False, 1, 11),
+        ("desk/fills/O-2", b'{"n":2}', False, 1, 12),
+    ]
+    assert expected == got

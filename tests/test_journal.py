@@ -47,6 +47,24 @@ def test_read_journal_returns_records_as_appended(tmp_path: Path) -> None:
     assert expected == list(read_journal(path))
 
 
+@pytest.mark.parametrize("count", [1, 127, 128, 129, 300, 1000], ids=lambda n: f"{n}-rows")
+def test_a_group_of_any_size_is_journaled_whole_in_order(tmp_path: Path, count: int) -> None:
+    """A group split over several INSERT statements is journaled as executemany journaled it:
+    every row, in order, numbered on, each with its CRC (read back through the check)."""
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.append_many(_rows(2))
+        seqs = journal.append_many(_rows(count), published_through=1, logged_through=2)
+    expected = [
+        Record(line=3 + i, topic=t, payload=p, ts=ts) for i, (t, p, ts) in enumerate(_rows(count))
+    ]
+    assert list(range(3, 3 + count)) == seqs
+    assert expected == list(read_journal(path, after=2))
+    with sqlite3.connect(path) as db:
+        crcs = [row[0] for row in db.execute("SELECT crc FROM journal WHERE seq > 2 ORDER BY seq")]
+    assert [record_crc(t, p, ts) for t, p, ts in _rows(count)] == crcs
+
+
 def test_reopen_continues_the_sequence(tmp_path: Path) -> None:
     """A reopened journal keeps its records and numbers new ones after them."""
     path = tmp_path / "j.sqlite"

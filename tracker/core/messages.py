@@ -23,9 +23,10 @@ from __future__ import annotations
 
 import functools
 import json
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields
 from datetime import datetime
+from operator import attrgetter
 from typing import Any, ClassVar, Literal
 
 from tracker.core.formats import FLOAT_DECIMALS, rounded, utc_text
@@ -368,6 +369,97 @@ def json_object(message: Message, only_set: bool = False) -> dict[str, Any]:
     return result
 
 
+#: The JSON encoder of every payload: compact, UTF-8 kept as it is, no NaN (made once: the
+#: keyword arguments of ``json.dumps`` would make a new encoder for every message).
+_DUMPS = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False).encode
+#: How that encoder writes a string (``json.dumps`` with ``ensure_ascii=False`` uses it too).
+_STRING: Callable[[str], str] = json.encoder.encode_basestring
+
+
+# Per class, the start of its JSON object (``type`` and, outbound, ``version``), the keys of its
+# wire fields with the comma before each, in order, and a getter of their values (made once).
+def _head(cls: type) -> str:
+    start: dict[str, str] = {"type": getattr(cls, "type")}  # noqa: B009 -- a ClassVar
+    if cls in _OUTBOUND:
+        start["version"] = CONTRACT_VERSION
+    return _DUMPS(start)[:-1]
+
+
+def _getter(names: tuple[str, ...]) -> Callable[[Any], tuple[Any, ...]]:
+    """The values of ``names`` of an object, as one tuple (``attrgetter`` of one name is not)."""
+    if len(names) == 1:
+        single = attrgetter(names[0])
+        return lambda message: (single(message),)
+    return attrgetter(*names)
+
+
+_HEADS: dict[type, str] = {cls: _head(cls) for cls in _WIRE_FIELDS}
+_KEYS: dict[type, tuple[str, ...]] = {
+    cls: tuple(f",{_STRING(name)}:" for name in names) for cls, names in _WIRE_FIELDS.items()
+}
+_VALUES: dict[type, Callable[[Any], tuple[Any, ...]]] = {
+    cls: _getter(names) for cls, names in _WIRE_FIELDS.items()
+}
+
+
+def float_text(value: float) -> str:
+    """A float as :func:`json_text` writes it: ``repr`` of it rounded to
+    :data:`~tracker.core.formats.FLOAT_DECIMALS` decimals, ``0.0`` for zero (``-0.0`` too) and
+    ``null`` for NaN and the infinities.
+
+    Between 0.0001 and 10^9 in size (nearly every float of an output) the text is that of
+    ``"%.6f"``, trailing zeros dropped: both round the exact binary value to six decimals alike
+    (correctly rounded), and a decimal of at most 15 significant digits (nine before the point,
+    six after) is the shortest text of the double nearest to it -- what ``repr`` writes, without
+    an exponent from 0.0001 on. ``tests/test_fast_paths.py`` holds the two together.
+    """
+    if 1e-4 <= value < 1e9 or -1e9 < value <= -1e-4:
+        text = ("%.6f" % value).rstrip("0")  # noqa: UP031 -- the fastest correct rounding
+        return text + "0" if text[-1] == "." else text
+    if value - value != 0.0:  # NaN or an infinity
+        return "null"
+    result = round(value, FLOAT_DECIMALS)
+    return float.__repr__(result) if result != 0 else "0.0"
+
+
+def json_text(message: Message) -> str:
+    """The compact JSON text of :func:`json_object`, exactly as ``json.dumps`` writes it
+    (``separators=(",", ":")``, ``ensure_ascii=False``, ``allow_nan=False``).
+
+    Written field by field without the intermediate dict: a fill's status (two dozen fields) is
+    the daemon's most frequent output. Strings, whole numbers, booleans, ``None``, floats and
+    times are written here as the encoder writes them; any other value (mappings, sequences, a
+    subclass) goes through :func:`_plain` and the encoder itself. ``tests/test_fast_paths.py``
+    holds the two to the same bytes.
+    """
+    cls = type(message)
+    parts = [_HEADS[cls]]
+    append = parts.append
+    for key, value in zip(_KEYS[cls], _VALUES[cls](message)):  # noqa: B905 -- same length
+        append(key)
+        kind = type(value)
+        if kind is str:
+            append(_STRING(value))
+        elif kind is float:
+            if 1e-4 <= value < 1e9 or -1e9 < value <= -1e-4:  # float_text, inline
+                text = ("%.6f" % value).rstrip("0")  # noqa: UP031
+                append(text + "0" if text[-1] == "." else text)
+            else:
+                append(float_text(value))
+        elif value is None:
+            append("null")
+        elif kind is int:
+            append(int.__repr__(value))
+        elif kind is bool:
+            append("true" if value else "false")
+        elif kind is datetime:
+            append(_STRING(_utc_text(value)))
+        else:
+            append(_DUMPS(_plain(value)))
+    append("}")
+    return "".join(parts)
+
+
 def payload_text(payload: bytes | str | Mapping[str, Any]) -> str:
     """The payload as text for an error record: at most :data:`MAX_ERROR_PAYLOAD` characters of
     it, followed, when it was longer, by a marker that says so and gives its whole size (bytes
@@ -409,7 +501,9 @@ __all__ = [
     "StatusMessage",
     "TargetMessage",
     "Tick",
+    "float_text",
     "json_object",
+    "json_text",
     "payload_text",
     "wire_fields",
 ]

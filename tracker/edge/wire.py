@@ -77,6 +77,7 @@ from tracker.core.messages import (
     TargetMessage,
     Tick,
     json_object,
+    json_text,
     payload_text,
 )
 from tracker.core.topics import DEFAULT_ROOT, Topics
@@ -636,12 +637,20 @@ class _DuplicateKey(ValueError):
 
 def _unique_keys(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     """A JSON object, refusing a key given twice (which value would count is anybody's guess)."""
-    data: dict[str, Any] = {}
+    data = dict(pairs)
+    if len(data) == len(pairs):  # no key twice (the common case, without a loop in Python)
+        return data
+    data = {}
     for key, value in pairs:
         if key in data:
             raise _DuplicateKey(key)
         data[key] = value
     return data
+
+
+#: The decoder of every inbound payload (made once: ``json.loads`` with these keyword arguments
+#: would make a new one for every message).
+_DECODER = json.JSONDecoder(parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
 
 
 #: How the daemon journals a payload it did not read because it was over its size limit (see
@@ -673,7 +682,9 @@ def _parse(topic: str, payload: bytes | str | Mapping[str, Any]) -> dict[str, An
     if text.startswith("payload of ") and " is over the limit of " in text[:120]:
         raise WireError(f"too large: {text[:300]}", topic=topic)
     try:
-        data = json.loads(text, parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
+        if text.startswith("\ufeff"):  # as json.loads says it
+            raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)", text, 0)
+        data = _DECODER.decode(text)
     except _DuplicateKey as exc:
         raise WireError(
             f"{exc}: the key appears twice in the payload; send each field once", topic=topic
@@ -799,22 +810,100 @@ def decode_reading(
             field="type",
             order_id=order_id,
         )
+    if message_type == "fill":
+        fast = _common_fill(data)
+        if fast is not None:
+            fill, stamp = fast
+            if fill.order_id != last:
+                raise _mismatch("order_id", fill.order_id, last, topic, order_id)
+            return fill, (), stamp
     try:
         valid = _PAYLOADS[message_type].model_validate(data)
     except ValidationError as exc:
         reason, field = _describe(exc)
         raise WireError(reason, topic=topic, field=field, order_id=order_id) from None
     if id_field is not None and getattr(valid, id_field) != last:
-        raise WireError(
-            f"{id_field}: payload says {getattr(valid, id_field)!r} but the topic says "
-            f"{last!r}; they must match",
-            topic=topic,
-            field=id_field,
-            order_id=order_id,
-        )
+        raise _mismatch(id_field, getattr(valid, id_field), last, topic, order_id)
     extra = valid.model_extra or {}
     stamp = None if valid.source is None or valid.seq is None else (valid.source, valid.seq)
     return _event(valid, extra), tuple(sorted(extra)), stamp
+
+
+def _mismatch(
+    id_field: str, value: str, last: str | None, topic: str, order_id: str | None
+) -> WireError:
+    return WireError(
+        f"{id_field}: payload says {value!r} but the topic says {last!r}; they must match",
+        topic=topic,
+        field=id_field,
+        order_id=order_id,
+    )
+
+
+#: The fields :func:`_common_fill` checks: those of :class:`FillPayload`, named here so that a
+#: field added to the model is not let through unchecked (a test holds the two together).
+_FILL_FIELDS = frozenset(
+    ("type", "fill_id", "order_id", "quantity", "price", "side", "ts", "version", "source", "seq")
+)
+
+
+def _common_fill(data: dict[str, Any]) -> tuple[FillMessage, tuple[str, int] | None] | None:
+    """A fill of the common shape, checked as :class:`FillPayload` checks it, without pydantic.
+
+    Nearly every message of a day is a fill: ids that match the rule, a whole number of shares
+    and a price as JSON numbers in range, a time with an offset, the optional fields (side,
+    version, the sequence stamp) valid or null, and no field beyond the contract. Such a fill
+    becomes its message here, the same one :func:`_event` makes of the validated model. Anything
+    else -- an invalid or unusual value, an unknown field -- returns ``None`` and takes the
+    general path, which accepts or refuses it and words the reason (``tests/test_fast_paths.py``
+    holds the two paths to the same messages and the same verdicts).
+    """
+    if not _FILL_FIELDS.issuperset(data):
+        return None
+    fill_id, order_id = data.get("fill_id"), data.get("order_id")
+    quantity, price = data.get("quantity"), data.get("price")
+    ts, side = data.get("ts"), data.get("side")
+    version, source, seq = data.get("version"), data.get("source"), data.get("seq")
+    if not (
+        type(fill_id) is str
+        and type(order_id) is str
+        and type(quantity) is int
+        and 0 < quantity <= MAX_MAGNITUDE
+        and (type(price) is float or type(price) is int)
+        and 0 < price <= MAX_MAGNITUDE  # NaN fails it (and JSON has none: _parse refuses it)
+        and type(ts) is str
+        and (side is None or side == "buy" or side == "sell")
+        and (version is None or type(version) is str)
+        and _ID_PATTERN.fullmatch(fill_id)
+        and _ID_PATTERN.fullmatch(order_id)
+    ):
+        return None
+    stamp = None
+    if source is not None or seq is not None:
+        if not (
+            type(source) is str
+            and _ID_PATTERN.fullmatch(source)
+            and type(seq) is int
+            and 1 <= seq <= MAX_MAGNITUDE
+        ):
+            return None
+        stamp = (source, seq)
+    try:
+        moment = datetime.fromisoformat(ts)
+    except ValueError:
+        return None
+    if moment.tzinfo is None or moment.utcoffset() is None:
+        return None
+    fill = FillMessage(
+        fill_id=fill_id,
+        order_id=order_id,
+        quantity=quantity,
+        price=float(price),
+        side=side,
+        ts=moment.astimezone(UTC),
+        extra={},
+    )
+    return fill, stamp
 
 
 def _values(model: BaseModel) -> dict[str, Any]:
@@ -858,7 +947,7 @@ def _event(valid: _Inbound, extra: Mapping[str, Any]) -> Inbound | Heartbeat:
 
 def topic_of(message: Outbound, root: str = DEFAULT_ROOT) -> str:
     """The topic an outbound message is published on."""
-    topics = Topics(root)
+    topics = _topics(root)
     if isinstance(message, TargetMessage):
         return topics.targets(message.order_id)
     if isinstance(message, StatusMessage):
@@ -883,9 +972,7 @@ def to_json_object(message: Message) -> dict[str, Any]:
 
 def encode(message: Message) -> bytes:
     """Deterministic compact JSON bytes of a message (UTF-8, no NaN)."""
-    return json.dumps(
-        json_object(message), separators=(",", ":"), ensure_ascii=False, allow_nan=False
-    ).encode("utf-8")
+    return json_text(message).encode("utf-8")
 
 
 def decode_output(payload: bytes | str) -> Outbound:

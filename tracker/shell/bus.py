@@ -61,6 +61,7 @@ from typing import Any
 import aiomqtt
 import paho.mqtt.client as paho
 import structlog
+from paho.mqtt.exception import MalformedPacket
 
 from tracker.shell.config import BrokerSettings
 
@@ -298,7 +299,13 @@ class Outbox:
     def done(self, ticket: int) -> None:
         """The message of ``ticket`` was confirmed by the broker."""
         self._in_flight.pop(ticket, None)
-        self._changed()
+        # _changed, less what a confirmation cannot change (the queue, so ``_ready``), and
+        # without a call for an event already as it should be: once per publication.
+        size = len(self._queue) + len(self._in_flight)
+        if size < self.capacity and not self._room.is_set():
+            self._room.set()
+        if size == 0:
+            self._empty.set()
 
     def requeue_in_flight(self) -> int:
         """Put every unconfirmed message back at the front, in order; return how many."""
@@ -820,6 +827,9 @@ class _Link:
         "_handle_publish",
         "_manual_ack",
         "loop_read",
+        "_packet_handle",
+        "_msgtime_mutex",
+        "_last_bytes_received",
     )
 
     #: The paho methods the link stands in for (see :meth:`attach` and :meth:`detach`).
@@ -835,7 +845,9 @@ class _Link:
         self._paho_packet_write = inner._packet_write
         self._paho_pubackcomp = inner._handle_pubackcomp
         self._paho_recv = inner._sock_recv
-        self._read = b""  # bytes read from the socket that paho has not asked for yet
+        # Bytes read from the socket and not handled yet (from ``_at`` on): the start of a packet
+        # whose rest has not come, or (for paho's own read) what paho has not asked for yet.
+        self._read = bytearray()
         self._at = 0
 
     @classmethod
@@ -865,55 +877,150 @@ class _Link:
             self.inner.__dict__.pop(name, None)
 
     def _handle_publish(self) -> Any:
-        """An inbound PUBLISH at QoS 0 or 1 to :attr:`on_message`, without paho's message object
-        (paho's handler takes the rest: QoS 2, a malformed packet, or no one listening here).
-        The acknowledgement is manual (:class:`Delivery`)."""
-        on_message = self.on_message
+        """paho's PUBLISH handler when paho read the packet itself (see :meth:`_deliver`)."""
         packet = self.inner._in_packet
-        header, data = packet["command"], packet["packet"]
-        qos = (header & 0x06) >> 1
-        if on_message is None or qos > 1 or len(data) < 2 or not self.inner._manual_ack:
-            return self._paho_publish()
-        end = 2 + ((data[0] << 8) | data[1])
-        start = end + 2 if qos else end
-        if end == 2 or len(data) < start:
-            return self._paho_publish()  # an empty topic or a cut packet: paho says malformed
-        try:
-            topic = data[2:end].decode("utf-8")
-        except UnicodeDecodeError:  # not a topic of ours: acknowledged and ignored
-            topic = ""
-        mid = (data[end] << 8) | data[end + 1] if qos else 0
-        on_message(topic, bytes(memoryview(data)[start:]), bool(header & 0x01), qos, mid)
-        return paho.MQTT_ERR_SUCCESS
+        data = packet["packet"]
+        if self._deliver(packet["command"], data, 0, len(data)):
+            return paho.MQTT_ERR_SUCCESS
+        return self._paho_publish()
 
     def _sock_recv(self, bufsize: int) -> bytes:
         """paho's read of ``bufsize`` bytes at most, served from one larger read of the socket."""
         read, at = self._read, self._at
         if at < len(read):
             self._at = at + bufsize
-            return read[at : at + bufsize]
+            return bytes(read[at : at + bufsize])
         data: bytes = self._paho_recv(max(bufsize, self.READ_CHUNK))  # raises as paho's would
         if len(data) <= bufsize:
             return data
-        self._read, self._at = data, bufsize
+        self._read, self._at = bytearray(data), bufsize
         return data[:bufsize]
 
     def loop_read(self, max_packets: int = 1) -> Any:
         """paho's ``loop_read``, reading until the socket has nothing more (or ``READ_PACKETS``
-        packets and nothing left over here), not one packet per publication in flight."""
+        packets and nothing left over here), not one packet per publication in flight.
+
+        Whole packets are cut from the bytes read here (:meth:`_next_packet`), not read by
+        paho's ``_packet_read`` in three or more pieces each; a QoS 0 or 1 PUBLISH and a PUBACK
+        of ours go straight to :attr:`on_message` and :attr:`on_puback`, and every other packet
+        to paho's own handler, as paho would hand it over.
+        """
         inner = self.inner
         packets = 0
         while True:
             if inner._sock is None:
                 return paho.MQTT_ERR_NO_CONN
-            rc = inner._packet_read()
+            # paho part-way through a packet (read before the link came): its own read finishes it
+            rc = inner._packet_read() if inner._in_packet["command"] else self._next_packet()
             if rc > 0:
                 return inner._loop_rc_handle(rc)
+            if rc == paho.MQTT_ERR_AGAIN:  # the socket has nothing more (the start of a packet
+                return paho.MQTT_ERR_SUCCESS  # may wait here for the rest of it)
             packets += 1
-            if self._at >= len(self._read) and (
-                rc == paho.MQTT_ERR_AGAIN or packets >= self.READ_PACKETS
-            ):
+            if packets >= self.READ_PACKETS and self._at >= len(self._read):
                 return paho.MQTT_ERR_SUCCESS
+
+    def _next_packet(self) -> Any:
+        """Handle the next whole packet, reading the socket when less than one is here; the
+        result code as paho's ``_packet_read`` gives it (``MQTT_ERR_AGAIN``: none whole yet)."""
+        inner = self.inner
+        read = self._read
+        while True:
+            at = self._at
+            end = len(read)
+            if at < end:
+                length, shift, pos = 0, 0, at + 1
+                while pos < end:
+                    byte = read[pos]
+                    pos += 1
+                    length |= (byte & 0x7F) << shift
+                    shift += 7
+                    if not byte & 0x80:
+                        break
+                    if shift >= 28 and pos < end:  # a fifth length byte: paho refuses it too
+                        return paho.MQTT_ERR_PROTOCOL
+                else:
+                    length = -1  # the remaining length is not all here yet
+                if 0 <= length <= end - pos:
+                    break
+            try:
+                data: bytes = self._paho_recv(self.READ_CHUNK)
+            except BlockingIOError:
+                return paho.MQTT_ERR_AGAIN
+            except OSError:  # as paho's read: the connection is lost (paho logs it)
+                return paho.MQTT_ERR_CONN_LOST
+            if not data:
+                return paho.MQTT_ERR_CONN_LOST
+            if at:
+                del read[:at]  # (in place, and cheap: a bytearray drops its head without a copy)
+                self._at = 0
+            read += data  # a large packet gathers here in linear time, as in paho's own read
+            with inner._msgtime_mutex:
+                inner._last_bytes_received = paho.time_func()
+        header = read[at]
+        stop = pos + length
+        if stop < len(read):
+            self._at = stop
+        else:  # all handled: a fresh buffer, so that a large packet's memory goes with it
+            self._read, self._at = bytearray(), 0
+        kind = header & 0xF0
+        if kind == paho.PUBLISH and self._deliver(header, read, pos, stop):
+            return paho.MQTT_ERR_SUCCESS
+        on_puback = self.on_puback
+        if (
+            kind == paho.PUBACK
+            and length >= 2
+            and on_puback is not None
+            and on_puback((read[pos] << 8) | read[pos + 1])
+        ):
+            return paho.MQTT_ERR_SUCCESS
+        # Any other packet (a PUBACK not of ours too: asked again there, it is not ours again):
+        # paho's handler, given it as paho's _packet_read would give it.
+        inner._in_packet = {
+            "command": header,
+            "have_remaining": 1,
+            "remaining_count": list(read[at + 1 : pos]),
+            "remaining_mult": 1 << (7 * (pos - at - 1)),
+            "remaining_length": length,
+            "packet": bytearray(read[pos:stop]),
+            "to_process": 0,
+            "pos": 0,
+        }
+        try:
+            rc = inner._packet_handle()
+        except MalformedPacket:
+            rc = paho.MQTT_ERR_PROTOCOL
+        inner._in_packet = {
+            "command": 0,
+            "have_remaining": 0,
+            "remaining_count": [],
+            "remaining_mult": 1,
+            "remaining_length": 0,
+            "packet": bytearray(b""),
+            "to_process": 0,
+            "pos": 0,
+        }
+        return rc
+
+    def _deliver(self, header: int, data: bytes | bytearray, start: int, stop: int) -> bool:
+        """An inbound PUBLISH at QoS 0 or 1 (its body: ``data[start:stop]``) to :attr:`on_message`,
+        without paho's message object; ``False``: paho's handler takes it (QoS 2, a malformed
+        packet, or no one listening here). The acknowledgement is manual (:class:`Delivery`)."""
+        on_message = self.on_message
+        qos = (header & 0x06) >> 1
+        if on_message is None or qos > 1 or stop - start < 2 or not self.inner._manual_ack:
+            return False
+        end = start + 2 + ((data[start] << 8) | data[start + 1])
+        begin = end + 2 if qos else end
+        if end == start + 2 or stop < begin:
+            return False  # an empty topic or a cut packet: paho says malformed
+        try:
+            topic = data[start + 2 : end].decode("utf-8")
+        except UnicodeDecodeError:  # not a topic of ours: acknowledged and ignored
+            topic = ""
+        mid = (data[end] << 8) | data[end + 1] if qos else 0
+        on_message(topic, bytes(memoryview(data)[begin:stop]), bool(header & 0x01), qos, mid)
+        return True
 
     def publish(self, topic: str, payload: bytes, retain: bool) -> int:
         """Queue a QoS 1 PUBLISH; return its message id (:attr:`on_puback` gets it back).

@@ -59,6 +59,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import functools
 import hashlib
 import os
 import sqlite3
@@ -68,7 +69,7 @@ from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
-from typing import Literal, Self
+from typing import Any, Literal, Self
 
 from tracker.edge.records import Record
 from tracker.errors import InputError
@@ -219,6 +220,19 @@ class JournalLost(JournalError):
 
 class JournalWriteError(JournalError):
     """A commit failed (full disk, I/O error): nothing of it is in the journal."""
+
+
+#: Most journal rows one INSERT statement carries (5 values each: well below SQLite's limit of
+#: 999 bound values of its older releases).
+_ROWS_PER_INSERT = 128
+
+
+@functools.lru_cache(maxsize=_ROWS_PER_INSERT)
+def _insert(rows: int) -> str:
+    """The INSERT statement of ``rows`` journal records."""
+    return "INSERT INTO journal(seq, topic, payload, ts, crc) VALUES " + ",".join(
+        ["(?, ?, ?, ?, ?)"] * rows
+    )
 
 
 def record_crc(topic: str, payload: bytes, ts: str) -> int:
@@ -407,16 +421,18 @@ class Journal:
         # Numbered explicitly: a new day's journal goes on from the day before's numbers.
         first = self.last_seq + 1
         seqs = list(range(first, first + len(rows)))
-        values = []
+        values: list[Any] = []
         for seq, (topic, payload, ts) in zip(seqs, rows, strict=True):
             payload = bytes(payload)
-            values.append((seq, topic, payload, ts, record_crc(topic, payload, ts)))
+            values += (seq, topic, payload, ts, record_crc(topic, payload, ts))
         try:
             with self._transaction():
-                self._db.executemany(
-                    "INSERT INTO journal(seq, topic, payload, ts, crc) VALUES (?, ?, ?, ?, ?)",
-                    values,
-                )
+                # A few rows per statement, not one: SQLite lets the interpreter go around each
+                # statement's step, and the daemon's event loop, busy meanwhile, held it up for
+                # every row of a group (about 60 handovers of the interpreter per commit).
+                for start in range(0, len(values), 5 * _ROWS_PER_INSERT):
+                    chunk = values[start : start + 5 * _ROWS_PER_INSERT]
+                    self._db.execute(_insert(len(chunk) // 5), chunk)
                 if published_through is not None:
                     self._set_published_through(published_through)
                 if logged_through is not None:
