@@ -217,7 +217,7 @@ class Intake:
         self._rules_of: object = None  # the settings _rules_now was read from
         self._rules_now: TimeRules | None = None
         self._silence_due: datetime | None = None  # when sources' silence is judged next
-        self._line_time: datetime | None = None  # the latest receive time of any line
+        self._judged_at: datetime | None = None  # when sources' silence was last judged
         self._listening: datetime | None = None  # since when lines arrive without a long pause
 
     @property
@@ -279,7 +279,9 @@ class Intake:
                         heartbeat=isinstance(message, Heartbeat),
                     )
                 )
-            if recorded is not None:
+            if recorded is not None and (
+                self._silence_due is None or recorded >= self._silence_due
+            ):
                 results[index].extend(self._silences(recorded))
             if isinstance(message, Heartbeat):  # its number was all it had to say
                 self.accepted += 1
@@ -463,21 +465,19 @@ class Intake:
     def _silences(self, now: datetime) -> list[Outbound]:
         """Raise ``source_silent`` for each source that sends heartbeats and has sent nothing new
         for :data:`SILENT_INTERVALS` of its intervals (at least :data:`SILENT_MIN_SECONDS`) by
-        ``now``, a line's receive time; judged once a second at most.
+        ``now``, a line's receive time (called for the first line a second or more after the
+        previous judgement).
 
-        Only time the intake was listening counts: after a pause of more than
-        :data:`SILENT_MIN_SECONDS` between any two lines (the daemon was down, or idle with
-        nothing working and so no ticks), every source's silence is counted from the line that
-        ended it, so a restart does not call every source silent before the broker has handed
-        over what it kept for the daemon."""
-        previous = self._line_time
-        if previous is None or now > previous:
-            self._line_time = now
+        Only time the intake was listening counts: after more than :data:`SILENT_MIN_SECONDS`
+        without a line (the daemon was down, or idle with nothing working and so no ticks), every
+        source's silence is counted from the line that ended the pause, so a restart does not
+        call every source silent before the broker has handed over what it kept for the daemon.
+        """
+        previous = self._judged_at
+        self._judged_at = now
+        self._silence_due = now + SILENCE_CHECK
         if previous is not None and (now - previous).total_seconds() > SILENT_MIN_SECONDS:
             self._listening = now
-        if self._silence_due is not None and now < self._silence_due:
-            return []
-        self._silence_due = now + SILENCE_CHECK
         raised: list[Outbound] = []
         for source, known in self._sequences.items():  # insertion order: deterministic
             if known.every is None or known.heard is None or known.silent:
