@@ -424,15 +424,7 @@ class Intake:
             ]
         if known.fill(seq) and not known.gaps:  # the last missing message came late
             return [
-                AlertMessage(
-                    order_id=None,
-                    code=SOURCE_GAP,
-                    severity="info",
-                    state="cleared",
-                    message=f"Source {source!r}: every skipped message has now arrived.",
-                    details={"source": source},
-                    ts=ts,
-                )
+                _cleared(SOURCE_GAP, source, "every skipped message has now arrived", ts),
             ]
         return []
 
@@ -450,17 +442,7 @@ class Intake:
         if not known.silent:
             return []
         known.silent = False
-        return [
-            AlertMessage(
-                order_id=None,
-                code=SOURCE_SILENT,
-                severity="info",
-                state="cleared",
-                message=f"Source {source!r} is sending again.",
-                details={"source": source},
-                ts=when,
-            )
-        ]
+        return [_cleared(SOURCE_SILENT, source, "it is sending again", when)]
 
     def _silences(self, now: datetime) -> list[Outbound]:
         """Raise ``source_silent`` for each source that sends heartbeats and has sent nothing new
@@ -773,6 +755,19 @@ def _at_time(message: Inbound, ts: datetime) -> Inbound:
             extra=message.extra,
         )
     return replace(message, ts=ts)
+
+
+def _cleared(code: str, source: str, what: str, ts: datetime) -> AlertMessage:
+    """The ``info`` clear of a source's alert ``code``, saying ``what`` ended it."""
+    return AlertMessage(
+        order_id=None,
+        code=code,
+        severity="info",
+        state="cleared",
+        message=f"Source {source!r}: {what}.",
+        details={"source": source},
+        ts=ts,
+    )
 
 
 def has_ticks(records: Iterable[Record | BadLine], root: str) -> bool:
