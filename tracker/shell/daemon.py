@@ -547,6 +547,9 @@ class Daemon:
             self._intake = intake
             self.engine = intake.engine
             self.restored_from = self._snapshot_seq = info.after_seq
+            if self._freezing:  # the loaded state lives on: no full collection scans it (_settled)
+                gc.freeze()
+                self._unfrozen = 0
             pending[:] = [item for item in pending if item[2] > info.setup_id]
             return info.after_seq
         return None
